@@ -1,0 +1,152 @@
+"""Classic hedging rules, vectorized over observation rows.
+
+Every baseline hedges the book's Black-Scholes delta in some way: the hedge
+target is minus the book's delta (shares), expressed per share of notional.
+
+- ``NoHedge``: never trades.
+- ``DeltaHedge``: trades to delta at every rehedge, at its own pricing
+  volatility (so a wrong-volatility hedge can be studied).
+- ``LelandDelta``: delta at Leland's (1985) cost-adjusted volatility,
+  ``vol^2 (1 + sign * sqrt(2/pi) * k / (vol sqrt(dt)))`` with ``k`` the
+  round-trip cost rate; written options get the higher volatility, bought
+  ones the lower.
+- ``WhalleyWilmottBand``: no trade while the holding is within
+  ``(3/2 exp(-r tau) c S Gamma^2 / risk_aversion)^(1/3)`` shares of delta
+  (Whalley and Wilmott, 1997); outside it trades to the nearest edge.
+- ``FixedBand``: the same with a constant half-width, per share of notional.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from agents.policy import decode
+from hedge_env.book import Book
+from hedge_env.problem import HedgingProblem
+
+
+def _to_band(holding: np.ndarray, center: np.ndarray, half_width: np.ndarray) -> np.ndarray:
+    """Stay inside [center - half_width, center + half_width]; outside, move to the nearest edge."""
+    return np.clip(holding, center - half_width, center + half_width)
+
+
+@dataclass(frozen=True)
+class NoHedge:
+    problem: HedgingProblem
+    name: str = "no_hedge"
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        return np.zeros(len(obs))
+
+
+@dataclass(frozen=True)
+class DeltaHedge:
+    """Trade to minus the book's Black-Scholes delta at ``volatility`` (default: the mark volatility)."""
+
+    problem: HedgingProblem
+    volatility: float | None = None
+    name: str = "delta"
+
+    def hedge_shares(self, obs: np.ndarray, book_delta: np.ndarray | None = None):
+        """Target holding in shares and the decoded observation.
+
+        ``book_delta`` (shares, at the mark volatility) is used when given and
+        this hedge prices at the mark volatility.
+        """
+        decoded = decode(self.problem, obs)
+        marks = self.problem.marks
+        if book_delta is None or self.volatility not in (None, marks.volatility):
+            book_delta = self.problem.book.value_and_delta(decoded.spot, decoded.t_days, marks, self.volatility)[1]
+        return -book_delta, decoded
+
+    def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
+        return self.hedge_shares(obs, book_delta)[0] / self.problem.notional_shares
+
+    act_with_delta = act
+
+
+def leland_volatility(volatility: float, round_trip_cost: float, dt_years: float, written: bool) -> float:
+    """Leland (1985) adjusted volatility; floored at a tiny positive number when the adjustment overwhelms it."""
+    leland_number = math.sqrt(2.0 / math.pi) * round_trip_cost / (volatility * math.sqrt(dt_years))
+    variance = volatility**2 * (1.0 + leland_number if written else 1.0 - leland_number)
+    return math.sqrt(max(variance, 1e-12))
+
+
+@dataclass(frozen=True)
+class LelandDelta:
+    """Delta at Leland's volatility; ``cost_rate`` is the one-way proportional cost (default: the frictions')."""
+
+    problem: HedgingProblem
+    cost_rate: float | None = None
+    volatility: float | None = None
+    name: str = "leland"
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        problem = self.problem
+        vol = problem.marks.volatility if self.volatility is None else self.volatility
+        cost = problem.frictions.cost_rate if self.cost_rate is None else self.cost_rate
+        decoded = decode(problem, obs)
+        book_delta = np.zeros(len(obs))
+        for written in (True, False):
+            legs = tuple(leg for leg in problem.book.legs if (leg.quantity < 0) == written)
+            if legs:
+                sub_vol = leland_volatility(vol, 2.0 * cost, problem.dt_years, written)
+                book_delta += Book(legs).value_and_delta(decoded.spot, decoded.t_days, problem.marks, sub_vol)[1]
+        return -book_delta / problem.notional_shares
+
+
+@dataclass(frozen=True)
+class WhalleyWilmottBand:
+    """Asymptotic optimal no-trade band around delta; ``risk_aversion`` per currency unit."""
+
+    problem: HedgingProblem
+    risk_aversion: float = 1.0
+    name: str = "whalley_wilmott"
+
+    def half_width_shares(self, spot, t_days) -> np.ndarray:
+        problem = self.problem
+        gamma = problem.book.gamma(spot, t_days, problem.marks)
+        years_left = (problem.schedule.horizon_days - np.asarray(t_days)) / problem.marks.days_per_year
+        discount = np.exp(-problem.marks.rate * years_left)
+        cost = problem.frictions.cost_rate
+        return np.cbrt(1.5 * discount * cost * spot * gamma**2 / self.risk_aversion)
+
+    def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
+        center, decoded = DeltaHedge(self.problem).hedge_shares(obs, book_delta)
+        half_width = self.half_width_shares(decoded.spot, decoded.t_days)
+        return _to_band(decoded.holding_shares, center, half_width) / self.problem.notional_shares
+
+    act_with_delta = act
+
+
+@dataclass(frozen=True)
+class FixedBand:
+    """No trade within ``half_width`` (per share of notional) of delta; outside, to the nearest edge."""
+
+    problem: HedgingProblem
+    half_width: float = 0.05
+    name: str = "fixed_band"
+
+    def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
+        center, decoded = DeltaHedge(self.problem).hedge_shares(obs, book_delta)
+        notional = self.problem.notional_shares
+        return _to_band(decoded.holding_shares / notional, center / notional, self.half_width)
+
+    act_with_delta = act
+
+
+BASELINES = {
+    "no_hedge": NoHedge,
+    "delta": DeltaHedge,
+    "leland": LelandDelta,
+    "whalley_wilmott": WhalleyWilmottBand,
+    "fixed_band": FixedBand,
+}
+
+
+def with_parameter(policy, **changes):
+    """A copy of a baseline with some parameters changed (used by tuning)."""
+    return replace(policy, **changes)

@@ -1,0 +1,776 @@
+"""Desk configuration: the TOML schema, loading, validation and hashing.
+
+A desk describes its book, market, frictions and risk appetite in one TOML file
+(see ``configs/demo.toml``).  :func:`load_config` reads and validates it into a
+fully resolved :class:`Config`: every default is filled in, including the ones
+that depend on other sections (``pricing.volatility`` from
+``market.volatility``, the data seeds from ``seed``, baseline volatilities and
+cost rates), so ``config.model_dump()`` is the "resolved config" written into
+run folders and :func:`config_hash` identifies it.
+
+Conventions: lengths are in days, rates are annual decimals (0.20 = 20%), money
+is in the config's currency, quantities are in contracts or shares.
+
+Every problem is reported as a :class:`ConfigError` with a single-line message
+that starts with the TOML key path, e.g.
+``book.options[1].strike: must be > 0, got -5``.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import math
+import re
+import tomllib
+import types
+import typing
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+from pydantic_core import PydanticCustomError
+
+__all__ = [
+    "ConfigError",
+    "load_config",
+    "parse_config",
+    "config_hash",
+    "Config",
+    "GBMMarket",
+    "MarketSpec",
+    "OptionSpec",
+    "BookSpec",
+    "PricingSpec",
+    "ScheduleSpec",
+    "FrictionsSpec",
+    "ObjectiveSpec",
+    "DataSpec",
+    "NoHedgeBaseline",
+    "DeltaBaseline",
+    "LelandBaseline",
+    "WhalleyWilmottBaseline",
+    "FixedBandBaseline",
+    "BaselineSpec",
+    "FittedQAgentSpec",
+    "LinearAgentSpec",
+    "GridDPAgentSpec",
+    "AgentSpec",
+    "ReportSpec",
+    "ExportSpec",
+    "default_baselines",
+]
+
+
+class ConfigError(ValueError):
+    """A config problem, described in one line.
+
+    ``str(error)`` is the message, e.g. ``book.options[1].strike: must be > 0, got -5``.
+    Attributes: ``source`` (file or label the config came from), ``key`` (TOML key
+    path, or None for file-level problems) and ``problems`` (every problem found,
+    one line each; the message reports the first).
+    """
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        source: str = "<config>",
+        key: str | None = None,
+        problems: tuple[str, ...] = (),
+    ) -> None:
+        message = _one_line(message)
+        super().__init__(message)
+        self.source = source
+        self.key = key
+        self.problems = problems or (message,)
+
+
+# ---------------------------------------------------------------------------
+# Small validation helpers
+# ---------------------------------------------------------------------------
+
+_NAME_RE = re.compile(r"[A-Za-z0-9_.-]+")
+_BARE_KEY_RE = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def _rule(rule: str, *path: str | int) -> PydanticCustomError:
+    """A validation error with a short rule; ``path`` is appended to the error location."""
+    return PydanticCustomError("config_rule", "{rule}", {"rule": rule, "path": tuple(path)})
+
+
+def _num(value: Any) -> Any:
+    """Integer-valued floats as ints, for bounds and converted values (0.0 -> 0)."""
+    if isinstance(value, float) and value.is_integer():
+        return int(value)
+    return value
+
+
+def _show(value: Any) -> str:
+    """Render an offending value briefly, in TOML terms where it matters."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, dict):
+        return "a table"
+    if isinstance(value, list) and len(repr(value)) > 60:
+        return f"an array of {len(value)} items"
+    text = repr(value)
+    if len(text) > 60:
+        text = text[:57] + "..."
+    return text
+
+
+def _check_name(value: str) -> str:
+    if not _NAME_RE.fullmatch(value) or set(value) == {"."}:
+        raise _rule(
+            "must use only letters, digits, '_', '.', '-' (it names run folders), "
+            f"got {_show(value)}"
+        )
+    return value
+
+
+def _check_nonzero(value: float) -> float:
+    if value == 0:
+        raise _rule(f"must be non-zero (+ long, - short), got {_show(_num(value))}")
+    return value
+
+
+def _check_open_unit(value: float) -> float:
+    if not 0 < value < 1:
+        raise _rule(f"must be in (0, 1), got {_show(_num(value))}")
+    return value
+
+
+def _check_closed_unit(value: float) -> float:
+    if not 0 <= value <= 1:
+        raise _rule(f"must be in [0, 1], got {_show(_num(value))}")
+    return value
+
+
+def _inf_means_no_limit(value: Any) -> Any:
+    if isinstance(value, float) and value == math.inf:
+        return None
+    return value
+
+
+def _tunable(strictly_positive: bool):
+    """Validator for 'a number (> 0 or >= 0) or the string "tune"'."""
+    bound = "> 0" if strictly_positive else ">= 0"
+
+    def check(value: Any) -> Any:
+        if value == "tune" and isinstance(value, str):
+            return value
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise _rule(f"must be a number {bound} or 'tune', got {_show(value)}")
+        if not math.isfinite(value):
+            raise _rule(f"must be a finite number {bound} or 'tune', got {_show(value)}")
+        if value < 0 or (strictly_positive and value == 0):
+            raise _rule(f"must be {bound} or 'tune', got {_show(value)}")
+        return float(value)
+
+    return BeforeValidator(check)
+
+
+PolicyName = Annotated[str, AfterValidator(_check_name)]
+
+
+class _Spec(BaseModel):
+    """Base for every config table: unknown keys are errors, types are strict
+    (``true`` is not a number, ``30.0`` is not an integer), NaN/inf are rejected."""
+
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False)
+
+
+# ---------------------------------------------------------------------------
+# Market, book, pricing, schedule
+# ---------------------------------------------------------------------------
+
+
+class GBMMarket(_Spec):
+    """Geometric Brownian motion for the underlying."""
+
+    model: Literal["gbm"] = Field(description="Price model of the underlying; only 'gbm' so far.")
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world drift of the underlying, annual decimal.")
+    volatility: float = Field(gt=0, description="Real-world volatility of the underlying, annual decimal.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+
+# Later models (heston, merton, historical) become members of a discriminated union:
+#   MarketSpec = Annotated[Union[GBMMarket, HestonMarket, ...], Field(discriminator="model")]
+MarketSpec = GBMMarket
+
+
+class OptionSpec(_Spec):
+    """One European option position in the book."""
+
+    kind: Literal["call", "put"] = Field(description="Option type: 'call' or 'put'.")
+    strike: float = Field(gt=0, description="Strike price, currency per share.")
+    expiry_days: float = Field(gt=0, description="Time to expiry from the start, days.")
+    quantity: Annotated[float, AfterValidator(_check_nonzero)] = Field(
+        description="Contracts held: positive long, negative short."
+    )
+    multiplier: float = Field(1.0, gt=0, description="Shares per contract.")
+
+
+class BookSpec(_Spec):
+    """The option book to hedge."""
+
+    options: list[OptionSpec] = Field(description="Option positions, one [[book.options]] table each.")
+
+    @field_validator("options")
+    @classmethod
+    def _not_empty(cls, options: list[OptionSpec]) -> list[OptionSpec]:
+        if not options:
+            raise _rule("must hold at least one option")
+        return options
+
+
+class PricingSpec(_Spec):
+    """How the book is marked and its Greeks computed (Black-Scholes)."""
+
+    volatility: float | None = Field(
+        None,
+        gt=0,
+        description="Mark and Greeks volatility, annual decimal; defaults to market.volatility.",
+    )
+    days_per_year: float = Field(365.0, gt=0, description="Days per year for converting days to years.")
+
+
+class ScheduleSpec(_Spec):
+    """When the hedge is rebalanced and how it ends."""
+
+    step_days: float = Field(1.0, gt=0, description="Rehedge interval, days.")
+    steps: int = Field(ge=1, description="Number of rehedges; the horizon is steps * step_days days.")
+    settlement: Literal["liquidate", "physical"] = Field(
+        "liquidate",
+        description=(
+            "At the horizon: 'liquidate' unwinds the hedge at cost; 'physical' settles options "
+            "expiring at the horizon in shares and trades only the residual."
+        ),
+    )
+
+    @property
+    def horizon_days(self) -> float:
+        """Hedging horizon, days."""
+        return self.steps * self.step_days
+
+
+class FrictionsSpec(_Spec):
+    """Trading costs, market impact and financing."""
+
+    cost_rate: float = Field(ge=0, description="Proportional cost, fraction of traded notional (half-spread + fees).")
+    fixed_cost: float = Field(0.0, ge=0, description="Fixed cost per trade, currency.")
+    impact_coefficient: float = Field(
+        0.0, ge=0, description="Temporary impact eta: cost eta * S * |trade|^(1+beta) / adv^beta, currency."
+    )
+    impact_exponent: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
+        0.5, description="Impact exponent beta in [0, 1]: 1 linear impact, 0.5 square-root law."
+    )
+    permanent_impact: float = Field(
+        0.0, ge=0, description="Permanent impact gamma: later prices scale by exp(gamma * trade / adv)."
+    )
+    adv_shares: float = Field(1_000_000.0, gt=0, description="Average daily volume of the underlying, shares.")
+    borrow_fee: float = Field(0.0, ge=0, description="Fee on the value of a short stock holding, annual decimal.")
+    position_limit_shares: Annotated[float | None, BeforeValidator(_inf_means_no_limit)] = Field(
+        None, gt=0, description="Hedge targets are clipped to +/- this many shares; absent or inf = no limit."
+    )
+
+
+class ObjectiveSpec(_Spec):
+    """Risk appetite: the reward and the risk measures reported."""
+
+    risk_aversion: float = Field(
+        ge=0, description="kappa per currency unit: reward r = dW - kappa/2 * dW^2 per step."
+    )
+    var_levels: list[Annotated[float, AfterValidator(_check_open_unit)]] = Field(
+        default_factory=lambda: [0.95, 0.99], description="Confidence levels for VaR/CVaR, each in (0, 1)."
+    )
+    entropic_risk_aversion: float | None = Field(
+        None,
+        gt=0,
+        description=(
+            "Entropic risk aversion per currency unit; defaults to risk_aversion, "
+            "None (skipped) when that is 0."
+        ),
+    )
+
+    @field_validator("var_levels")
+    @classmethod
+    def _distinct_levels(cls, levels: list[float]) -> list[float]:
+        for i, level in enumerate(levels):
+            if level in levels[:i]:
+                raise _rule(f"duplicate level {_show(level)}", i)
+        return levels
+
+    @model_validator(mode="after")
+    def _resolve_entropic(self) -> ObjectiveSpec:
+        if self.entropic_risk_aversion is None and self.risk_aversion > 0:
+            self.entropic_risk_aversion = self.risk_aversion
+        return self
+
+
+class DataSpec(_Spec):
+    """Simulated paths for training and held-out testing."""
+
+    train_paths: int = Field(20_000, gt=0, description="Number of training paths.")
+    heldout_paths: int = Field(50_000, gt=0, description="Number of held-out test paths.")
+    train_seed: int | None = Field(None, ge=0, description="Seed for training paths; defaults to 2 * seed + 1.")
+    heldout_seed: int | None = Field(
+        None, ge=0, description="Seed for held-out paths; defaults to 2 * seed + 2, always != train_seed."
+    )
+    chunk_paths: int = Field(16_384, gt=0, description="Paths simulated per chunk (bounds memory).")
+
+
+# ---------------------------------------------------------------------------
+# Policies: baselines and learned agents
+# ---------------------------------------------------------------------------
+
+
+class _NamedPolicy(_Spec):
+    """A policy with a ``kind`` and a ``name`` that defaults to the kind."""
+
+    @model_validator(mode="before")
+    @classmethod
+    def _default_name(cls, data: Any) -> Any:
+        if isinstance(data, dict) and "name" not in data and "kind" in data:
+            data = {**data, "name": data["kind"]}
+        return data
+
+
+class NoHedgeBaseline(_NamedPolicy):
+    """Never trades the underlying."""
+
+    kind: Literal["no_hedge"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+
+
+class DeltaBaseline(_NamedPolicy):
+    """Rebalances to the Black-Scholes delta every step."""
+
+    kind: Literal["delta"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    volatility: float | None = Field(
+        None, gt=0, description="Volatility for its deltas, annual decimal; defaults to pricing.volatility."
+    )
+
+
+class LelandBaseline(_NamedPolicy):
+    """Delta hedge with Leland's cost-adjusted volatility."""
+
+    kind: Literal["leland"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    cost_rate: float | None = Field(
+        None, ge=0, description="Proportional cost in Leland's adjustment; defaults to frictions.cost_rate."
+    )
+    volatility: float | None = Field(
+        None, gt=0, description="Base volatility, annual decimal; defaults to pricing.volatility."
+    )
+
+
+class WhalleyWilmottBaseline(_NamedPolicy):
+    """No-trade band around delta with the Whalley-Wilmott asymptotic width."""
+
+    kind: Literal["whalley_wilmott"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    risk_aversion: Annotated[float | Literal["tune"], _tunable(strictly_positive=True)] = Field(
+        "tune", description="Risk aversion in the band formula, per currency unit, or 'tune' to fit it."
+    )
+
+
+class FixedBandBaseline(_NamedPolicy):
+    """No-trade band of fixed half-width around delta."""
+
+    kind: Literal["fixed_band"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    half_width: Annotated[float | Literal["tune"], _tunable(strictly_positive=False)] = Field(
+        "tune", description="Band half-width in shares per share of book notional, or 'tune' to fit it."
+    )
+
+
+BaselineSpec = Annotated[
+    Union[NoHedgeBaseline, DeltaBaseline, LelandBaseline, WhalleyWilmottBaseline, FixedBandBaseline],
+    Field(discriminator="kind"),
+]
+
+
+def default_baselines() -> list:
+    """The baselines used when the config has no [[baselines]]."""
+    return [
+        NoHedgeBaseline(kind="no_hedge"),
+        DeltaBaseline(kind="delta"),
+        LelandBaseline(kind="leland"),
+        WhalleyWilmottBaseline(kind="whalley_wilmott", risk_aversion="tune"),
+        FixedBandBaseline(kind="fixed_band", half_width="tune"),
+    ]
+
+
+class FittedQAgentSpec(_NamedPolicy):
+    """Fitted Q-iteration agent."""
+
+    kind: Literal["fitted_q"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    params: dict[str, Any] = Field(default_factory=dict, description="Agent settings (free-form for now).")
+
+
+class LinearAgentSpec(_NamedPolicy):
+    """Linear policy on hand-made features."""
+
+    kind: Literal["linear"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    params: dict[str, Any] = Field(default_factory=dict, description="Agent settings (free-form for now).")
+
+
+class GridDPAgentSpec(_NamedPolicy):
+    """Dynamic programming on a state grid."""
+
+    kind: Literal["grid_dp"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    params: dict[str, Any] = Field(default_factory=dict, description="Agent settings (free-form for now).")
+
+
+AgentSpec = Annotated[
+    Union[FittedQAgentSpec, LinearAgentSpec, GridDPAgentSpec],
+    Field(discriminator="kind"),
+]
+
+
+class ReportSpec(_Spec):
+    """Held-out report settings."""
+
+    reference_policy: PolicyName = Field("delta", description="Policy the others are compared against.")
+    bootstrap_samples: int = Field(2000, ge=100, description="Bootstrap resamples for confidence intervals.")
+
+
+class ExportSpec(_Spec):
+    """Policy export settings."""
+
+    policy: PolicyName | None = Field(None, description="Name of the policy to export; None = none chosen.")
+
+
+# ---------------------------------------------------------------------------
+# The whole config
+# ---------------------------------------------------------------------------
+
+
+class Config(_Spec):
+    """A desk's scenario: book, market, frictions, risk appetite, data and policies."""
+
+    name: PolicyName = Field(description="Scenario name, used in run folder names.")
+    seed: int = Field(ge=0, description="Master seed; data seeds derive from it unless given.")
+    description: str = Field("", description="Free text about the scenario.")
+    market: MarketSpec = Field(description="Model of the underlying.")
+    book: BookSpec = Field(description="Options to hedge.")
+    pricing: PricingSpec = Field(default_factory=PricingSpec, description="Marking and Greeks.")
+    schedule: ScheduleSpec = Field(description="Rehedge interval, horizon and settlement.")
+    frictions: FrictionsSpec = Field(description="Trading costs, impact and financing.")
+    objective: ObjectiveSpec = Field(description="Reward and risk measures.")
+    data: DataSpec = Field(default_factory=DataSpec, description="Training and held-out paths.")
+    baselines: list[BaselineSpec] = Field(
+        default_factory=default_baselines, description="Rule-based policies to compare."
+    )
+    agents: list[AgentSpec] = Field(default_factory=list, description="Learned policies to train.")
+    report: ReportSpec = Field(default_factory=ReportSpec, description="Report settings.")
+    export: ExportSpec = Field(default_factory=ExportSpec, description="Export settings.")
+
+    @property
+    def horizon_days(self) -> float:
+        """Hedging horizon, days (schedule.steps * schedule.step_days)."""
+        return self.schedule.horizon_days
+
+    @property
+    def notional_shares(self) -> float:
+        """Book size in shares: sum of |quantity| * multiplier."""
+        return float(sum(abs(o.quantity) * o.multiplier for o in self.book.options))
+
+    @property
+    def policy_names(self) -> list[str]:
+        """Names of all baselines then all agents, in config order."""
+        return [p.name for p in self.baselines] + [a.name for a in self.agents]
+
+    @model_validator(mode="after")
+    def _resolve(self) -> Config:
+        # Cross-section defaults, so the validated config is fully resolved.
+        if self.pricing.volatility is None:
+            self.pricing.volatility = self.market.volatility
+        for baseline in self.baselines:
+            if isinstance(baseline, (DeltaBaseline, LelandBaseline)) and baseline.volatility is None:
+                baseline.volatility = self.pricing.volatility
+            if isinstance(baseline, LelandBaseline) and baseline.cost_rate is None:
+                baseline.cost_rate = self.frictions.cost_rate
+
+        data = self.data
+        given_train, given_heldout = data.train_seed, data.heldout_seed
+        if given_train is not None and given_heldout is not None and given_train == given_heldout:
+            raise _rule(
+                f"must differ from data.train_seed, got {given_heldout}", "data", "heldout_seed"
+            )
+        train = given_train if given_train is not None else 2 * self.seed + 1
+        heldout = given_heldout if given_heldout is not None else 2 * self.seed + 2
+        if train == heldout:  # exactly one was defaulted and collided: move the defaulted one
+            if given_train is None:
+                train = heldout + 1
+            else:
+                heldout = train + 1
+        data.train_seed, data.heldout_seed = train, heldout
+
+        seen: set[str] = set()
+        for section, policies in (("baselines", self.baselines), ("agents", self.agents)):
+            for i, policy in enumerate(policies):
+                if policy.name in seen:
+                    raise _rule(f"duplicate policy name {policy.name!r}", section, i, "name")
+                seen.add(policy.name)
+
+        names = self.policy_names
+        known = ", ".join(repr(n) for n in names) if names else "none (no baselines or agents)"
+        reference = self.report.reference_policy
+        if reference not in seen:
+            default = "" if "reference_policy" in self.report.model_fields_set else " (the default)"
+            raise _rule(
+                f"unknown policy {reference!r}{default}; policies: {known}", "report", "reference_policy"
+            )
+        if self.export.policy is not None and self.export.policy not in seen:
+            raise _rule(f"unknown policy {self.export.policy!r}; policies: {known}", "export", "policy")
+        return self
+
+
+# ---------------------------------------------------------------------------
+# Loading, error formatting, hashing
+# ---------------------------------------------------------------------------
+
+
+def load_config(path: str | Path) -> Config:
+    """Read a TOML config file, validate and resolve it; raises ConfigError."""
+    path = Path(path)
+    source = str(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise ConfigError(f"{source}: config file not found", source=source) from None
+    except IsADirectoryError:
+        raise ConfigError(f"{source}: is a directory, not a config file", source=source) from None
+    except OSError as exc:
+        raise ConfigError(f"{source}: cannot read config file ({exc.strerror or exc})", source=source) from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ConfigError(
+            f"{source}: not UTF-8 text (bad byte at offset {exc.start})", source=source
+        ) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{source}: {_toml_error(exc, text)}", source=source) from None
+    return parse_config(data, source=source)
+
+
+def parse_config(data: dict, source: str = "<config>") -> Config:
+    """Validate and resolve an already-parsed config mapping; raises ConfigError."""
+    if not isinstance(data, dict):
+        raise ConfigError(
+            f"config must be a table of settings, got {_show(data)}", source=source
+        )
+    try:
+        return Config.model_validate(data)
+    except ValidationError as exc:
+        errors = exc.errors()
+        problems = tuple(_format_error(err) for err in errors)
+        key, _, _ = problems[0].partition(": ")
+        message = problems[0]
+        if len(problems) > 1:
+            more = len(problems) - 1
+            message += f" (and {more} more error{'s' if more > 1 else ''})"
+        raise ConfigError(message, source=source, key=key, problems=problems) from None
+
+
+def config_hash(config: Config) -> str:
+    """sha256 hex digest of the canonical JSON (sorted keys) of the resolved config."""
+    payload = json.dumps(
+        config.model_dump(mode="python"),
+        sort_keys=True,
+        separators=(",", ":"),
+        ensure_ascii=True,
+        default=_json_default,
+    )
+    return hashlib.sha256(payload.encode("utf-8")).hexdigest()
+
+
+def _json_default(value: Any) -> Any:
+    # TOML dates/times (possible inside free-form agent params) and anything else exotic.
+    if hasattr(value, "isoformat"):
+        return value.isoformat()
+    return repr(value)
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+_TOML_POS_RE = re.compile(r"\s*\(at line (\d+), column (\d+)\)\s*$")
+_TOML_END_RE = re.compile(r"\s*\(at end of document\)\s*$")
+
+
+def _toml_error(exc: tomllib.TOMLDecodeError, text: str) -> str:
+    msg = str(exc)
+    match = _TOML_POS_RE.search(msg)
+    if match:
+        reason = msg[: match.start()]
+        return f"TOML syntax error at line {match.group(1)}, column {match.group(2)}: {reason}"
+    if _TOML_END_RE.search(msg):
+        reason = _TOML_END_RE.sub("", msg)
+        last_line = text.count("\n") + (0 if text.endswith("\n") else 1)
+        return f"TOML syntax error at end of document (line {max(last_line, 1)}): {reason}"
+    lineno = getattr(exc, "lineno", None)
+    where = f" at line {lineno}" if lineno else ""
+    return f"TOML syntax error{where}: {msg}"
+
+
+def _format_key(parts: list[str | int]) -> str:
+    out = ""
+    for part in parts:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            key = part if _BARE_KEY_RE.fullmatch(part) else json.dumps(part)
+            out += f".{key}" if out else key
+    return out or "(top level)"
+
+
+def _unwrap(tp: Any) -> Any:
+    while typing.get_origin(tp) is Annotated:
+        tp = typing.get_args(tp)[0]
+    return tp
+
+
+def _is_model(tp: Any) -> bool:
+    return isinstance(tp, type) and issubclass(tp, BaseModel)
+
+
+def _tag_member(members: list[Any], tag: Any) -> Any:
+    """The model in ``members`` whose kind/model literal equals ``tag``, else None."""
+    for member in members:
+        if not _is_model(member):
+            continue
+        for field in ("kind", "model"):
+            info = member.model_fields.get(field)
+            if info is not None and tag in typing.get_args(_unwrap(info.annotation)):
+                return member
+    return None
+
+
+def _walk(loc: tuple) -> tuple[list[str | int], Any]:
+    """Follow a pydantic error location through the Config types.
+
+    Returns the location with discriminated-union tags removed (the TOML key path)
+    and the type reached (a model class when the location ends on a table)."""
+    parts: list[str | int] = []
+    tp: Any = Config
+    for element in loc:
+        tp = _unwrap(tp) if tp is not None else None
+        origin = typing.get_origin(tp)
+        if origin in (Union, types.UnionType):
+            members = [_unwrap(m) for m in typing.get_args(tp) if m is not type(None)]
+            if len(members) == 1:
+                tp, origin = members[0], typing.get_origin(members[0])
+            else:
+                member = _tag_member(members, element)
+                if member is not None:  # a tag element: not part of the key path
+                    tp = member
+                    continue
+                tp = None
+        if _is_model(tp) and isinstance(element, str) and element in tp.model_fields:
+            tp = tp.model_fields[element].annotation
+        elif origin is list and isinstance(element, int):
+            tp = typing.get_args(tp)[0]
+        else:
+            tp = None
+        parts.append(element)
+    if tp is not None:
+        tp = _unwrap(tp)
+        if typing.get_origin(tp) in (Union, types.UnionType):
+            members = [_unwrap(m) for m in typing.get_args(tp) if m is not type(None)]
+            tp = members[0] if len(members) == 1 else tp
+    return parts, tp
+
+
+_TYPE_RULES = {
+    "float_type": "must be a number",
+    "float_parsing": "must be a number",
+    "int_type": "must be an integer",
+    "int_parsing": "must be an integer",
+    "int_from_float": "must be an integer",
+    "bool_type": "must be true or false",
+    "bool_parsing": "must be true or false",
+    "string_type": "must be a string",
+    "finite_number": "must be a finite number",
+    "model_type": "must be a table",
+    "model_attributes_type": "must be a table",
+    "dict_type": "must be a table",
+    "dataclass_type": "must be a table",
+}
+
+_BOUND_RULES = {
+    "greater_than": (">", "gt"),
+    "greater_than_equal": (">=", "ge"),
+    "less_than": ("<", "lt"),
+    "less_than_equal": ("<=", "le"),
+}
+
+
+def _format_error(err: dict) -> str:
+    """One pydantic error as ``key.path: rule, got value``."""
+    kind = err.get("type", "")
+    ctx = err.get("ctx") or {}
+    value = err.get("input")
+    parts, reached = _walk(tuple(err.get("loc", ())))
+
+    if kind == "config_rule":
+        parts = parts + list(ctx.get("path", ()))
+        rule = ctx.get("rule", err.get("msg", ""))
+    elif kind == "missing":
+        rule = "required key missing"
+    elif kind == "extra_forbidden":
+        unknown = parts[-1] if parts else "?"
+        rule = f"unknown key {str(unknown)!r}"
+        parent_parts, parent = _walk(tuple(err.get("loc", ()))[:-1])
+        if _is_model(parent):
+            close = difflib.get_close_matches(str(unknown), list(parent.model_fields), n=1, cutoff=0.6)
+            if close:
+                rule += f" (did you mean {close[0]!r}?)"
+    elif kind in _BOUND_RULES:
+        symbol, key = _BOUND_RULES[kind]
+        rule = f"must be {symbol} {_num(ctx.get(key))}, got {_show(value)}"
+    elif kind == "literal_error":
+        expected = str(ctx.get("expected", "")).replace(" or ", ", ")
+        rule = f"must be one of {expected}, got {_show(value)}"
+    elif kind == "union_tag_invalid":
+        parts = parts + [str(ctx.get("discriminator", "kind")).strip("'")]
+        rule = f"must be one of {ctx.get('expected_tags', '')}, got {_show(ctx.get('tag'))}"
+    elif kind == "union_tag_not_found":
+        parts = parts + [str(ctx.get("discriminator", "kind")).strip("'")]
+        rule = "required key missing"
+    elif kind == "list_type":
+        if isinstance(value, dict):
+            rule = f"must be an array, got a table (write [[{_format_key(parts)}]] for each entry)"
+        else:
+            rule = f"must be an array, got {_show(value)}"
+    elif kind == "too_short":
+        rule = f"must hold at least {ctx.get('min_length')} item(s)"
+    elif kind in _TYPE_RULES:
+        rule = f"{_TYPE_RULES[kind]}, got {_show(value)}"
+    elif kind == "value_error":
+        rule = str(err.get("msg", "")).removeprefix("Value error, ")
+    else:
+        rule = str(err.get("msg", kind))
+    return _one_line(f"{_format_key(parts)}: {rule}")

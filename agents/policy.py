@@ -1,0 +1,56 @@
+"""The Policy protocol shared by baselines, learned agents, the grid DP and hedge tables."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+
+from hedge_env.problem import HedgingProblem
+
+
+@runtime_checkable
+class Policy(Protocol):
+    """Maps observations to target holdings.
+
+    ``act(obs)`` takes an (n, n_obs) array of observations
+    ``[spot / reference spot, years to horizon, holding / notional, *factors]``
+    and returns an (n,) array of target holdings per share of notional. It is
+    vectorized and keeps no state between calls.
+
+    A policy may also define ``act_with_delta(obs, book_delta)``, where
+    ``book_delta`` is the book's delta in shares at the mark volatility, as
+    the step function computed it for these rows. The rollout then calls it
+    instead of ``act``, sparing a second pricing pass; it must return the
+    same targets as ``act``.
+    """
+
+    name: str
+
+    def act(self, obs: np.ndarray) -> np.ndarray: ...
+
+
+@dataclass(frozen=True)
+class DecodedObservation:
+    """Observation rows in trade units.
+
+    ``t_days`` is a float when every row is at the same time (the usual case
+    in a rollout, and the fast path of pricing), else an array.
+    """
+
+    spot: np.ndarray
+    t_days: float | np.ndarray
+    holding_shares: np.ndarray
+
+
+def decode(problem: HedgingProblem, obs: np.ndarray) -> DecodedObservation:
+    """Spot (currency), time elapsed (days) and holding (shares) of observation rows."""
+    obs = np.asarray(obs)
+    years_left = obs[:, 1]
+    if years_left.size and (years_left == years_left[0]).all():
+        t_days: float | np.ndarray = float(problem.days_from_years_to_horizon(years_left[0]))
+    else:
+        t_days = problem.days_from_years_to_horizon(years_left)
+    spot = obs[:, 0] * problem.reference_spot
+    return DecodedObservation(spot.astype(float, copy=False), t_days, obs[:, 2] * problem.notional_shares)

@@ -1,0 +1,87 @@
+"""Reward and risk measures.
+
+The training reward is a per-step mean-variance penalty,
+``r = dW - kappa / 2 * dW**2`` with kappa the risk aversion per currency
+unit. Evaluation looks at the whole distribution of total P&L: losses are
+positive numbers in VaR and CVaR.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import logsumexp
+
+
+@dataclass(frozen=True)
+class Objective:
+    """Risk appetite of the desk.
+
+    Parameters
+    ----------
+    risk_aversion : float
+        kappa, per currency unit, in the per-step reward.
+    var_levels : tuple of float
+        Confidence levels of VaR and CVaR, e.g. (0.95, 0.99).
+    entropic_risk_aversion : float or None
+        theta of the entropic risk ``log E[exp(-theta X)] / theta``; None uses
+        ``risk_aversion`` (and skips the measure when that is 0).
+    """
+
+    risk_aversion: float = 0.0
+    var_levels: tuple[float, ...] = (0.95, 0.99)
+    entropic_risk_aversion: float | None = None
+
+    def reward(self, pnl):
+        """Per-step reward of a wealth change ``pnl`` (float or array)."""
+        if not self.risk_aversion:
+            return pnl
+        return pnl - (0.5 * self.risk_aversion) * (pnl * pnl)
+
+    @property
+    def entropic_theta(self) -> float:
+        return self.risk_aversion if self.entropic_risk_aversion is None else self.entropic_risk_aversion
+
+    def risk_measures(self, total_pnl: np.ndarray) -> dict[str, float]:
+        """Mean, std, VaR and CVaR at each level, and entropic risk of total P&L per path."""
+        pnl = np.asarray(total_pnl, dtype=float)
+        measures = {"mean_pnl": float(pnl.mean()), "std_pnl": float(pnl.std(ddof=1)) if pnl.size > 1 else 0.0}
+        ordered = np.sort(pnl)
+        for level in self.var_levels:
+            tag = level_tag(level)
+            measures[f"var_{tag}"] = value_at_risk(ordered, level, presorted=True)
+            measures[f"cvar_{tag}"] = conditional_value_at_risk(ordered, level, presorted=True)
+        if self.entropic_theta > 0:
+            measures["entropic_risk"] = entropic_risk(pnl, self.entropic_theta)
+        return measures
+
+
+def level_tag(level: float) -> str:
+    """0.95 -> "95", 0.995 -> "99.5": the suffix of var_/cvar_ keys."""
+    return f"{level * 100:g}"
+
+
+def value_at_risk(pnl: np.ndarray, level: float, presorted: bool = False) -> float:
+    """Loss not exceeded with probability ``level``: minus the lower (1 - level) quantile of P&L."""
+    ordered = pnl if presorted else np.sort(pnl)
+    tail = (1.0 - level) * ordered.size
+    index = min(max(int(np.ceil(tail)) - 1, 0), ordered.size - 1)
+    return float(-ordered[index])
+
+
+def conditional_value_at_risk(pnl: np.ndarray, level: float, presorted: bool = False) -> float:
+    """Mean loss in the worst (1 - level) fraction of outcomes (Acerbi-Tasche, fractional last atom)."""
+    ordered = pnl if presorted else np.sort(pnl)
+    tail = (1.0 - level) * ordered.size
+    whole = int(np.floor(tail))
+    total = ordered[:whole].sum()
+    if whole < ordered.size:
+        total += (tail - whole) * ordered[whole]
+    return float(-total / tail)
+
+
+def entropic_risk(pnl: np.ndarray, theta: float) -> float:
+    """``log E[exp(-theta X)] / theta``, computed stably; a loss-like number (higher is worse)."""
+    pnl = np.asarray(pnl, dtype=float)
+    return float((logsumexp(-theta * pnl) - np.log(pnl.size)) / theta)

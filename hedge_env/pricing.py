@@ -1,0 +1,429 @@
+"""Black-Scholes(-Merton) pricing of European calls and puts.
+
+Continuous risk-free rate ``rate`` and continuous dividend (or carry) yield
+``dividend``; all quantities are annual: ``tau`` is time to expiry in years,
+``vol``, ``rate`` and ``dividend`` are decimals per year (0.2 means 20%).
+
+Conventions match QuantLib's ``AnalyticEuropeanEngine``:
+
+* ``vega`` is dV/dvol for a change of 1.00 in volatility (not one vol point);
+* ``theta`` is dV/dt per year of calendar time, i.e. ``-dV/dtau``.
+
+The limits are exact and free of NaN and numpy warnings:
+
+* ``tau <= 0`` (expiry or past it): price is the payoff ``max(w (S - K), 0)``
+  with ``w = +1`` for calls and ``-1`` for puts; delta is the step ``w`` in
+  the money, 0 out of it and ``0.5 w`` exactly at the money; gamma, vega and
+  theta are 0.
+* ``vol <= 0`` with ``tau > 0``: price is the discounted forward intrinsic
+  value ``max(w (S e^{-q tau} - K e^{-r tau}), 0)``, delta ``w e^{-q tau}`` in
+  the money of the forward (half of it exactly at the forward), gamma and
+  vega 0, theta the exact time derivative of the intrinsic value.
+
+Spot and strike must be positive.
+
+Two families of functions are provided: vectorised numpy functions (any
+inputs broadcast; results are float64 arrays, 0-d for scalar input) and
+``*_scalar`` functions built on :mod:`math` alone for single-path loops where
+numpy call overhead would dominate.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import NamedTuple
+
+import numpy as np
+from scipy.special import ndtr
+
+__all__ = [
+    "Greeks",
+    "black_scholes",
+    "price",
+    "price_and_delta",
+    "delta",
+    "gamma",
+    "vega",
+    "theta",
+    "price_and_delta_scalar",
+    "gamma_scalar",
+]
+
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
+_INV_SQRT2 = 1.0 / math.sqrt(2.0)
+
+# Total standard deviation vol*sqrt(tau) at or below which the zero-volatility
+# limit is used. Far below any meaningful value (the price differs from the
+# limit by about S * 1e-100) but large enough that log-moneyness / stdev and
+# its square cannot overflow, so subnormal inputs raise no warnings.
+_MIN_STD = 1e-100
+
+
+class Greeks(NamedTuple):
+    """Black-Scholes price and sensitivities (float64 arrays).
+
+    Attributes
+    ----------
+    price : ndarray
+        Option value, in currency units of the spot.
+    delta : ndarray
+        dV/dS.
+    gamma : ndarray
+        d2V/dS2, per unit of spot.
+    vega : ndarray
+        dV/dvol for a change of 1.00 in volatility.
+    theta : ndarray
+        dV/dt per year of calendar time (``-dV/dtau``).
+    """
+
+    price: np.ndarray
+    delta: np.ndarray
+    gamma: np.ndarray
+    vega: np.ndarray
+    theta: np.ndarray
+
+
+_PARAMS_DOC = """
+    Parameters
+    ----------
+    spot : float or array_like
+        Underlying price S, > 0.
+    strike : float or array_like
+        Strike K, > 0.
+    tau : float or array_like
+        Time to expiry in years; values <= 0 mean expired (payoff limit).
+    vol : float or array_like
+        Annual volatility as a decimal; values <= 0 mean the zero-volatility
+        limit.
+    rate : float or array_like, default 0.0
+        Continuously compounded risk-free rate per year.
+    dividend : float or array_like, default 0.0
+        Continuous dividend yield per year.
+    is_call : bool or array_like of bool, default True
+        True for a call, False for a put.
+"""
+
+
+def _as_float(x) -> float | None:
+    """Return ``x`` as a Python float if it is a scalar, else None."""
+    # Cheap type tests first: this runs on every hot-loop call.
+    t = type(x)
+    if t is float or t is int:
+        return float(x)
+    if isinstance(x, (np.floating, np.integer)):
+        return float(x)
+    if isinstance(x, np.ndarray) and x.ndim == 0:
+        return float(x)
+    return None
+
+
+def _as_sign(is_call) -> float | None:
+    """Return +1.0 / -1.0 for a scalar call/put flag, else None."""
+    if isinstance(is_call, (bool, np.bool_, int, np.integer)):
+        return 1.0 if is_call else -1.0
+    if isinstance(is_call, np.ndarray) and is_call.ndim == 0:
+        return 1.0 if bool(is_call) else -1.0
+    return None
+
+
+def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w):
+    """Price and delta for scalar tau > 0, vol > 0, rate, dividend and sign.
+
+    No masks are needed because vol*sqrt(tau) > 0; every scalar factor is
+    computed once and the array work is one log, two ndtr and a few
+    multiply/adds. The sign ``w`` is folded into the scalar factors so puts
+    cost the same as calls and are computed directly from N(-d1), N(-d2),
+    which keeps far out-of-the-money puts accurate (no parity cancellation).
+    """
+    S = np.asarray(spot, dtype=np.float64)
+    std = vol * math.sqrt(tau)
+    df_r = math.exp(-rate * tau)
+    df_q = math.exp(-dividend * tau)
+    # w*d1 = (w/std) * log(S e^{(r - q + vol^2/2) tau} / K): one log pass and
+    # one scale; the drift and the half-variance are folded into a scalar.
+    growth = math.exp((rate - dividend) * tau + 0.5 * std * std)
+    k = _as_float(strike)
+    if k is not None:
+        x = S * (growth / k)
+        k_df = w * df_r * k
+    else:
+        K = np.asarray(strike, dtype=np.float64)
+        x = S * (growth / K)
+        k_df = (w * df_r) * K
+    a = w / std
+    if not isinstance(x, np.ndarray):
+        # Scalar spot and strike: numpy scalars cannot be written in place.
+        x = np.log(x) * a
+        dlt = ndtr(x) * (w * df_q)
+        return np.asarray(S * dlt - ndtr(x - w * std) * k_df), np.asarray(dlt)
+    # Array case: work in place in x, which has the full broadcast shape of
+    # spot and strike, so only three arrays are allocated.
+    np.log(x, out=x)
+    x *= a  # x = w*d1
+    n2 = x - w * std  # w*d2
+    ndtr(n2, out=n2)
+    ndtr(x, out=x)
+    x *= w * df_q  # delta = w e^{-q tau} N(w d1)
+    prc = S * x
+    n2 *= k_df
+    prc -= n2  # price = S*delta - w K e^{-r tau} N(w d2)
+    return prc, x
+
+
+def black_scholes(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> Greeks:
+    """Black-Scholes price and Greeks of a European call or put.
+    {params}
+    Returns
+    -------
+    Greeks
+        NamedTuple ``(price, delta, gamma, vega, theta)`` of float64 arrays
+        broadcast over the inputs. ``vega`` is per 1.00 of volatility and
+        ``theta`` is dV/dt per year (QuantLib conventions).
+
+    Notes
+    -----
+    Where ``vol * sqrt(tau)`` is zero, d1 = d2 = +inf / -inf / 0 according to
+    whether the discounted spot ``S e^{{-q tau}}`` is above, below or equal to
+    the discounted strike ``K e^{{-r tau}}``; the normal CDF formulas then give
+    the expiry and zero-volatility limits exactly.
+    """
+    S = np.asarray(spot, dtype=np.float64)
+    K = np.asarray(strike, dtype=np.float64)
+    t = np.maximum(np.asarray(tau, dtype=np.float64), 0.0)  # past expiry == at expiry
+    v = np.maximum(np.asarray(vol, dtype=np.float64), 0.0)
+    r = np.asarray(rate, dtype=np.float64)
+    q = np.asarray(dividend, dtype=np.float64)
+    w = np.where(is_call, 1.0, -1.0)
+
+    # Far-tail densities and probabilities underflow to 0 by design; that is
+    # the correct value, so the underflow flag is not an error here.
+    with np.errstate(under="ignore"):
+        sqrt_t = np.sqrt(t)
+        std = v * sqrt_t
+        live = std > _MIN_STD
+        safe_std = np.where(live, std, 1.0)
+        safe_sqrt_t = np.where(live, sqrt_t, 1.0)
+        std = np.where(live, std, 0.0)
+        df_r = np.exp(-r * t)
+        df_q = np.exp(-q * t)
+        fs = S * df_q  # discounted forward of the spot
+        fk = K * df_r  # discounted strike
+
+        log_m = np.log(S / K) + (r - q) * t
+        d_lim = np.where(fs > fk, np.inf, np.where(fs < fk, -np.inf, 0.0))
+        d1 = np.where(live, log_m / safe_std + 0.5 * std, d_lim)
+        d2 = d1 - std
+
+        n1 = ndtr(w * d1)
+        n2 = ndtr(w * d2)
+        pdf = np.where(live, np.exp(-0.5 * d1 * d1) * _INV_SQRT_2PI, 0.0)
+
+        prc = w * (fs * n1 - fk * n2)
+        dlt = w * df_q * n1
+        gam = df_q * pdf / (S * safe_std)
+        veg = fs * pdf * sqrt_t
+        th = -0.5 * fs * pdf * v / safe_sqrt_t + w * (q * fs * n1 - r * fk * n2)
+        # Expired options have no time value left to decay.
+        th = np.where(t > 0.0, th, 0.0)
+
+    # gamma and vega do not depend on is_call; give every field the same
+    # shape. Adding 0.0 turns the -0.0 of w * 0 into 0.0.
+    fields = [np.asarray(a + 0.0) for a in (prc, dlt, gam, veg, th)]
+    shape = np.broadcast_shapes(*(a.shape for a in fields))
+    return Greeks(*(a if a.shape == shape else np.broadcast_to(a, shape).copy() for a in fields))
+
+
+def price_and_delta(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True):
+    """Black-Scholes price and delta, with a fast path for the hedging loop.
+    {params}
+    Returns
+    -------
+    price : ndarray
+        Option value, float64, broadcast over the inputs.
+    delta : ndarray
+        dV/dS, float64, broadcast over the inputs.
+
+    Notes
+    -----
+    When ``tau``, ``vol``, ``rate``, ``dividend`` and ``is_call`` are scalars
+    with ``tau > 0`` and ``vol > 0`` (the usual case: one time step across
+    many paths) a mask-free path is used: one log over the spot array and
+    two ``ndtr`` calls. Otherwise the general :func:`black_scholes` is used.
+    """
+    t = _as_float(tau)
+    v = _as_float(vol)
+    if t is not None and v is not None and t > 0.0 and v > 0.0 and v * math.sqrt(t) > _MIN_STD:
+        r = _as_float(rate)
+        q = _as_float(dividend)
+        w = _as_sign(is_call)
+        if r is not None and q is not None and w is not None:
+            return _fast_price_delta(spot, strike, t, v, r, q, w)
+    g = black_scholes(spot, strike, tau, vol, rate, dividend, is_call)
+    return g.price, g.delta
+
+
+def price(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.ndarray:
+    """Black-Scholes price of a European option.
+    {params}
+    Returns
+    -------
+    ndarray
+        Option value in currency units of the spot, float64.
+    """
+    return price_and_delta(spot, strike, tau, vol, rate, dividend, is_call)[0]
+
+
+def delta(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.ndarray:
+    """Black-Scholes delta dV/dS.
+    {params}
+    Returns
+    -------
+    ndarray
+        dV/dS, float64 (calls in [0, e^{{-q tau}}], puts in [-e^{{-q tau}}, 0]).
+    """
+    return price_and_delta(spot, strike, tau, vol, rate, dividend, is_call)[1]
+
+
+def gamma(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.ndarray:
+    """Black-Scholes gamma d2V/dS2 (same for calls and puts).
+    {params}
+    Returns
+    -------
+    ndarray
+        d2V/dS2 per unit of spot, float64; 0 at expiry and at zero volatility.
+    """
+    return black_scholes(spot, strike, tau, vol, rate, dividend, is_call).gamma
+
+
+def vega(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.ndarray:
+    """Black-Scholes vega dV/dvol (same for calls and puts).
+    {params}
+    Returns
+    -------
+    ndarray
+        dV/dvol for a change of 1.00 in volatility (divide by 100 for one vol
+        point), float64; 0 at expiry and at zero volatility.
+    """
+    return black_scholes(spot, strike, tau, vol, rate, dividend, is_call).vega
+
+
+def theta(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.ndarray:
+    """Black-Scholes theta dV/dt.
+    {params}
+    Returns
+    -------
+    ndarray
+        dV/dt per year of calendar time (``-dV/dtau``; divide by 365 for a
+        calendar day, as QuantLib's ``thetaPerDay``), float64; 0 at expiry.
+    """
+    return black_scholes(spot, strike, tau, vol, rate, dividend, is_call).theta
+
+
+for _f in (black_scholes, price_and_delta, price, delta, gamma, vega, theta):
+    _f.__doc__ = _f.__doc__.format(params=_PARAMS_DOC)
+del _f
+
+
+def _ncdf(x: float) -> float:
+    # erfc keeps relative accuracy in the lower tail, where 1 + erf(x) would
+    # cancel to zero; erfc(-inf) = 2 and erfc(inf) = 0 give the limits.
+    return 0.5 * math.erfc(-x * _INV_SQRT2)
+
+
+def price_and_delta_scalar(
+    spot: float,
+    strike: float,
+    tau: float,
+    vol: float,
+    rate: float,
+    dividend: float,
+    is_call: bool,
+) -> tuple[float, float]:
+    """Price and delta of one option using :mod:`math` only (no numpy).
+
+    Parameters
+    ----------
+    spot : float
+        Underlying price S, > 0.
+    strike : float
+        Strike K, > 0.
+    tau : float
+        Time to expiry in years; <= 0 means expired (payoff limit).
+    vol : float
+        Annual volatility as a decimal; <= 0 means the zero-volatility limit.
+    rate : float
+        Continuously compounded risk-free rate per year.
+    dividend : float
+        Continuous dividend yield per year.
+    is_call : bool
+        True for a call, False for a put.
+
+    Returns
+    -------
+    price : float
+        Option value in currency units of the spot.
+    delta : float
+        dV/dS.
+    """
+    w = 1.0 if is_call else -1.0
+    if tau <= 0.0:
+        intrinsic = w * (spot - strike)
+        if intrinsic > 0.0:
+            return intrinsic, w
+        if intrinsic < 0.0:
+            return 0.0, 0.0
+        return 0.0, 0.5 * w
+    df_r = math.exp(-rate * tau)
+    df_q = math.exp(-dividend * tau)
+    std = vol * math.sqrt(tau) if vol > 0.0 else 0.0
+    if std <= _MIN_STD:
+        intrinsic = w * (spot * df_q - strike * df_r)
+        if intrinsic > 0.0:
+            return intrinsic, w * df_q
+        if intrinsic < 0.0:
+            return 0.0, 0.0
+        return 0.0, 0.5 * w * df_q
+    d1 = (math.log(spot / strike) + (rate - dividend) * tau) / std + 0.5 * std
+    n1 = _ncdf(w * d1)
+    n2 = _ncdf(w * (d1 - std))
+    dlt = w * df_q * n1
+    return spot * dlt - w * strike * df_r * n2, dlt
+
+
+def gamma_scalar(
+    spot: float,
+    strike: float,
+    tau: float,
+    vol: float,
+    rate: float,
+    dividend: float,
+) -> float:
+    """Gamma d2V/dS2 of one option (calls and puts alike), :mod:`math` only.
+
+    Parameters
+    ----------
+    spot : float
+        Underlying price S, > 0.
+    strike : float
+        Strike K, > 0.
+    tau : float
+        Time to expiry in years; <= 0 gives 0.
+    vol : float
+        Annual volatility as a decimal; <= 0 gives 0.
+    rate : float
+        Continuously compounded risk-free rate per year.
+    dividend : float
+        Continuous dividend yield per year.
+
+    Returns
+    -------
+    float
+        d2V/dS2 per unit of spot.
+    """
+    if tau <= 0.0 or vol <= 0.0:
+        return 0.0
+    std = vol * math.sqrt(tau)
+    if std <= _MIN_STD:
+        return 0.0
+    d1 = (math.log(spot / strike) + (rate - dividend) * tau) / std + 0.5 * std
+    return math.exp(-dividend * tau - 0.5 * d1 * d1) * _INV_SQRT_2PI / (spot * std)

@@ -1,0 +1,93 @@
+"""The hedging problem: book, marks, frictions, objective and rehedge schedule in one object."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import cached_property
+from typing import Literal
+
+import numpy as np
+
+from hedge_env.book import Book, MarkParameters
+from hedge_env.frictions import Frictions
+from hedge_env.objective import Objective
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """Rehedge times: ``steps`` decisions, ``step_days`` apart; the horizon is ``steps * step_days``.
+
+    ``settlement`` says what happens at the horizon: ``"liquidate"`` unwinds
+    the hedge at cost; ``"physical"`` lets options expiring at the horizon
+    settle in shares, so only the residual holding is traded.
+    """
+
+    steps: int = 30
+    step_days: float = 1.0
+    settlement: Literal["liquidate", "physical"] = "liquidate"
+
+    def __post_init__(self) -> None:
+        if self.steps < 1 or self.step_days <= 0:
+            raise ValueError(f"need steps >= 1 and step_days > 0, got {self.steps}, {self.step_days}")
+        if self.settlement not in ("liquidate", "physical"):
+            raise ValueError(f"settlement must be 'liquidate' or 'physical', got {self.settlement!r}")
+
+    @property
+    def horizon_days(self) -> float:
+        return self.steps * self.step_days
+
+    def time_days(self, k: int) -> float:
+        return k * self.step_days
+
+
+@dataclass(frozen=True)
+class HedgingProblem:
+    """Everything the step function needs besides the market paths.
+
+    Parameters
+    ----------
+    book : Book
+        Options held (signed quantities).
+    marks : MarkParameters
+        Black-Scholes inputs of marks and Greeks (volatility, rate, dividend yield, year basis).
+    frictions : Frictions
+        Costs, impact, financing, position limit.
+    objective : Objective
+        Risk aversion and risk measures.
+    schedule : Schedule
+        Rehedge interval, number of rehedges, settlement at the horizon.
+    reference_spot : float
+        Spot that observations are scaled by (the starting spot).
+    """
+
+    book: Book
+    marks: MarkParameters = field(default_factory=MarkParameters)
+    frictions: Frictions = field(default_factory=Frictions)
+    objective: Objective = field(default_factory=Objective)
+    schedule: Schedule = field(default_factory=Schedule)
+    reference_spot: float = 100.0
+
+    @cached_property
+    def dt_years(self) -> float:
+        return self.schedule.step_days / self.marks.days_per_year
+
+    @cached_property
+    def horizon_years(self) -> float:
+        return self.schedule.horizon_days / self.marks.days_per_year
+
+    @cached_property
+    def notional_shares(self) -> float:
+        return self.book.notional_shares
+
+    def years_to_horizon(self, k: int) -> float:
+        return (self.schedule.steps - k) * self.dt_years
+
+    def days_from_years_to_horizon(self, years_left):
+        """Days elapsed at an observation's years to horizon: how policies read time.
+
+        Values within 1e-4 days of a rehedge time snap to it, so float32
+        observations cannot move a time across an option's expiry.
+        """
+        days = self.schedule.horizon_days - np.asarray(years_left, dtype=float) * self.marks.days_per_year
+        on_grid = np.rint(days / self.schedule.step_days) * self.schedule.step_days
+        return np.where(np.abs(days - on_grid) < 1e-4, on_grid, days)

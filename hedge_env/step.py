@@ -1,0 +1,212 @@
+"""The hedging step: the single place where trades, costs, impact, financing,
+marks and settlement are accounted for.
+
+Every user of the dynamics (the Gymnasium env, the vector env, the batch
+rollout, dataset collection) calls :func:`hedge_step`. It runs on numpy
+arrays (one entry per path) or, with ``scalar=True``, on Python floats for
+the single-path environment; the arithmetic is the same code either way.
+
+Accounting of one step from t_k to t_{k+1} (holdings in shares, money in currency)::
+
+    trade       d = a - h                         a: clipped target, h: holding
+    costs       c = cost_rate |d| S + fixed [d != 0] + eta S |d|^(1+beta) / adv^beta
+    impact      I' = I exp(gamma d / adv);  S_{k+1} = X_{k+1} I'   (X: exogenous path)
+    cash        C' = C - d S - c;  financing F = C' (e^{r dt} - 1) + a S q dt - fee max(-a, 0) S dt
+    marks       B_{k+1} = value at t_{k+1} of the options live at t_k (expired ones at payoff)
+    P&L         dW = a (S_{k+1} - S_k) + F - c + (B_{k+1} - B_k)
+    settlement  options expiring by t_{k+1} pay their payoff into cash and leave the book
+
+The book value B is signed (a short book is negative), so wealth is
+``C + h S + B``; it starts at 0 because the premium received equals the
+initial mark. At the horizon the hedge is unwound at ``S_N`` with costs; with
+physical settlement the shares delivered by expiring options are netted
+first, so only the residual trades.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import NamedTuple
+
+import numpy as np
+
+from hedge_env.problem import HedgingProblem
+
+
+@dataclass(frozen=True)
+class HedgeState:
+    """State at decision time t_k, per path (arrays) or for one path (floats).
+
+    Attributes
+    ----------
+    k : int
+        Decision index, 0 .. steps (steps means the episode is over).
+    spot : observed mid price S_k (exogenous price times the impact factor), currency.
+    impact : cumulative permanent-impact factor I_k (1 without impact).
+    holding : shares of underlying held, h_k.
+    cash : cash account C_k, currency.
+    mark : value B_k of the options still in the book, currency (signed).
+    delta : delta of those options at the mark volatility, shares (signed).
+    """
+
+    k: int
+    spot: np.ndarray | float
+    impact: np.ndarray | float
+    holding: np.ndarray | float
+    cash: np.ndarray | float
+    mark: np.ndarray | float
+    delta: np.ndarray | float
+
+    def wealth(self):
+        return self.cash + self.holding * self.spot + self.mark
+
+
+class StepOutcome(NamedTuple):
+    """Result of one step; money in currency, per path.
+
+    ``pnl`` equals ``hedge_gain + book_change + financing - trading_cost - impact_cost``.
+    ``held`` is the holding over the step (the clipped target), shares;
+    ``trades`` counts non-zero trades (the unwind at the horizon included).
+    """
+
+    state: HedgeState
+    held: np.ndarray | float
+    pnl: np.ndarray | float
+    reward: np.ndarray | float
+    hedge_gain: np.ndarray | float
+    book_change: np.ndarray | float
+    financing: np.ndarray | float
+    trading_cost: np.ndarray | float
+    impact_cost: np.ndarray | float
+    traded_shares: np.ndarray | float
+    trades: np.ndarray | int
+
+
+def initial_state(problem: HedgingProblem, spot, volatility=None, scalar: bool = False) -> HedgeState:
+    """State at t_0: no shares, cash equal to the premium received at the mark."""
+    book, marks = problem.book, problem.marks
+    if scalar:
+        mark, delta = book.value_and_delta_scalar(float(spot), 0.0, marks, volatility)
+        return HedgeState(0, float(spot), 1.0, 0.0, -mark, mark, delta)
+    spot = np.asarray(spot, dtype=float)
+    mark, delta = book.value_and_delta(spot, 0.0, marks, volatility)
+    return HedgeState(0, spot, np.ones_like(spot), np.zeros_like(spot), -mark, mark, delta)
+
+
+def hedge_step(
+    problem: HedgingProblem,
+    state: HedgeState,
+    target,
+    exogenous_next,
+    volatility_next=None,
+    scalar: bool = False,
+) -> StepOutcome:
+    """Trade to ``target`` shares at t_k, let the market move, account, settle.
+
+    Parameters
+    ----------
+    problem : HedgingProblem
+    state : HedgeState
+        State at t_k with ``state.k < problem.schedule.steps``.
+    target : float or ndarray
+        Target holding in shares (clipped to the position limit).
+    exogenous_next : float or ndarray
+        Exogenous price X_{k+1} of the market path (before the hedger's impact).
+    volatility_next : float or ndarray, optional
+        Mark volatility at t_{k+1}; default ``problem.marks.volatility``.
+    scalar : bool
+        Work on Python floats (single path) instead of arrays.
+
+    Returns
+    -------
+    StepOutcome
+        The state at t_{k+1} and the P&L parts of the step. After the last
+        step the holding is 0 (unwound) and the cash holds the final wealth
+        less the value of options that outlive the horizon.
+    """
+    frictions, book, marks, schedule = problem.frictions, problem.book, problem.marks, problem.schedule
+    if not 0 <= state.k < schedule.steps:
+        raise ValueError(f"step index {state.k} outside 0..{schedule.steps - 1}: the episode is over")
+    exp = math.exp if scalar else np.exp
+    value_and_delta = book.value_and_delta_scalar if scalar else book.value_and_delta
+    target = frictions.clip_target(float(target) if scalar else target)
+
+    spot = state.spot
+    trade = target - state.holding
+    size = abs(trade)
+    trading_cost = frictions.trading_cost(size, spot)
+    impact_cost = frictions.impact_cost(size, spot)
+    # Zero terms are skipped, not added: this runs once per path and step.
+    paid = trading_cost + impact_cost if frictions.impact_coefficient else trading_cost
+    if frictions.permanent_impact:
+        impact = state.impact * frictions.impact_factor(trade, exp)
+        spot_next = exogenous_next * impact
+    else:
+        impact, spot_next = state.impact, exogenous_next
+    cash = state.cash - trade * spot - paid
+    financing = frictions.financing(cash, target, spot, problem.dt_years) if frictions.has_financing else 0.0
+
+    t_now, t_next = schedule.time_days(state.k), schedule.time_days(state.k + 1)
+    live_next = book.live_legs(t_next)
+    settling = tuple(leg for leg in book.live_legs(t_now) if not leg.live_at(t_next))
+    mark_next, delta_next = value_and_delta(spot_next, t_next, marks, volatility_next, legs=live_next)
+    hedge_gain = target * (spot_next - spot)
+    book_change = mark_next - state.mark
+    if settling:
+        settled = value_and_delta(spot_next, t_next, marks, volatility_next, legs=settling)[0]
+        book_change = book_change + settled
+        cash = cash + settled
+    pnl = hedge_gain + book_change - paid
+    if frictions.has_financing:
+        pnl = pnl + financing
+        cash = cash + financing
+    holding = target
+    traded_shares = size
+    trades = (size > 0) * 1
+
+    if state.k + 1 == schedule.steps:
+        # Unwind at the horizon; physically settled options hand over shares first.
+        residual = target
+        if schedule.settlement == "physical" and settling:
+            delivered = book.delivered_shares(spot_next, settling)
+            residual = target + (float(delivered) if scalar else delivered)
+        unwind = abs(residual)
+        unwind_cost = frictions.trading_cost(unwind, spot_next)
+        unwind_impact = frictions.impact_cost(unwind, spot_next)
+        pnl = pnl - unwind_cost - unwind_impact
+        trading_cost = trading_cost + unwind_cost
+        impact_cost = impact_cost + unwind_impact
+        cash = cash + target * spot_next - unwind_cost - unwind_impact
+        holding = 0.0 * target
+        traded_shares = traded_shares + unwind
+        trades = trades + (unwind > 0) * 1
+
+    next_state = HedgeState(state.k + 1, spot_next, impact, holding, cash, mark_next, delta_next)
+    return StepOutcome(
+        next_state, target, pnl, problem.objective.reward(pnl), hedge_gain, book_change, financing,
+        trading_cost, impact_cost, traded_shares, trades,
+    )
+
+
+def observe(problem: HedgingProblem, state: HedgeState, factor_values=(), out: np.ndarray | None = None,
+            dtype=np.float64) -> np.ndarray:
+    """Observation rows ``[spot / reference spot, years to horizon, holding / notional, *factors]``.
+
+    ``factor_values`` are the observable factors at t_k (arrays like
+    ``state.spot``, or floats). ``out`` is an optional (n, 3 + n_factors)
+    buffer to fill; the result is 2-D for arrays and 1-D for floats.
+    """
+    columns = (
+        state.spot / problem.reference_spot,
+        problem.years_to_horizon(state.k),
+        state.holding / problem.notional_shares,
+        *factor_values,
+    )
+    if isinstance(state.spot, float):
+        return np.array(columns, dtype=dtype)
+    if out is None:
+        out = np.empty((np.shape(state.spot)[0], len(columns)), dtype=dtype)
+    for j, column in enumerate(columns):
+        out[..., j] = column
+    return out

@@ -1,0 +1,351 @@
+"""Config schema, loading, error messages and hashing (agents.config)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from agents.config import (
+    Config,
+    ConfigError,
+    DeltaBaseline,
+    LelandBaseline,
+    config_hash,
+    load_config,
+    parse_config,
+)
+
+DEMO = Path(__file__).resolve().parents[1] / "configs" / "demo.toml"
+
+# A small valid config; each bad case below changes exactly one thing in it.
+MINIMAL = """\
+name = "unit-test"
+seed = 7
+
+[market]
+model = "gbm"
+spot = 100.0
+volatility = 0.2
+
+[[book.options]]
+kind = "call"
+strike = 100.0
+expiry_days = 30
+quantity = -10
+multiplier = 100
+
+[[book.options]]
+kind = "put"
+strike = 95.0
+expiry_days = 30
+quantity = 5
+multiplier = 100
+
+[schedule]
+steps = 30
+
+[frictions]
+cost_rate = 0.001
+
+[objective]
+risk_aversion = 0.001
+"""
+
+
+def write(tmp_path: Path, text: str, name: str = "config.toml") -> Path:
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def variant(old: str, new: str) -> str:
+    assert old in MINIMAL, f"test bug: {old!r} not in MINIMAL"
+    return MINIMAL.replace(old, new, 1)
+
+
+# --- the demo ----------------------------------------------------------------
+
+
+def test_demo_config_loads_and_is_fully_resolved():
+    config = load_config(DEMO)
+    assert isinstance(config, Config)
+    # pricing.volatility is absent in the demo and resolves to market.volatility
+    assert config.pricing.volatility == config.market.volatility
+    # data seeds are derived, filled in and distinct
+    assert isinstance(config.data.train_seed, int)
+    assert isinstance(config.data.heldout_seed, int)
+    assert config.data.train_seed != config.data.heldout_seed
+    # baseline defaults that depend on other sections are filled in
+    for baseline in config.baselines:
+        if isinstance(baseline, (DeltaBaseline, LelandBaseline)):
+            assert baseline.volatility == config.pricing.volatility
+        if isinstance(baseline, LelandBaseline):
+            assert baseline.cost_rate == config.frictions.cost_rate
+    assert config.policy_names[:5] == ["no_hedge", "delta", "leland", "whalley_wilmott", "fixed_band"]
+    assert config.horizon_days == config.schedule.steps * config.schedule.step_days
+    assert config.notional_shares == sum(abs(o.quantity) * o.multiplier for o in config.book.options)
+
+
+def test_demo_book_is_a_short_atm_long_otm_call_spread_rehedged_daily():
+    config = load_config(DEMO)
+    short, long_ = config.book.options
+    assert short.kind == long_.kind == "call"
+    assert short.quantity < 0 < long_.quantity
+    assert short.strike == config.market.spot < long_.strike
+    assert config.schedule.step_days == 1.0 and config.horizon_days == 30
+    assert config.frictions.cost_rate == pytest.approx(0.001)
+    assert 1e-3 <= config.objective.risk_aversion <= 5e-3
+    assert (config.data.train_paths, config.data.heldout_paths) == (20_000, 50_000)
+
+
+def test_resolved_dump_validates_back_to_the_same_config():
+    config = load_config(DEMO)
+    again = parse_config(config.model_dump())
+    assert again == config
+    assert config_hash(again) == config_hash(config)
+
+
+# --- defaults and resolution -------------------------------------------------
+
+
+def test_absent_sections_get_defaults_and_seeds_derive_from_master_seed(tmp_path):
+    config = load_config(write(tmp_path, MINIMAL))
+    assert config.pricing.volatility == 0.2
+    assert config.pricing.days_per_year == 365
+    assert config.data.train_seed == 2 * 7 + 1
+    assert config.data.heldout_seed == 2 * 7 + 2
+    assert [b.kind for b in config.baselines] == [
+        "no_hedge", "delta", "leland", "whalley_wilmott", "fixed_band",
+    ]
+    assert config.agents == []
+    assert config.report.reference_policy == "delta"
+    assert config.objective.var_levels == [0.95, 0.99]
+    assert config.objective.entropic_risk_aversion == config.objective.risk_aversion
+    assert config.frictions.position_limit_shares is None
+
+
+def test_explicit_pricing_volatility_is_kept(tmp_path):
+    text = MINIMAL + "\n[pricing]\nvolatility = 0.3\n"
+    config = load_config(write(tmp_path, text))
+    assert config.pricing.volatility == 0.3
+    delta = next(b for b in config.baselines if b.kind == "delta")
+    assert delta.volatility == 0.3
+
+
+def test_defaulted_seed_moves_rather_than_collide_with_an_explicit_one(tmp_path):
+    text = MINIMAL + "\n[data]\ntrain_seed = 16\n"  # 2 * 7 + 2, the default held-out seed
+    config = load_config(write(tmp_path, text))
+    assert config.data.train_seed == 16
+    assert config.data.heldout_seed != 16
+
+
+def test_entropic_risk_aversion_is_skipped_when_risk_aversion_is_zero(tmp_path):
+    config = load_config(write(tmp_path, variant("risk_aversion = 0.001", "risk_aversion = 0")))
+    assert config.objective.entropic_risk_aversion is None
+
+
+def test_inf_position_limit_means_no_limit(tmp_path):
+    text = variant("cost_rate = 0.001", "cost_rate = 0.001\nposition_limit_shares = inf")
+    assert load_config(write(tmp_path, text)).frictions.position_limit_shares is None
+
+
+# --- hashing -----------------------------------------------------------------
+
+
+def test_config_hash_is_stable_across_loads(tmp_path):
+    path = write(tmp_path, MINIMAL)
+    first, second = config_hash(load_config(path)), config_hash(load_config(path))
+    assert first == second
+    assert len(first) == 64 and int(first, 16) >= 0
+    assert config_hash(load_config(DEMO)) == config_hash(load_config(DEMO))
+
+
+def test_config_hash_changes_when_a_value_changes(tmp_path):
+    base = config_hash(load_config(write(tmp_path, MINIMAL, "a.toml")))
+    changed = config_hash(load_config(write(tmp_path, variant("strike = 95.0", "strike = 96.0"), "b.toml")))
+    assert base != changed
+
+
+def test_config_hash_ignores_formatting_and_spelt_out_defaults(tmp_path):
+    base = config_hash(load_config(write(tmp_path, MINIMAL, "a.toml")))
+    spelt_out = MINIMAL + "\n# a comment\n[pricing]\nvolatility = 0.2\ndays_per_year = 365\n"
+    assert config_hash(load_config(write(tmp_path, spelt_out, "b.toml"))) == base
+
+
+# --- error messages ----------------------------------------------------------
+
+BAD_INPUTS = [
+    pytest.param(
+        variant("strike = 95.0", "strike = -5"),
+        "book.options[1].strike: must be > 0, got -5",
+        id="negative-strike",
+    ),
+    pytest.param(
+        variant("volatility = 0.2", "volatilty = 0.2\nvolatility = 0.2"),
+        "market.volatilty: unknown key 'volatilty' (did you mean 'volatility'?)",
+        id="unknown-key",
+    ),
+    pytest.param(
+        variant('model = "gbm"', 'model = "gmb"'),
+        "market.model: must be one of 'gbm', got 'gmb'",
+        id="bad-market-model",
+    ),
+    pytest.param(
+        variant("spot = 100.0\n", ""),
+        "market.spot: required key missing",
+        id="missing-required-key",
+    ),
+    pytest.param(
+        variant("spot = 100.0", 'spot = "abc"'),
+        "market.spot: must be a number, got 'abc'",
+        id="not-a-number",
+    ),
+    pytest.param(
+        variant("spot = 100.0", "spot = true"),
+        "market.spot: must be a number, got true",
+        id="bool-is-not-a-number",
+    ),
+    pytest.param(
+        variant("steps = 30", "steps = 30.5"),
+        "schedule.steps: must be an integer, got 30.5",
+        id="not-an-integer",
+    ),
+    pytest.param(
+        variant("risk_aversion = 0.001", "risk_aversion = 0.001\nvar_levels = [1.5, 0.99]"),
+        "objective.var_levels[0]: must be in (0, 1), got 1.5",
+        id="var-level-out-of-range",
+    ),
+    pytest.param(
+        variant("cost_rate = 0.001", "cost_rate = -0.1"),
+        "frictions.cost_rate: must be >= 0, got -0.1",
+        id="negative-cost-rate",
+    ),
+    pytest.param(
+        variant("cost_rate = 0.001", "cost_rate = 0.001\nimpact_exponent = 1.5"),
+        "frictions.impact_exponent: must be in [0, 1], got 1.5",
+        id="impact-exponent-out-of-range",
+    ),
+    pytest.param(
+        variant('kind = "put"', 'kind = "pt"'),
+        "book.options[1].kind: must be one of 'call', 'put', got 'pt'",
+        id="bad-option-kind",
+    ),
+    pytest.param(
+        variant("quantity = 5", "quantity = 0"),
+        "book.options[1].quantity: must be non-zero (+ long, - short), got 0",
+        id="zero-quantity",
+    ),
+    pytest.param(
+        MINIMAL + '\n[[baselines]]\nkind = "delta"\n\n[[baselines]]\nkind = "delta"\n',
+        "baselines[1].name: duplicate policy name 'delta'",
+        id="duplicate-baseline-names",
+    ),
+    pytest.param(
+        MINIMAL + '\n[[baselines]]\nkind = "delta"\n\n[[baselines]]\nkind = "no_hedge"\n'
+        '\n[[baselines]]\nkind = "deltaa"\n',
+        "baselines[2].kind: must be one of 'no_hedge', 'delta', 'leland', 'whalley_wilmott', "
+        "'fixed_band', got 'deltaa'",
+        id="unknown-baseline-kind",
+    ),
+    pytest.param(
+        MINIMAL + '\n[[baselines]]\nkind = "whalley_wilmott"\nrisk_aversion = "auto"\n',
+        "baselines[0].risk_aversion: must be a number > 0 or 'tune', got 'auto'",
+        id="tunable-parameter-bad-string",
+    ),
+    pytest.param(
+        MINIMAL + '\n[[agents]]\nkind = "linear"\nname = "delta"\n',
+        "agents[0].name: duplicate policy name 'delta'",
+        id="agent-name-clashes-with-baseline",
+    ),
+    pytest.param(
+        MINIMAL.split("[[book.options]]")[0] + "[book]\noptions = []\n"
+        + "[schedule]" + MINIMAL.split("[schedule]")[1],
+        "book.options: must hold at least one option",
+        id="empty-book",
+    ),
+    pytest.param(
+        MINIMAL + "\n[data]\nheldout_paths = 0\n",
+        "data.heldout_paths: must be > 0, got 0",
+        id="zero-heldout-paths",
+    ),
+    pytest.param(
+        MINIMAL + "\n[data]\ntrain_seed = 3\nheldout_seed = 3\n",
+        "data.heldout_seed: must differ from data.train_seed, got 3",
+        id="equal-data-seeds",
+    ),
+    pytest.param(
+        MINIMAL + '\n[report]\nreference_policy = "bs_delta"\n',
+        "report.reference_policy: unknown policy 'bs_delta'; policies: 'no_hedge', 'delta', "
+        "'leland', 'whalley_wilmott', 'fixed_band'",
+        id="unknown-reference-policy",
+    ),
+    pytest.param(
+        variant('name = "unit-test"', 'name = "unit test"'),
+        "name: must use only letters, digits, '_', '.', '-' (it names run folders), got 'unit test'",
+        id="name-unsafe-for-folders",
+    ),
+]
+
+
+@pytest.mark.parametrize("text, expected", BAD_INPUTS)
+def test_bad_input_gives_exactly_one_line_naming_the_key(tmp_path, text, expected):
+    with pytest.raises(ConfigError) as info:
+        load_config(write(tmp_path, text))
+    message = str(info.value)
+    assert message == expected
+    assert "\n" not in message
+    assert info.value.key == expected.split(": ")[0]
+
+
+def test_each_reported_problem_is_one_line_and_the_count_of_others_is_given(tmp_path):
+    text = variant("spot = 100.0", "spot = -1").replace("volatility = 0.2", "volatility = -1")
+    with pytest.raises(ConfigError) as info:
+        load_config(write(tmp_path, text))
+    assert str(info.value) == "market.spot: must be > 0, got -1 (and 1 more error)"
+    assert info.value.problems == (
+        "market.spot: must be > 0, got -1",
+        "market.volatility: must be > 0, got -1",
+    )
+    assert all("\n" not in p for p in info.value.problems)
+
+
+def test_book_options_written_as_a_single_table_gets_a_hint(tmp_path):
+    text = MINIMAL.split("[[book.options]]")[0] + (
+        '[book.options]\nkind = "call"\nstrike = 100.0\nexpiry_days = 30\nquantity = -10\n\n'
+    ) + "[schedule]" + MINIMAL.split("[schedule]")[1]
+    with pytest.raises(ConfigError) as info:
+        load_config(write(tmp_path, text))
+    assert str(info.value) == (
+        "book.options: must be an array, got a table (write [[book.options]] for each entry)"
+    )
+
+
+def test_toml_syntax_error_names_the_file_and_line(tmp_path):
+    text = variant("steps = 30", "steps = = 30")
+    line = text.splitlines().index("steps = = 30") + 1
+    path = write(tmp_path, text)
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    message = str(info.value)
+    assert "\n" not in message
+    assert message.startswith(f"{path}: TOML syntax error at line {line}")
+
+
+def test_missing_file_is_a_config_error(tmp_path):
+    path = tmp_path / "nope.toml"
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    assert str(info.value) == f"{path}: config file not found"
+
+
+def test_config_error_is_a_value_error_and_records_its_source(tmp_path):
+    with pytest.raises(ValueError) as info:
+        parse_config({"name": "x"}, source="inline")
+    assert isinstance(info.value, ConfigError)
+    assert info.value.source == "inline"
+
+
+def test_non_table_input_is_rejected():
+    with pytest.raises(ConfigError, match="must be a table"):
+        parse_config([1, 2, 3])  # type: ignore[arg-type]
