@@ -154,8 +154,10 @@ def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w):
     if not isinstance(x, np.ndarray):
         # Scalar spot and strike: numpy scalars cannot be written in place.
         x = np.log(x) * a
-        dlt = ndtr(x) * (w * df_q)
-        return np.asarray(S * dlt - ndtr(x - w * std) * k_df), np.asarray(dlt)
+        with np.errstate(under="ignore"):
+            dlt = ndtr(x) * (w * df_q)
+            prc = S * dlt - ndtr(x - w * std) * k_df
+        return np.asarray(prc), np.asarray(dlt)
     # Array case: work in place in x, which has the full broadcast shape of
     # spot and strike, so only three arrays are allocated.
     np.log(x, out=x)
@@ -163,10 +165,13 @@ def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w):
     n2 = x - w * std  # w*d2
     ndtr(n2, out=n2)
     ndtr(x, out=x)
-    x *= w * df_q  # delta = w e^{-q tau} N(w d1)
-    prc = S * x
-    n2 *= k_df
-    prc -= n2  # price = S*delta - w K e^{-r tau} N(w d2)
+    # ndtr returns subnormals for w*d in about [-37.7, -37.5]; scaling them
+    # may underflow, which is correct, so keep a caller's under="raise" quiet.
+    with np.errstate(under="ignore"):
+        x *= w * df_q  # delta = w e^{-q tau} N(w d1)
+        prc = S * x
+        n2 *= k_df
+        prc -= n2  # price = S*delta - w K e^{-r tau} N(w d2)
     return prc, x
 
 

@@ -1,0 +1,163 @@
+"""The `rehedge` command line: parses arguments and calls library functions, nothing more."""
+
+from __future__ import annotations
+
+import json
+import sys
+from contextlib import contextmanager
+from pathlib import Path
+
+import typer
+from rich import box
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.table import Table
+
+from agents.config import ConfigError, load_config
+from agents.evaluate import evaluate_policies
+from agents.scenario import build_market, build_problem, prepare_baselines
+
+CAUTION = (
+    "Decision support, not advice: a policy is only as good as the market model and data it was "
+    "trained on; check positions, limits and fills against the desk's own risk systems and the "
+    "rules that apply where you trade."
+)
+
+app = typer.Typer(
+    name="rehedge",
+    help="Train, compare and export option-hedging policies under trading costs, impact and financing.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+# Tables are wide: when the output is not a terminal, do not fold them at 80 columns.
+console = Console(width=None if sys.stdout.isatty() else 160)
+errors = Console(stderr=True)
+
+
+def fail(message: str, code: int = 2) -> None:
+    """One line on stderr and a non-zero exit: for errors a user can cause."""
+    errors.print(f"error: {message}", markup=False, highlight=False)
+    raise typer.Exit(code)
+
+
+def _load(path: Path):
+    try:
+        return load_config(path)
+    except ConfigError as error:
+        fail(str(error))
+
+
+@contextmanager
+def _progress(quiet: bool):
+    """A rich progress bar on stderr (or nothing with --quiet); yields ``start(label, total) -> advance``."""
+    if quiet:
+        yield lambda label, total: (lambda n: None)
+        return
+    with Progress(
+        TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+        console=errors, transient=True,
+    ) as progress:
+
+        def start(label: str, total: int):
+            task = progress.add_task(label, total=total)
+            return lambda n: progress.advance(task, n)
+
+        yield start
+
+
+def _money(value: float) -> str:
+    return f"{value:,.0f}" if abs(value) >= 100 else f"{value:,.3g}" if abs(value) < 1 else f"{value:,.2f}"
+
+
+def _count(value: float) -> str:
+    return f"{value:.2f}"
+
+
+_COLUMNS = [
+    ("objective", "objective", _money),
+    ("mean_pnl", "mean P&L", _money),
+    ("std_pnl", "std P&L", _money),
+    ("cvar_95", "CVaR 95", _money),
+    ("cvar_99", "CVaR 99", _money),
+    ("mean_cost", "cost", _money),
+    ("mean_impact", "impact", _money),
+    ("turnover", "turnover", _count),
+    ("trades", "trades", _count),
+]
+
+
+def _print_table(title: str, records: list[dict]) -> None:
+    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("policy", no_wrap=True)
+    present = [c for c in _COLUMNS if c[0] in records[0]]
+    for _, header, _ in present:
+        table.add_column(header, justify="right", no_wrap=True)
+    for record in records:
+        label = record["name"] if record["kind"] in ("", record["name"]) else f"{record['name']} ({record['kind']})"
+        table.add_row(label, *(fmt(record[key]) for key, _, fmt in present))
+    console.print(table)
+
+
+@app.command("check-config")
+def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -> None:
+    """Validate a config file; print what it describes, or the first error in one line."""
+    cfg = _load(config)
+    console.print(
+        f"{config}: ok: {len(cfg.book.options)} option(s), {cfg.notional_shares:g} notional shares, "
+        f"{cfg.schedule.steps} rehedges over {cfg.horizon_days:g} days, "
+        f"{len(cfg.baselines)} baseline(s), {len(cfg.agents)} agent(s)",
+        highlight=False,
+    )
+
+
+@app.command()
+def evaluate(
+    config: Path = typer.Argument(..., help="TOML config file."),
+    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
+    seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+) -> None:
+    """Score every baseline of CONFIG on held-out paths and print them ranked by objective."""
+    cfg = _load(config)
+    problem, market = build_problem(cfg), build_market(cfg)
+    n_paths = paths or cfg.data.heldout_paths
+    seed = cfg.data.heldout_seed if seed is None else seed
+    with _progress(quiet) as start:
+        if any(getattr(s, p, None) == "tune" for s in cfg.baselines for p in ("risk_aversion", "half_width")):
+            start("tuning baselines on training paths", 1)
+        policies, tuning = prepare_baselines(cfg, problem, market)
+        advance = start("hedging held-out paths", n_paths)
+        kinds = {spec.name: spec.kind for spec in cfg.baselines}
+        evaluation = evaluate_policies(
+            problem, policies, market, n_paths, seed, kinds, cfg.data.chunk_paths, progress=advance
+        )
+    records = evaluation.to_records()
+    if as_json:
+        out = {
+            "config": cfg.name,
+            "heldout_paths": n_paths,
+            "heldout_seed": seed,
+            "tuned": {name: {r.parameter: r.value, "train_objective": r.objective} for name, r in tuning.items()},
+            "policies": records,
+            "caution": CAUTION,
+        }
+        sys.stdout.write(json.dumps(out, indent=2) + "\n")
+        return
+    _print_table(
+        f"{cfg.name}: {n_paths:,} held-out paths, seed {seed}; money in currency units, "
+        "costs per path, turnover in notionals",
+        records,
+    )
+    for name, result in tuning.items():
+        console.print(f"tuned on training paths: {name}.{result.parameter} = {result.value:.6g}", highlight=False)
+    console.print(CAUTION, style="dim", highlight=False)
+
+
+def main() -> None:  # pragma: no cover - console entry point
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()
