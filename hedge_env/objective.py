@@ -65,7 +65,7 @@ def level_tag(level: float) -> str:
 def value_at_risk(pnl: np.ndarray, level: float, presorted: bool = False) -> float:
     """Loss not exceeded with probability ``level``: minus the lower (1 - level) quantile of P&L."""
     ordered = pnl if presorted else np.sort(pnl)
-    tail = (1.0 - level) * ordered.size
+    tail = round((1.0 - level) * ordered.size, 9)  # 1 - 0.95 is 0.0500...04: keep ceil off the next atom
     index = min(max(int(np.ceil(tail)) - 1, 0), ordered.size - 1)
     return float(-ordered[index])
 

@@ -124,15 +124,16 @@ def test_rollout_over_given_paths_equals_a_manual_loop_over_the_single_env():
 
 def test_kamal_derman_std_of_discrete_delta_hedge_within_its_known_approximation_error():
     # Kamal and Derman (1999), "When you cannot hedge continuously: the corrections to
-    # Black-Scholes" (Goldman Sachs research note), from memory: std of the P&L of a short ATM
+    # Black-Scholes", Risk, January 1999, from memory: std of the P&L of a short ATM
     # option delta-hedged N times without costs ~ sqrt(pi/4) * vol * vega / sqrt(N).
     # REFERENCES.md: the formula overstates the simulated std by about 8% at N = 4, 3-4% at
     # N = 30 and 2% at N = 80. So the ratio simulated / formula must lie in
     # [1 - gap bound - 4 se, 1 + 4 se], and the gap must shrink with N.
-    maturity_days, volatility, n = 30.0, 0.2, 60_000
+    maturity_days, volatility, n = 30.0, 0.2, 150_000
     gap_bound = {4: 0.08, 30: 0.04, 120: 0.02}  # at 120 the 80-rehedge figure bounds it (the gap shrinks)
     # One set of 120-step paths, sampled every 30, 4 and 1 steps: the same Brownian paths at every N,
-    # so the std estimates are positively correlated and their differences are precise.
+    # so the std estimates are correlated. 150k paths make the expected gap difference between
+    # N = 30 and N = 120 (about 0.02, REFERENCES.md) some 7 standard errors (about 0.0028).
     fine = GBMMarket(spot=100.0, drift=0.0, volatility=volatility).generate(
         n, 120, maturity_days / 120 / 365.0, seed=21)
     vega = float(pricing.vega(100.0, 100.0, maturity_days / 365.0, volatility))
@@ -234,6 +235,28 @@ def test_summary_of_a_hand_made_result_gives_the_hand_computed_metrics():
     assert row["turnover"] == pytest.approx(3.0 / 2.0, rel=1e-12)
     assert row["trades"] == pytest.approx(12.0 / 5.0, rel=1e-12)
     assert row["paths"] == 5
+
+
+def test_summary_var_is_the_lower_quantile_even_when_the_tail_count_is_a_whole_number():
+    # 100 outcomes, losses 1..100: the 95% VaR is the 5th worst loss (96) and the 99% VaR the worst
+    # (100), although 1 - 0.95 is 0.05000000000000004 in floating point. Reference library: numpy's
+    # quantile with method="inverted_cdf" (Hyndman and Fan, 1996, definition 1), given the tail
+    # probability as the decimal it is.
+    pnl = -np.arange(1.0, 101.0)
+    zeros = np.zeros(100)
+    result = HedgeResult("var", Objective(var_levels=(0.9, 0.95, 0.975, 0.99)), 1.0, pnl, zeros, zeros, zeros,
+                         zeros, zeros, zeros, zeros, zeros)
+    row = result.summary()
+    assert [row["var_90"], row["var_95"], row["var_97.5"], row["var_99"]] == [91.0, 96.0, 98.0, 100.0]
+    assert row["cvar_95"] == pytest.approx((100 + 99 + 98 + 97 + 96) / 5, rel=1e-12)
+    rng = np.random.default_rng(0)
+    levels = {0.7: 0.3, 0.75: 0.25, 0.9: 0.1, 0.95: 0.05, 0.975: 0.025, 0.99: 0.01}
+    for n in (20, 40, 100, 200, 400, 1000, 2000):
+        sample = rng.normal(size=n)
+        measures = Objective(var_levels=tuple(levels)).risk_measures(sample)
+        for level, tail_probability in levels.items():
+            expected = -np.quantile(sample, tail_probability, method="inverted_cdf")
+            assert measures[f"var_{level * 100:g}"] == expected, (n, level)
 
 
 def test_rollout_objective_is_the_mean_of_summed_step_rewards_and_cvar_is_at_least_var():

@@ -1,0 +1,163 @@
+"""Finite-horizon backward fitting of Q functions from offline transitions.
+
+Shared by the fitted-Q agent (any scikit-learn regressor) and the
+linear-basis agent (streamed ridge least squares). At decision time k
+
+    Q_k(s, a) = cost_part(s, a) + model_k(basis(s, a))
+
+``cost_part`` is the part of the reward that is a known function of the
+trade: ``-paid - kappa/2 paid^2`` with ``paid`` the trading and impact cost
+of moving from the holding to ``a`` at the current spot, computed with the
+step's own cost formulas (``problem.frictions``). The model learns the rest:
+the market's part of the reward and the value of what follows,
+``r - cost_part + max_a' Q_{k+1}(s', a')``, fitted backward from the last
+decision to the first (one regression per decision time).
+
+The greedy action maximises Q over a candidate set that always holds no
+trade, the Black-Scholes hedge, band edges around it
+(``hedge +/- band_widths``) and partial moves toward it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable
+
+import numpy as np
+from sklearn.base import BaseEstimator
+
+from agents.dataset import Transitions
+from agents.features import StateFeatures, basis, state_features
+from hedge_env.problem import HedgingProblem
+
+DEFAULT_BAND_WIDTHS = (0.0025, 0.005, 0.0075, 0.01, 0.015, 0.02, 0.025, 0.03, 0.04, 0.05, 0.065, 0.08,
+                       0.1, 0.13, 0.17, 0.22, 0.3)
+DEFAULT_PARTIAL_MOVES = (0.25, 0.5, 0.75)
+ROW_BLOCK = 2048  # rows evaluated at a time: bounds the (rows, candidates, basis) array
+
+
+def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: float) -> np.ndarray:
+    """(n, C) candidate targets per share of notional: no trade, hedge, band edges, partial moves."""
+    h, hedge = state.holding[:, None], state.hedge[:, None]
+    widths = np.asarray(band_widths, dtype=float)
+    moves = np.asarray(partial_moves, dtype=float)
+    columns = [h, hedge, hedge - widths, hedge + widths, h + moves * (hedge - h)]
+    return np.clip(np.concatenate(columns, axis=1), -limit, limit)
+
+
+def cost_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+    """The known part of the reward of moving to ``targets`` (n, C): ``-paid - kappa/2 paid^2``."""
+    frictions = problem.frictions
+    size = np.abs(targets - state.holding[:, None]) * problem.notional_shares
+    spot = state.spot[:, None]
+    paid = frictions.trading_cost(size, spot) + frictions.impact_cost(size, spot)
+    return -paid - 0.5 * problem.objective.risk_aversion * paid * paid
+
+
+def decision_index(problem: HedgingProblem, obs: np.ndarray) -> np.ndarray:
+    """Decision time index k of each observation row."""
+    days = problem.days_from_years_to_horizon(obs[:, 1])
+    k = np.rint(days / problem.schedule.step_days).astype(int)
+    return np.clip(k, 0, problem.schedule.steps - 1)
+
+
+TransitionSource = Transitions | Callable[[], Iterable[Transitions]]
+
+
+def _chunks(data: TransitionSource) -> Iterable[Transitions]:
+    return [data] if isinstance(data, Transitions) else data()
+
+
+class BackwardQAgent(BaseEstimator):
+    """Base of the batch agents; subclasses say how one decision time's regression is fitted.
+
+    Subclasses implement ``_start_step(k)``, ``_add(k, X, y)`` (rows of the
+    design and targets, chunk by chunk), ``_finish_step(k)`` and
+    ``_predict(k, X)`` for an array of shape (..., n_basis).
+    """
+
+    within_state = False
+    name: str
+    problem: HedgingProblem
+    terms: tuple[str, ...]
+    band_widths: tuple[float, ...]
+    partial_moves: tuple[float, ...]
+    factor_names: tuple[str, ...]
+
+    # -- fitting ------------------------------------------------------------------------------
+    def fit(self, data: TransitionSource, progress: Callable[[int], None] | None = None):
+        """Fit from transitions: a Transitions block, or a callable returning an iterable of blocks
+        (called once per decision time, so the data may be streamed from paths)."""
+        steps = self.problem.schedule.steps
+        self._setup()
+        for k in reversed(range(steps)):
+            self._start_step(k)
+            for chunk in _chunks(data):
+                if chunk.steps != steps:
+                    raise ValueError(f"transitions have {chunk.steps} steps, the schedule has {steps}")
+                X, y = self._regression_rows(chunk, k)
+                self._add(k, X, y)
+            self._finish_step(k)
+            if progress is not None:
+                progress(1)
+        return self
+
+    def _setup(self) -> None:
+        """Reset learned state before a fit."""
+
+    def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """Design rows and targets of step k: one row per tried action.
+
+        With ``within_state`` the rows are centred on their state's mean over
+        the tried actions: a fixed-effects regression that learns Q up to a
+        function of the state alone, which no greedy choice depends on, and
+        cancels the market move that the tried actions share.
+        """
+        state = state_features(self.problem, chunk.obs[k], self.factor_names)
+        targets = chunk.actions[k]
+        X = basis(self.terms, state, targets)
+        y = chunk.rewards[k] - cost_part(self.problem, state, targets)
+        if not chunk.done(k):
+            y = y + self.value(chunk.next_observations(k), k + 1).reshape(y.shape)
+        if self.within_state:
+            X = X - X.mean(axis=1, keepdims=True)
+            y = y - y.mean(axis=1, keepdims=True)
+        return X.reshape(-1, len(self.terms)), y.reshape(-1)
+
+    # -- using the fitted Q ------------------------------------------------------------------
+    def _q(self, k: int, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+        return cost_part(self.problem, state, targets) + self._predict(k, basis(self.terms, state, targets))
+
+    def _limit(self) -> float:
+        return self.problem.frictions.position_limit_shares / self.problem.notional_shares
+
+    def _best(self, obs: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """Greedy targets and their Q values for rows all at decision time k."""
+        targets_out = np.empty(len(obs))
+        values_out = np.empty(len(obs))
+        for start in range(0, len(obs), ROW_BLOCK):
+            rows = slice(start, start + ROW_BLOCK)
+            state = state_features(self.problem, obs[rows], self.factor_names)
+            targets = candidate_targets(state, self.band_widths, self.partial_moves, self._limit())
+            q = self._q(k, state, targets)
+            best = np.argmax(q, axis=1)
+            pick = np.arange(len(best))
+            targets_out[rows] = targets[pick, best]
+            values_out[rows] = q[pick, best]
+        return targets_out, values_out
+
+    def value(self, obs: np.ndarray, k: int) -> np.ndarray:
+        """max_a Q_k(s, a) of rows at decision time k (up to a function of the state alone when
+        fitted within states: differences between holdings at the same spot are what count)."""
+        return self._best(np.asarray(obs, dtype=float), k)[1]
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        """Greedy target holdings per share of notional (Policy protocol)."""
+        obs = np.asarray(obs, dtype=float)
+        k = decision_index(self.problem, obs)
+        if (k == k[0]).all():
+            return self._best(obs, int(k[0]))[0]
+        targets = np.empty(len(obs))
+        for step in np.unique(k):
+            rows = k == step
+            targets[rows] = self._best(obs[rows], int(step))[0]
+        return targets

@@ -1,0 +1,161 @@
+"""Offline transitions from market paths and an exploring behaviour policy.
+
+The behaviour policy explores the actions that matter for hedging under
+costs: no trade, trade to delta, and targets spread around both. Because the
+market path does not depend on the hedger's target (unless permanent impact
+is on), each visited state is also replayed with a few more targets on the
+same market move (``actions_per_state``): common random numbers that let a
+regression tell the actions apart at a fraction of the paths. The trajectory
+itself follows the first (behaviour) action.
+
+Every reward comes from :func:`hedge_env.step.hedge_step`; nothing here
+computes a cost or a mark.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from hedge_env.market import MarketPaths, PathGenerator
+from hedge_env.problem import HedgingProblem
+from hedge_env.rollout import MARK_VOLATILITY_FACTOR, as_market
+from hedge_env.step import HedgeState, hedge_step, initial_state, observe
+
+
+@dataclass(frozen=True)
+class Exploration:
+    """Behaviour policy: with probability ``no_trade`` keep the holding, with ``delta`` trade
+    to the Black-Scholes hedge, otherwise draw a target ``spread`` (per share of notional,
+    normal) around the hedge or around the holding, half and half."""
+
+    no_trade: float = 0.3
+    delta: float = 0.2
+    spread: float = 0.08
+    actions_per_state: int = 4
+
+    def __post_init__(self) -> None:
+        if not (0 <= self.no_trade and 0 <= self.delta and self.no_trade + self.delta <= 1):
+            raise ValueError("exploration: no_trade and delta must be probabilities summing to <= 1")
+        if self.spread < 0 or self.actions_per_state < 1:
+            raise ValueError("exploration: spread must be >= 0 and actions_per_state >= 1")
+
+    def draw(self, rng: np.random.Generator, holding: np.ndarray, hedge: np.ndarray, size: int) -> np.ndarray:
+        """(n, size) targets per share of notional for rows with ``holding`` and ``hedge``."""
+        n = holding.shape[0]
+        u = rng.random((n, size))
+        center = np.where(rng.random((n, size)) < 0.5, hedge[:, None], holding[:, None])
+        spread = center + self.spread * rng.standard_normal((n, size))
+        targets = np.where(u < self.no_trade + self.delta, hedge[:, None], spread)
+        return np.where(u < self.no_trade, holding[:, None], targets)
+
+
+@dataclass
+class Transitions:
+    """Transitions of a block of paths, by decision time.
+
+    Shapes: ``obs`` (steps, n, n_obs): the visited states; ``actions``,
+    ``rewards``, ``next_holding`` (steps, n, M): M targets tried at each
+    state (column 0 the behaviour's), per share of notional, their rewards
+    and the holding they led to; ``next_obs`` (steps, n, n_obs): the next
+    observation with the holding column of the behaviour action (replace it
+    with ``next_holding`` for the other columns). The step after the last
+    decision is terminal (``done``).
+    """
+
+    obs: np.ndarray
+    actions: np.ndarray
+    rewards: np.ndarray
+    next_obs: np.ndarray
+    next_holding: np.ndarray
+
+    @property
+    def steps(self) -> int:
+        return self.obs.shape[0]
+
+    @property
+    def n_states(self) -> int:
+        return self.obs.shape[1]
+
+    def done(self, k: int) -> bool:
+        return k == self.steps - 1
+
+    def next_observations(self, k: int) -> np.ndarray:
+        """(n * M, n_obs) next observations of every tried action at step ``k`` (row-major in (n, M))."""
+        n, m = self.actions.shape[1:]
+        tiled = np.repeat(self.next_obs[k], m, axis=0)
+        tiled[:, 2] = self.next_holding[k].reshape(n * m)
+        return tiled
+
+    def flat(self) -> dict[str, np.ndarray]:
+        """The classic (obs, action, reward, next_obs, done) rows, one per tried action."""
+        steps, n, m = self.actions.shape
+        obs = np.repeat(self.obs.reshape(steps * n, -1), m, axis=0)
+        next_obs = np.concatenate([self.next_observations(k) for k in range(steps)])
+        done = np.repeat(np.arange(steps) == steps - 1, n * m)
+        return {"obs": obs, "action": self.actions.reshape(-1), "reward": self.rewards.reshape(-1),
+                "next_obs": next_obs, "done": done}
+
+    @staticmethod
+    def concat(parts: list[Transitions]) -> Transitions:
+        return Transitions(*(np.concatenate([getattr(p, f) for p in parts], axis=1)
+                             for f in ("obs", "actions", "rewards", "next_obs", "next_holding")))
+
+
+_STATE_ARRAYS = ("spot", "impact", "holding", "cash", "mark", "delta")
+
+
+def _tile(state: HedgeState, m: int) -> HedgeState:
+    """The state repeated m times (block j of the result is copy j)."""
+    return HedgeState(state.k, *(np.tile(getattr(state, name), m) for name in _STATE_ARRAYS))
+
+
+def _first_rows(state: HedgeState, n: int) -> HedgeState:
+    return HedgeState(state.k, *(getattr(state, name)[:n] for name in _STATE_ARRAYS))
+
+
+def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploration, seed: int,
+            observed: tuple[str, ...] = ()) -> Transitions:
+    """Transitions of ``paths`` under the behaviour policy (random draws from ``seed``)."""
+    rng = np.random.default_rng(seed)
+    n, steps, m = paths.n_paths, problem.schedule.steps, exploration.actions_per_state
+    notional = problem.notional_shares
+    spot = np.ascontiguousarray(paths.spot.T)
+    factors = {name: np.ascontiguousarray(v.T) for name, v in paths.factors.items()}
+    mark_vol = factors.get(MARK_VOLATILITY_FACTOR)
+    state = initial_state(problem, spot[0], None if mark_vol is None else mark_vol[0])
+    n_obs = 3 + len(observed)
+    obs = np.empty((steps, n, n_obs))
+    next_obs = np.empty((steps, n, n_obs))
+    actions = np.empty((steps, n, m))
+    rewards = np.empty((steps, n, m))
+    next_holding = np.empty((steps, n, m))
+    for k in range(steps):
+        obs[k] = observe(problem, state, [factors[f][k] for f in observed])
+        hedge = -state.delta / notional
+        actions[k] = exploration.draw(rng, obs[k, :, 2], hedge, m)
+        # Column-major tiling: rows j*n .. (j+1)*n-1 are action j of every state.
+        outcome = hedge_step(
+            problem, _tile(state, m), actions[k].T.reshape(-1) * notional, np.tile(spot[k + 1], m),
+            None if mark_vol is None else np.tile(mark_vol[k + 1], m),
+        )
+        rewards[k] = outcome.reward.reshape(m, n).T
+        next_holding[k] = (outcome.state.holding / notional).reshape(m, n).T
+        state = _first_rows(outcome.state, n)  # the trajectory follows the behaviour action
+        next_obs[k] = observe(problem, state, [factors[f][k + 1] for f in observed])
+    return Transitions(obs, actions, rewards, next_obs, next_holding)
+
+
+def collect_chunks(problem: HedgingProblem, source: PathGenerator | MarketPaths, n_paths: int, seed: int,
+                   exploration: Exploration, chunk_paths: int = 8192) -> Iterator[Transitions]:
+    """Transitions of ``n_paths`` paths of ``source``, a chunk of paths at a time.
+
+    Paths come from ``seed``; the behaviour's draws from a child of it per chunk.
+    """
+    market = as_market(source)
+    for index, chunk in enumerate(market.iter_chunks(n_paths, problem.schedule.steps, problem.dt_years, seed,
+                                                     chunk_paths)):
+        behaviour_seed = np.random.SeedSequence(seed, spawn_key=(1, index))
+        yield collect(problem, chunk, exploration, behaviour_seed, market.observed_factors)

@@ -1,0 +1,144 @@
+"""Basis functions of a state and a candidate target holding.
+
+State features are computed once per observation row and shared by every
+candidate action of that row; action features broadcast over an (n, C)
+array of candidates. Units: holdings and targets per share of notional,
+moneyness as log(spot / reference spot), years to the horizon.
+
+Names of the basis (``FEATURES``):
+
+=============  ===============================================================
+moneyness      m = log(S / reference spot)
+years_left     years to the horizon
+holding        current holding h
+hedge          Black-Scholes hedge delta_h = -book delta / notional (mark volatility)
+gamma          book gamma x S / notional: change of the hedge per unit log move
+target         candidate target a
+gap            x = a - delta_h, distance of the target from the hedge
+abs_gap        |x|
+trade          d = a - h
+abs_trade      |d|
+=============  ===============================================================
+
+plus observable market factors by name, and products written ``"gap*moneyness"``
+or powers ``"gap^2"`` (any names above, joined by ``*``; a power by ``^``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from agents.policy import decode
+from hedge_env.problem import HedgingProblem
+
+STATE_FEATURES = ("moneyness", "years_left", "holding", "hedge", "gamma")
+ACTION_FEATURES = ("target", "gap", "abs_gap", "trade", "abs_trade")
+FEATURES = STATE_FEATURES + ACTION_FEATURES
+
+# The linear agent's default basis: terms that vary with the target (it is fitted within
+# states, so terms of the state alone would carry nothing). Enough to carry the mean-variance
+# reward of one step (quadratic in the gap, scaled by spot and gamma) and the cost-to-go of the
+# later ones (kinked in the gap and, near the horizon, in the unwound holding).
+POLYNOMIAL_BASIS = (
+    "gap", "gap*moneyness", "gap*moneyness^2", "gap*gamma",
+    "gap^2", "gap^2*moneyness", "gap^2*moneyness^2", "gap^2*gamma", "gap^2*gamma^2",
+    "gap^3", "gap^3*moneyness", "gap^4",
+    "abs_gap", "abs_gap*moneyness", "abs_gap*moneyness^2", "abs_gap*gamma",
+    "target", "target^2", "abs_target", "abs_target*moneyness",
+)
+
+# Raw columns for a tree ensemble, which finds its own interactions.
+TREE_BASIS = ("moneyness", "hedge", "gamma", "target", "gap", "abs_gap")
+
+
+@dataclass(frozen=True)
+class StateFeatures:
+    """Per-row quantities of a batch of observations (arrays of shape (n,))."""
+
+    values: dict[str, np.ndarray]
+    spot: np.ndarray
+    holding_shares: np.ndarray
+
+    @property
+    def hedge(self) -> np.ndarray:
+        return self.values["hedge"]
+
+    @property
+    def holding(self) -> np.ndarray:
+        return self.values["holding"]
+
+    def __len__(self) -> int:
+        return self.spot.shape[0]
+
+
+def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple[str, ...] = ()) -> StateFeatures:
+    """State features of observation rows ``[spot/ref, years left, holding/notional, *factors]``."""
+    decoded = decode(problem, obs)
+    notional = problem.notional_shares
+    book, marks = problem.book, problem.marks
+    _, book_delta = book.value_and_delta(decoded.spot, decoded.t_days, marks)
+    gamma = book.gamma(decoded.spot, decoded.t_days, marks)
+    values = {
+        "moneyness": np.log(obs[:, 0]),
+        "years_left": np.asarray(obs[:, 1], dtype=float),
+        "holding": np.asarray(obs[:, 2], dtype=float),
+        "hedge": -book_delta / notional,
+        "gamma": gamma * decoded.spot / notional,
+    }
+    for j, name in enumerate(factor_names):
+        values[name] = np.asarray(obs[:, 3 + j], dtype=float)
+    return StateFeatures(values, decoded.spot, decoded.holding_shares)
+
+
+def _raw(name: str, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+    if name == "1":
+        return np.ones_like(targets)
+    if name == "target":
+        return targets
+    if name == "abs_target":
+        return np.abs(targets)
+    if name == "gap":
+        return targets - state.hedge[:, None]
+    if name == "abs_gap":
+        return np.abs(targets - state.hedge[:, None])
+    if name == "trade":
+        return targets - state.holding[:, None]
+    if name == "abs_trade":
+        return np.abs(targets - state.holding[:, None])
+    if name in state.values:
+        return np.broadcast_to(state.values[name][:, None], targets.shape)
+    raise ValueError(f"unknown feature {name!r}; known: {', '.join(FEATURES)} and market factors")
+
+
+def _term(term: str, state: StateFeatures, targets: np.ndarray, cache: dict) -> np.ndarray:
+    product = None
+    for factor in term.split("*"):
+        name, _, power = factor.partition("^")
+        if name not in cache:
+            cache[name] = _raw(name, state, targets)
+        value = cache[name] if not power else cache[name] ** int(power)
+        product = value if product is None else product * value
+    return product
+
+
+def basis(terms: tuple[str, ...], state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+    """Design array of shape (n, C, len(terms)) for candidate ``targets`` of shape (n, C)."""
+    targets = np.asarray(targets, dtype=float)
+    cache: dict[str, np.ndarray] = {}
+    out = np.empty(targets.shape + (len(terms),))
+    for j, term in enumerate(terms):
+        out[..., j] = _term(term, state, targets, cache)
+    return out
+
+
+def check_terms(terms, factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
+    """Validate basis term names early, with a message that lists the known names."""
+    known = set(FEATURES) | {"1", "abs_target"} | set(factor_names)
+    for term in terms:
+        for factor in term.split("*"):
+            name, _, power = factor.partition("^")
+            if name not in known or (power and not power.isdigit()):
+                raise ValueError(f"basis term {term!r}: unknown feature {name!r} (known: {', '.join(sorted(known))})")
+    return tuple(terms)

@@ -1,0 +1,495 @@
+"""Model-based reference optimum: dynamic programming on a (time, log spot, holding) grid.
+
+In a one-factor Markov market (GBM) the hedger's state at a rehedge time is
+the spot and the holding, so the per-step objective ``E[sum_k r_k]`` can be
+maximised exactly, up to grid and quadrature error, by backward induction::
+
+    V_steps = 0
+    V_k(S, h) = max_a  Q_k(S, h, a),   Q_k(S, h, a) = E[r_k(S, h, a, S') + V_{k+1}(S', a)]
+
+with the expectation over the next spot ``S' = S exp((drift - vol^2/2) dt
++ vol sqrt(dt) z)``, ``z`` standard normal. The hedge after the last step is
+unwound by the step itself, hence ``V_steps = 0``. The reward of a step is
+always computed by :func:`hedge_env.step.hedge_step`; this module only adds
+expectations and maximisations on top of it.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numpy.polynomial.hermite_e import hermegauss
+from numpy.polynomial.legendre import leggauss
+from scipy.interpolate import CubicSpline
+from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_is_fitted
+
+from agents.policy import decode
+from hedge_env.problem import HedgingProblem
+from hedge_env.step import HedgeState, hedge_step
+
+# Elements per hedge_step call and per (spot, holding, action) block: keeps temporaries near 10 MB each.
+_CHUNK_ELEMENTS = 1 << 18
+# Half-width, in standard normal units, of the Gauss-Legendre rule used on steps where options settle.
+_SETTLEMENT_QUADRATURE_HALF_WIDTH = 8.0
+
+
+class GridDPAgent(BaseEstimator):
+    """Grid dynamic-programming optimum of the per-step mean-variance objective under GBM.
+
+    Parameters
+    ----------
+    problem : HedgingProblem
+        Book, marks, frictions, objective and schedule (the step function's input).
+    drift : float
+        Annual drift of the GBM the expectation is taken under (real world).
+    volatility : float
+        Annual volatility of that GBM (the market's, not necessarily the marks').
+    spot_points : int
+        Points of the log-spot grid.
+    holding_points : int
+        Points of the holding grid; the candidate targets are the same points.
+    quadrature_nodes : int
+        Gauss-Hermite nodes of the expectation over the next spot; on a step
+        where options settle (a kinked payoff) each piece between strikes gets
+        this many Gauss-Legendre nodes instead.
+    log_spot_width : float
+        Width of the log-spot grid in standard deviations of log spot over the
+        horizon (``vol * sqrt(horizon)``), centred on the mean log spot at mid-horizon.
+    holding_range : (float, float) or None
+        Lowest and highest holding per share of notional. None: minus the
+        book delta's range over the spot grid and the rehedge times, widened
+        to include 0 and padded by 10% of notional on each side. Always cut
+        back to the position limit.
+    name : str
+        Policy name in reports.
+
+    Attributes
+    ----------
+    log_spots_ : ndarray (spot_points,)
+        Log-spot grid, log currency.
+    holdings_ : ndarray (holding_points,)
+        Holding grid, shares; also the candidate targets.
+    value_ : ndarray (steps, spot_points, holding_points)
+        ``V_k(S, h)``, currency (the optimal expected sum of rewards from t_k on).
+    policy_ : ndarray (steps, spot_points, holding_points)
+        Optimal target holding in shares at each grid state.
+    no_trade_value_ : ndarray (steps, spot_points, holding_points)
+        ``Q_k(S, a, a)``: holding ``a`` through the step without trading, then optimally.
+    cost_weight_ : ndarray (steps, spot_points, holding_points)
+        ``G_k(S, a)`` in ``Q_k(S, h, a) = no_trade_value - G * P + c2 * P**2``, where
+        ``P`` is what the trade from ``h`` to ``a`` takes out of wealth and
+        ``c2`` the reward's quadratic coefficient (see :meth:`fit`).
+    reward_coefficients_ : (float, float)
+        ``(c1, c2)`` with ``reward(x) = c1 x + c2 x**2``, read off the objective.
+
+    Notes
+    -----
+    The one approximation beyond grid and quadrature: the state has no cash
+    axis. Cash moves the reward only through interest (``cash_rate``), and the
+    DP sets the cash of every grid state to ``-(h S + mark)``, as if the
+    hedger's wealth were 0 at t_k (it is 0 at t_0). With ``cash_rate = 0``
+    this is exact.
+
+    The greedy policy (:meth:`act`) evaluates ``Q_k`` at each row's own spot
+    (cubic spline in log spot) and exact holding (the trade's cost is a
+    formula), over every grid target plus "no trade", and takes the best.
+    With permanent impact it interpolates the stored ``policy_`` table instead.
+
+    Examples
+    --------
+    >>> from hedge_env.env import default_problem
+    >>> problem, market = default_problem()
+    >>> agent = GridDPAgent(problem, volatility=market.volatility).fit()
+    >>> target = agent.act([[1.0, problem.horizon_years, 0.0]])  # per share of notional
+    """
+
+    def __init__(
+        self,
+        problem: HedgingProblem,
+        drift: float = 0.0,
+        volatility: float = 0.2,
+        spot_points: int = 151,
+        holding_points: int = 201,
+        quadrature_nodes: int = 16,
+        log_spot_width: float = 8.0,
+        holding_range: tuple[float, float] | None = None,
+        name: str = "grid_dp",
+    ):
+        self.problem = problem
+        self.drift = drift
+        self.volatility = volatility
+        self.spot_points = spot_points
+        self.holding_points = holding_points
+        self.quadrature_nodes = quadrature_nodes
+        self.log_spot_width = log_spot_width
+        self.holding_range = holding_range
+        self.name = name
+
+    # --- fitting --------------------------------------------------------------------------------
+
+    def fit(self, paths=None) -> GridDPAgent:
+        """Backward induction over the grid; ``paths`` is ignored (the agent is model-based).
+
+        How the step function is used: a step's P&L separates into a part that
+        does not depend on the holding before the trade and a trade charge,
+        ``dW(S, h, a, S') = dW0(S, a, S') - P(S, |a - h|)``, where ``dW0`` is
+        :func:`hedge_step` called with holding ``a`` and target ``a`` (no
+        trade: costs 0; the last step's unwind depends on ``a`` only, so it
+        is in ``dW0``), and ``P`` is the trade's costs plus the interest they
+        forgo (the friction methods the step itself calls). With
+        ``reward(x) = c1 x + c2 x**2`` the expectation is then
+
+            E[r] = c1 m1 + c2 m2 - P (c1 + 2 c2 m1) + c2 P**2,   m_n = E[dW0**n],
+
+        so per time step ``hedge_step`` runs only over (spot, action, node)
+        and the maximisation over (spot, holding, action) is array arithmetic.
+        ``fit`` checks this identity against direct ``hedge_step`` calls with
+        trades on a sample of grid points and raises if it fails. Permanent
+        impact makes ``S'`` depend on the trade and breaks the separation;
+        then every (spot, holding, action, node) goes through ``hedge_step``
+        (slow: use small grids).
+        """
+        self._validate_parameters()
+        problem = self.problem
+        steps = problem.schedule.steps
+        self.reward_coefficients_ = _reward_coefficients(problem)
+        self.log_spots_ = self._log_spot_grid()
+        spots = np.exp(self.log_spots_)
+        self.holdings_ = self._holding_grid(spots)
+        shape = (steps, self.spot_points, self.holding_points)
+        self.value_ = np.empty(shape)
+        self.policy_ = np.empty(shape)
+        separable = not problem.frictions.permanent_impact
+        if separable:
+            self.no_trade_value_ = np.empty(shape)
+            self.cost_weight_ = np.empty(shape)
+            self._check_separation(spots)
+        value_next = None
+        for k in reversed(range(steps)):
+            nodes, weights = self._quadrature(k, spots)
+            next_spots = spots[:, None] * self._growth(nodes)
+            if separable:
+                self._induct_separated(k, spots, next_spots, weights, value_next)
+            else:
+                self._induct_directly(k, spots, next_spots, weights, value_next)
+            value_next = self.value_[k]
+        return self
+
+    def _validate_parameters(self) -> None:
+        if not isinstance(self.problem, HedgingProblem):
+            raise TypeError(f"problem must be a HedgingProblem, got {type(self.problem).__name__}")
+        if self.spot_points < 4 or self.holding_points < 2 or self.quadrature_nodes < 2:
+            raise ValueError(
+                "need spot_points >= 4, holding_points >= 2, quadrature_nodes >= 2; got "
+                f"{self.spot_points}, {self.holding_points}, {self.quadrature_nodes}"
+            )
+        if not (self.volatility > 0 and self.log_spot_width > 0):
+            raise ValueError(f"volatility and log_spot_width must be > 0, got {self.volatility}, {self.log_spot_width}")
+        if self.holding_range is not None and not self.holding_range[0] < self.holding_range[1]:
+            raise ValueError(f"holding_range must be (low, high) with low < high, got {self.holding_range}")
+
+    def _log_spot_grid(self) -> np.ndarray:
+        problem = self.problem
+        horizon = problem.horizon_years
+        # Centred on the mean log spot at mid-horizon, so that t_0 and the horizon are covered alike.
+        centre = math.log(problem.reference_spot) + (self.drift - 0.5 * self.volatility**2) * horizon / 2
+        half_width = 0.5 * self.log_spot_width * self.volatility * math.sqrt(horizon)
+        return np.linspace(centre - half_width, centre + half_width, self.spot_points)
+
+    def _holding_grid(self, spots: np.ndarray) -> np.ndarray:
+        problem = self.problem
+        notional = problem.notional_shares
+        if self.holding_range is None:
+            hedges = np.concatenate([
+                -problem.book.value_and_delta(spots, problem.schedule.time_days(k), problem.marks)[1]
+                for k in range(problem.schedule.steps)
+            ])
+            low = min(0.0, float(hedges.min())) - 0.1 * notional
+            high = max(0.0, float(hedges.max())) + 0.1 * notional
+        else:
+            low, high = (float(v) * notional for v in self.holding_range)
+        # Targets beyond the limit would be clipped by the step, so the grid stops there.
+        limit = problem.frictions.position_limit_shares
+        low, high = max(low, -limit), min(high, limit)
+        if not low < high:
+            raise ValueError(f"holding grid is empty after the position limit {limit}: {low} .. {high}")
+        return np.linspace(low, high, self.holding_points)
+
+    def _growth(self, nodes: np.ndarray) -> np.ndarray:
+        """Exogenous gross return S'/S over one step at standard normal ``nodes``."""
+        dt = self.problem.dt_years
+        return np.exp((self.drift - 0.5 * self.volatility**2) * dt + self.volatility * math.sqrt(dt) * nodes)
+
+    def _quadrature(self, k: int, spots: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Standard normal nodes and weights per grid spot, each (spot_points, n), weights summing to 1.
+
+        Gauss-Hermite on smooth steps. On a step where options settle the
+        integrand has kinks (payoffs) or jumps (delivered shares) at the
+        strikes, where Gauss-Hermite converges slowly; there the real line,
+        cut to +-8, is split at each strike's node and every piece gets its
+        own Gauss-Legendre rule against the normal density.
+        """
+        n = self.quadrature_nodes
+        schedule, book = self.problem.schedule, self.problem.book
+        t_now, t_next = schedule.time_days(k), schedule.time_days(k + 1)
+        strikes = sorted({leg.strike for leg in book.live_legs(t_now) if not leg.live_at(t_next)})
+        if not strikes:
+            nodes, weights = hermegauss(n)
+            weights = weights / weights.sum()
+            return np.broadcast_to(nodes, (spots.size, n)), np.broadcast_to(weights, (spots.size, n))
+        dt = self.problem.dt_years
+        mean, scale = (self.drift - 0.5 * self.volatility**2) * dt, self.volatility * math.sqrt(dt)
+        edge = _SETTLEMENT_QUADRATURE_HALF_WIDTH
+        kinks = (np.log(np.asarray(strikes)[None, :] / spots[:, None]) - mean) / scale
+        bounds = np.concatenate(
+            [np.full((spots.size, 1), -edge), np.clip(kinks, -edge, edge), np.full((spots.size, 1), edge)], axis=1
+        )
+        unit_nodes, unit_weights = leggauss(n)
+        middle = 0.5 * (bounds[:, 1:] + bounds[:, :-1])
+        half = 0.5 * (bounds[:, 1:] - bounds[:, :-1])
+        nodes = (middle[:, :, None] + half[:, :, None] * unit_nodes).reshape(spots.size, -1)
+        weights = (half[:, :, None] * unit_weights).reshape(spots.size, -1) * np.exp(-0.5 * nodes**2)
+        return nodes, weights / weights.sum(axis=1, keepdims=True)
+
+    def _grid_state(self, k: int, spots, holdings, repeats: tuple[int, ...] = ()) -> HedgeState:
+        """HedgeState at t_k, wealth set to 0 (the one approximation), as flat arrays.
+
+        ``spots`` are distinct spots; each is repeated over ``repeats`` (trailing
+        axes, e.g. actions and nodes) and ``holdings`` broadcasts against that
+        shape. The book is priced once per distinct spot.
+        """
+        problem = self.problem
+        mark, delta = problem.book.value_and_delta(spots, problem.schedule.time_days(k), problem.marks)
+        shape = spots.shape + repeats
+        expand = (...,) + (None,) * len(repeats)
+
+        def flat(values):
+            return np.broadcast_to(values, shape).ravel()
+
+        spot, mark, delta = flat(spots[expand]), flat(mark[expand]), flat(delta[expand])
+        holding = flat(holdings)
+        return HedgeState(k, spot, np.ones_like(spot), holding, -(holding * spot + mark), mark, delta)
+
+    def _trade_charge(self, spots, sizes):
+        """What a trade of ``sizes`` shares at ``spots`` takes out of the step's P&L, currency.
+
+        The step pays ``trading_cost + impact_cost`` out of cash; cash then
+        earns the step's financing, so the charge is the costs less the
+        interest they would have earned. These are the frictions' own
+        methods, the ones :func:`hedge_step` calls; ``fit`` checks the sum
+        against ``hedge_step``.
+        """
+        frictions = self.problem.frictions
+        paid = frictions.trading_cost(sizes, spots) + frictions.impact_cost(sizes, spots)
+        if frictions.has_financing:
+            paid = paid - frictions.financing(-paid, 0.0 * paid, spots, self.problem.dt_years)
+        return paid
+
+    def _check_separation(self, spots: np.ndarray) -> None:
+        """Raise unless ``hedge_step`` with a trade equals the no-trade step minus the trade charge."""
+        problem = self.problem
+        rng = np.random.default_rng(0)
+        n = 64
+        for k in sorted({0, problem.schedule.steps - 1}):
+            nodes, _ = self._quadrature(k, spots)
+            i = rng.integers(spots.size, size=n)
+            held = self.holdings_[rng.integers(self.holdings_.size, size=n)]
+            target = self.holdings_[rng.integers(self.holdings_.size, size=n)]
+            spot = spots[i]
+            next_spot = spot * self._growth(nodes[i, rng.integers(nodes.shape[1], size=n)])
+            with_trade = hedge_step(problem, self._grid_state(k, spot, held), target, next_spot).pnl
+            without = hedge_step(problem, self._grid_state(k, spot, target), target, next_spot).pnl
+            separated = without - self._trade_charge(spot, np.abs(target - held))
+            scale = problem.notional_shares * problem.reference_spot
+            if not np.allclose(with_trade, separated, rtol=1e-9, atol=1e-11 * scale):
+                worst = float(np.max(np.abs(with_trade - separated)))
+                raise RuntimeError(
+                    f"hedge_step no longer separates into a no-trade step and a trade charge (off by {worst:g} "
+                    f"at step {k}); GridDPAgent._trade_charge must follow the step's accounting"
+                )
+
+    def _no_trade_moments(self, k, spots, next_spots, weights) -> tuple[np.ndarray, np.ndarray]:
+        """E[dW0] and E[dW0**2] per (spot, action): hedge_step with holding = target, no trade."""
+        actions = self.holdings_
+        n_spots, n_nodes = next_spots.shape
+        first, second = np.empty((n_spots, actions.size)), np.empty((n_spots, actions.size))
+        rows = max(1, _CHUNK_ELEMENTS // (actions.size * n_nodes))
+        for start in range(0, n_spots, rows):
+            block = slice(start, min(start + rows, n_spots))
+            count = block.stop - block.start
+            shape = (count, actions.size, n_nodes)
+            state = self._grid_state(k, spots[block], actions[None, :, None], shape[1:])
+            exogenous = np.broadcast_to(next_spots[block, None, :], shape).ravel()
+            pnl = hedge_step(self.problem, state, state.holding, exogenous).pnl.reshape(shape)
+            w = weights[block, None, :]
+            first[block] = (pnl * w).sum(axis=2)
+            second[block] = (pnl * pnl * w).sum(axis=2)
+        return first, second
+
+    def _continuation(self, value_next, next_spots, weights) -> np.ndarray:
+        """E[V_{k+1}(S', a)] per (spot, action), cubic spline in log spot with linear tails."""
+        if value_next is None:
+            return 0.0
+        spline = CubicSpline(self.log_spots_, value_next, axis=0)
+        values = _evaluate_spline(spline, np.log(next_spots).ravel()).reshape(*next_spots.shape, -1)
+        return np.einsum("iqa,iq->ia", values, weights)
+
+    def _induct_separated(self, k, spots, next_spots, weights, value_next) -> None:
+        c1, c2 = self.reward_coefficients_
+        m1, m2 = self._no_trade_moments(k, spots, next_spots, weights)
+        level = c1 * m1 + c2 * m2 + self._continuation(value_next, next_spots, weights)
+        slope = c1 + 2.0 * c2 * m1
+        self.no_trade_value_[k], self.cost_weight_[k] = level, slope
+        sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])  # (holding, action)
+        rows = max(1, _CHUNK_ELEMENTS // sizes.size)
+        for start in range(0, spots.size, rows):
+            block = slice(start, min(start + rows, spots.size))
+            charge = self._trade_charge(spots[block, None, None], sizes[None])
+            q = level[block, None, :] - charge * slope[block, None, :]
+            if c2:
+                q += c2 * (charge * charge)
+            best = q.argmax(axis=2)
+            self.policy_[k, block] = self.holdings_[best]
+            self.value_[k, block] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
+
+    def _induct_directly(self, k, spots, next_spots, weights, value_next) -> None:
+        """Every (spot, holding, action, node) through hedge_step: the trade moves S' (permanent impact)."""
+        holdings = actions = self.holdings_
+        n_nodes = next_spots.shape[1]
+        spline = None if value_next is None else CubicSpline(self.log_spots_, value_next, axis=0)
+        rows = max(1, _CHUNK_ELEMENTS // (holdings.size * actions.size * n_nodes))
+        for start in range(0, spots.size, rows):
+            block = slice(start, min(start + rows, spots.size))
+            shape = (block.stop - block.start, holdings.size, actions.size, n_nodes)
+            state = self._grid_state(k, spots[block], holdings[None, :, None, None], shape[1:])
+            action_index = np.broadcast_to(np.arange(actions.size)[None, None, :, None], shape).ravel()
+            exogenous = np.broadcast_to(next_spots[block, None, None, :], shape).ravel()
+            outcome = hedge_step(self.problem, state, actions[action_index], exogenous)
+            total = outcome.reward
+            if spline is not None:
+                total = total + _evaluate_spline(spline, np.log(outcome.state.spot), action_index)
+            q = (total.reshape(shape) * weights[block, None, None, :]).sum(axis=3)
+            best = q.argmax(axis=2)
+            self.policy_[k, block] = actions[best]
+            self.value_[k, block] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
+
+    # --- the greedy policy ----------------------------------------------------------------------
+
+    def act(self, obs) -> np.ndarray:
+        """Target holding per share of notional for observation rows (Policy protocol)."""
+        return self._best(obs)[0] / self.problem.notional_shares
+
+    def value(self, obs) -> np.ndarray:
+        """``V_k`` at observation rows: the optimal expected sum of rewards from their state on, currency."""
+        return self._best(obs)[1]
+
+    def _best(self, obs) -> tuple[np.ndarray, np.ndarray]:
+        check_is_fitted(self, "value_")
+        obs = np.asarray(obs, dtype=float)
+        if obs.ndim != 2 or obs.shape[1] < 3:
+            raise ValueError(f"observations must be an (n, >= 3) array of rows, got shape {obs.shape}")
+        decoded = decode(self.problem, obs)
+        n_rows = decoded.spot.size
+        times = self._decision_indices(decoded.t_days, n_rows)
+        targets, values = np.empty(n_rows), np.empty(n_rows)
+        rows_per_chunk = max(1, _CHUNK_ELEMENTS // (self.holdings_.size + 1))
+        for k in np.unique(times):
+            rows = np.flatnonzero(times == k)
+            for start in range(0, rows.size, rows_per_chunk):
+                chunk = rows[start : start + rows_per_chunk]
+                spot, held = decoded.spot[chunk], decoded.holding_shares[chunk]
+                if self.problem.frictions.permanent_impact:
+                    targets[chunk], values[chunk] = self._interpolate_tables(int(k), spot, held)
+                else:
+                    targets[chunk], values[chunk] = self._best_exact(int(k), spot, held)
+        return targets, values
+
+    def _decision_indices(self, t_days, n: int) -> np.ndarray:
+        schedule = self.problem.schedule
+        days = np.broadcast_to(np.asarray(t_days, dtype=float), (n,))
+        k = np.rint(days / schedule.step_days)
+        off_grid = np.abs(days - k * schedule.step_days) > 1e-3 * schedule.step_days
+        if off_grid.any() or ((k < 0) | (k >= schedule.steps)).any():
+            bad = float(days[off_grid | (k < 0) | (k >= schedule.steps)][0])
+            raise ValueError(
+                f"observation at day {bad:g} is not a decision time of the schedule "
+                f"(0 .. {schedule.horizon_days - schedule.step_days:g} every {schedule.step_days:g} days)"
+            )
+        return k.astype(int)
+
+    def _best_exact(self, k: int, spot, held) -> tuple[np.ndarray, np.ndarray]:
+        """Best of every grid target and "no trade", with Q at the rows' own spot and holding."""
+        c2 = self.reward_coefficients_[1]
+        actions = self.holdings_
+        stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
+        coefficients = _evaluate_spline(CubicSpline(self.log_spots_, stacked, axis=0), np.log(spot))
+        level, slope = coefficients[..., 0], coefficients[..., 1]
+        charge = self._trade_charge(spot[:, None], np.abs(actions[None, :] - held[:, None]))
+        q = level - charge * slope
+        if c2:
+            q += c2 * (charge * charge)
+        best = q.argmax(axis=1)
+        best_q = q[np.arange(spot.size), best]
+        # Not trading: Q(S, h, h) is the no-trade value at a = h, linear between grid targets.
+        step = actions[1] - actions[0]
+        left = np.clip(((held - actions[0]) // step).astype(int), 0, actions.size - 2)
+        weight = (held - actions[left]) / step
+        rows = np.arange(spot.size)
+        stay_q = (1.0 - weight) * level[rows, left] + weight * level[rows, left + 1]
+        stay = stay_q >= best_q
+        return np.where(stay, held, actions[best]), np.where(stay, stay_q, best_q)
+
+    def _interpolate_tables(self, k: int, spot, held) -> tuple[np.ndarray, np.ndarray]:
+        """Bilinear interpolation of ``policy_`` and ``value_`` in (log spot, holding), clamped at the edges."""
+        x, h = self.log_spots_, self.holdings_
+        x_row = np.clip(np.log(spot), x[0], x[-1])
+        h_row = np.clip(held, h[0], h[-1])
+        i = np.clip(np.searchsorted(x, x_row, side="right") - 1, 0, x.size - 2)
+        j = np.clip(np.searchsorted(h, h_row, side="right") - 1, 0, h.size - 2)
+        u = (x_row - x[i]) / (x[i + 1] - x[i])
+        v = (h_row - h[j]) / (h[j + 1] - h[j])
+
+        def bilinear(table):
+            return ((1 - u) * ((1 - v) * table[i, j] + v * table[i, j + 1])
+                    + u * ((1 - v) * table[i + 1, j] + v * table[i + 1, j + 1]))
+
+        return bilinear(self.policy_[k]), bilinear(self.value_[k])
+
+
+def _reward_coefficients(problem: HedgingProblem) -> tuple[float, float]:
+    """``(c1, c2)`` with ``objective.reward(x) = c1 x + c2 x**2``; the DP needs a reward quadratic in the P&L."""
+    reward = problem.objective.reward
+    up, down = float(reward(1.0)), float(reward(-1.0))
+    c1, c2 = 0.5 * (up - down), 0.5 * (up + down)
+    for x in (0.0, 0.5, 3.0, -2.0):
+        if not math.isclose(float(reward(x)), c1 * x + c2 * x * x, rel_tol=1e-12, abs_tol=1e-12):
+            raise ValueError("GridDPAgent needs a per-step reward quadratic in the step P&L (mean-variance)")
+    return c1, c2
+
+
+def _evaluate_spline(spline: CubicSpline, points: np.ndarray, columns: np.ndarray | None = None) -> np.ndarray:
+    """Spline values at ``points``, continued linearly beyond the grid ends.
+
+    Without ``columns``: every column of the spline's values, shape
+    ``(len(points), *columns_shape)``. With ``columns`` (an integer array like
+    ``points``): only that column at each point, shape like ``points``.
+    """
+    knots = spline.x
+    inside = np.clip(points, knots[0], knots[-1])
+    beyond = points - inside
+    outside = np.flatnonzero(beyond)
+    if columns is None:
+        value = spline(inside)
+        if outside.size:
+            slope = spline(inside[outside], 1)
+            value[outside] += slope * beyond[outside].reshape((-1,) + (1,) * (slope.ndim - 1))
+        return value
+    interval = np.clip(np.searchsorted(knots, inside, side="right") - 1, 0, knots.size - 2)
+    c = spline.c[:, interval, columns]
+    t = inside - knots[interval]
+    value = ((c[0] * t + c[1]) * t + c[2]) * t + c[3]
+    if outside.size:
+        value = value + ((3.0 * c[0] * t + 2.0 * c[1]) * t + c[2]) * beyond
+    return value

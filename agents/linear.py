@@ -1,0 +1,105 @@
+"""Linear-basis batch agent: ridge least squares on a basis of state and action, backward in time.
+
+The regression of each decision time is solved from its normal equations,
+``X'X`` and ``X'y``, accumulated chunk by chunk: memory does not grow with
+the number of paths, and statistics from several workers (each with its own
+paths and the same later-step coefficients) are summed before the solve.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent
+from agents.dataset import Transitions
+from agents.features import POLYNOMIAL_BASIS, check_terms
+from hedge_env.problem import HedgingProblem
+
+
+@dataclass
+class NormalEquations:
+    """Sufficient statistics of a least-squares fit: X'X, X'y, y'y and the row count."""
+
+    xtx: np.ndarray
+    xty: np.ndarray
+    yty: float = 0.0
+    rows: int = 0
+
+    @classmethod
+    def empty(cls, n_terms: int) -> NormalEquations:
+        return cls(np.zeros((n_terms, n_terms)), np.zeros(n_terms))
+
+    @classmethod
+    def of(cls, X: np.ndarray, y: np.ndarray) -> NormalEquations:
+        return cls(X.T @ X, X.T @ y, float(y @ y), len(y))
+
+    def __add__(self, other: NormalEquations) -> NormalEquations:
+        return NormalEquations(self.xtx + other.xtx, self.xty + other.xty, self.yty + other.yty,
+                               self.rows + other.rows)
+
+    def solve(self, ridge: float) -> np.ndarray:
+        """Ridge solution with the penalty scaled to each column's size (scale-free)."""
+        scale = np.diag(self.xtx).copy()
+        scale[scale <= 0] = 1.0
+        return np.linalg.solve(self.xtx + ridge * np.diag(scale), self.xty)
+
+
+class LinearBasisAgent(BackwardQAgent):
+    """Q_k(s, a) = known cost part + theta_k . basis(s, a), theta_k by ridge least squares.
+
+    Parameters
+    ----------
+    problem : HedgingProblem
+    basis : tuple of str
+        Basis terms (see agents.features); default ``POLYNOMIAL_BASIS``.
+    ridge : float
+        Ridge penalty relative to each column's sum of squares.
+    band_widths, partial_moves : tuple of float
+        Candidate targets besides no trade and the hedge: hedge +/- width, and
+        holding + fraction x (hedge - holding). Per share of notional.
+    factor_names : tuple of str
+        Observable market factors appended to the observation, in order.
+    name : str
+    """
+
+    def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6,
+                 band_widths=DEFAULT_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
+                 name: str = "linear"):
+        self.problem = problem
+        self.basis = basis
+        self.ridge = ridge
+        self.band_widths = band_widths
+        self.partial_moves = partial_moves
+        self.factor_names = factor_names
+        self.name = name
+
+    # Fit within states (fixed effects): state-only terms of the basis then carry nothing.
+    within_state = True
+
+    @property
+    def terms(self) -> tuple[str, ...]:
+        return tuple(self.basis)
+
+    def _setup(self) -> None:
+        check_terms(self.terms, tuple(self.factor_names))
+        self.coef_ = np.zeros((self.problem.schedule.steps, len(self.terms)))
+        self.statistics_: dict[int, NormalEquations] = {}
+
+    def _start_step(self, k: int) -> None:
+        self.statistics_[k] = NormalEquations.empty(len(self.terms))
+
+    def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
+        self.statistics_[k] = self.statistics_[k] + NormalEquations.of(X, y)
+
+    def _finish_step(self, k: int) -> None:
+        self.coef_[k] = self.statistics_[k].solve(self.ridge)
+
+    def _predict(self, k: int, X: np.ndarray) -> np.ndarray:
+        return X @ self.coef_[k]
+
+    def step_statistics(self, transitions: Transitions, k: int) -> NormalEquations:
+        """Normal equations of decision time k from one block of transitions, using the fitted
+        coefficients of later times: what one worker contributes before the sum and the solve."""
+        return NormalEquations.of(*self._regression_rows(transitions, k))
