@@ -13,6 +13,13 @@ the market's part of the reward and the value of what follows,
 ``r - cost_part + max_a' Q_{k+1}(s', a')``, fitted backward from the last
 decision to the first (one regression per decision time).
 
+The regression targets carry the hedge gain ``a (S' - S)``, whose noise
+swamps the differences between targets; the gain's surprise
+``a (S' - S - E[S' - S | S])`` has mean zero, so it is taken out of the
+targets as a control variate (variance falls, the expectation does not
+change). ``E[S' - S | S] = S (exp(drift dt) - 1)`` with the drift given,
+or estimated from the training paths.
+
 The greedy action maximises Q over a candidate set that always holds no
 trade, the Black-Scholes hedge, band edges around it
 (``hedge +/- band_widths``) and partial moves toward it.
@@ -26,7 +33,7 @@ import numpy as np
 from sklearn.base import BaseEstimator
 
 from agents.dataset import Transitions
-from agents.features import StateFeatures, basis, state_features
+from agents.features import StateFeatures, basis_columns, state_features
 from hedge_env.problem import HedgingProblem
 
 DEFAULT_BAND_WIDTHS = (0.0025, 0.005, 0.0075, 0.01, 0.015, 0.02, 0.025, 0.03, 0.04, 0.05, 0.065, 0.08,
@@ -89,6 +96,7 @@ class BackwardQAgent(BaseEstimator):
         (called once per decision time, so the data may be streamed from paths)."""
         steps = self.problem.schedule.steps
         self._setup()
+        self.drift_ = self._drift(data) if self.drift is None else float(self.drift)
         for k in reversed(range(steps)):
             self._start_step(k)
             for chunk in _chunks(data):
@@ -104,28 +112,40 @@ class BackwardQAgent(BaseEstimator):
     def _setup(self) -> None:
         """Reset learned state before a fit."""
 
+    def _drift(self, data: TransitionSource) -> float:
+        """Annual drift implied by the mean one-step gross return of the training paths."""
+        total, count = 0.0, 0
+        for chunk in _chunks(data):
+            growth = chunk.next_obs[..., 0] / chunk.obs[..., 0]
+            total += float(growth.sum())
+            count += growth.size
+        return float(np.log(total / count) / self.problem.dt_years)
+
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
-        """Design rows and targets of step k: one row per tried action.
+        """Design (term-major) and targets of step k: one row per tried action.
 
         With ``within_state`` the rows are centred on their state's mean over
         the tried actions: a fixed-effects regression that learns Q up to a
         function of the state alone, which no greedy choice depends on, and
         cancels the market move that the tried actions share.
         """
-        state = state_features(self.problem, chunk.obs[k], self.factor_names)
+        problem = self.problem
+        state = state_features(problem, chunk.obs[k], self.factor_names)
         targets = chunk.actions[k]
-        X = basis(self.terms, state, targets)
-        y = chunk.rewards[k] - cost_part(self.problem, state, targets)
+        X = basis_columns(self.terms, state, targets)
+        y = chunk.rewards[k] - cost_part(problem, state, targets)
+        surprise = chunk.next_obs[k, :, 0] * problem.reference_spot - state.spot * np.exp(self.drift_ * problem.dt_years)
+        y = y - targets * (problem.notional_shares * surprise)[:, None]
         if not chunk.done(k):
             y = y + self.value(chunk.next_observations(k), k + 1).reshape(y.shape)
         if self.within_state:
-            X = X - X.mean(axis=1, keepdims=True)
+            X = X - X.mean(axis=2, keepdims=True)
             y = y - y.mean(axis=1, keepdims=True)
-        return X.reshape(-1, len(self.terms)), y.reshape(-1)
+        return X.reshape(len(self.terms), -1), y.reshape(-1)
 
     # -- using the fitted Q ------------------------------------------------------------------
     def _q(self, k: int, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-        return cost_part(self.problem, state, targets) + self._predict(k, basis(self.terms, state, targets))
+        return cost_part(self.problem, state, targets) + self._predict(k, state, targets)
 
     def _limit(self) -> float:
         return self.problem.frictions.position_limit_shares / self.problem.notional_shares

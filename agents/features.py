@@ -13,6 +13,8 @@ years_left     years to the horizon
 holding        current holding h
 hedge          Black-Scholes hedge delta_h = -book delta / notional (mark volatility)
 gamma          book gamma x S / notional: change of the hedge per unit log move
+hat0..hat8     tent functions of the standardised moneyness m / (vol sqrt(years left + dt)),
+               on 9 knots from -3 to 3 (clamped beyond): a local basis in moneyness
 target         candidate target a
 gap            x = a - delta_h, distance of the target from the hedge
 abs_gap        |x|
@@ -33,7 +35,9 @@ import numpy as np
 from agents.policy import decode
 from hedge_env.problem import HedgingProblem
 
-STATE_FEATURES = ("moneyness", "years_left", "holding", "hedge", "gamma")
+HAT_KNOTS = np.linspace(-3.0, 3.0, 9)
+HATS = tuple(f"hat{i}" for i in range(len(HAT_KNOTS)))
+STATE_FEATURES = ("moneyness", "years_left", "holding", "hedge", "gamma") + HATS
 ACTION_FEATURES = ("target", "gap", "abs_gap", "trade", "abs_trade")
 FEATURES = STATE_FEATURES + ACTION_FEATURES
 
@@ -87,9 +91,18 @@ def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple
         "hedge": -book_delta / notional,
         "gamma": gamma * decoded.spot / notional,
     }
+    scale = marks.volatility * np.sqrt(values["years_left"] + problem.dt_years)
+    values.update(zip(HATS, _tents(values["moneyness"] / scale, HAT_KNOTS)))
     for j, name in enumerate(factor_names):
         values[name] = np.asarray(obs[:, 3 + j], dtype=float)
     return StateFeatures(values, decoded.spot, decoded.holding_shares)
+
+
+def _tents(x: np.ndarray, knots: np.ndarray) -> list[np.ndarray]:
+    """Piecewise-linear tent functions on ``knots`` (a partition of unity; clamped at the ends)."""
+    x = np.clip(x, knots[0], knots[-1])
+    position = np.interp(x, knots, np.arange(len(knots), dtype=float))
+    return [np.maximum(0.0, 1.0 - np.abs(position - i)) for i in range(len(knots))]
 
 
 def _raw(name: str, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
@@ -112,25 +125,52 @@ def _raw(name: str, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
     raise ValueError(f"unknown feature {name!r}; known: {', '.join(FEATURES)} and market factors")
 
 
-def _term(term: str, state: StateFeatures, targets: np.ndarray, cache: dict) -> np.ndarray:
-    product = None
-    for factor in term.split("*"):
+def _factor(factor: str, state: StateFeatures, targets: np.ndarray, cache: dict) -> np.ndarray:
+    """A feature or its power (``"gap^3"``), cached; powers by repeated multiplication (fast)."""
+    if factor not in cache:
         name, _, power = factor.partition("^")
-        if name not in cache:
-            cache[name] = _raw(name, state, targets)
-        value = cache[name] if not power else cache[name] ** int(power)
-        product = value if product is None else product * value
-    return product
+        if not power or int(power) == 1:
+            cache[factor] = _raw(name, state, targets)
+        else:
+            n = int(power)
+            cache[factor] = _factor(f"{name}^{n - 1}" if n > 2 else name, state, targets, cache) * _factor(
+                name, state, targets, cache)
+    return cache[factor]
+
+
+def _term(term: str, state: StateFeatures, targets: np.ndarray, cache: dict, out: np.ndarray) -> np.ndarray:
+    factors = term.split("*")
+    np.copyto(out, _factor(factors[0], state, targets, cache))
+    for factor in factors[1:]:
+        out *= _factor(factor, state, targets, cache)
+    return out
+
+
+def basis_columns(terms: tuple[str, ...], state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+    """Design array term-major, shape (len(terms), n, C), for candidate ``targets`` of shape (n, C)."""
+    targets = np.asarray(targets, dtype=float)
+    cache: dict[str, np.ndarray] = {}
+    out = np.empty((len(terms),) + targets.shape)
+    for j, term in enumerate(terms):
+        _term(term, state, targets, cache, out[j])
+    return out
 
 
 def basis(terms: tuple[str, ...], state: StateFeatures, targets: np.ndarray) -> np.ndarray:
     """Design array of shape (n, C, len(terms)) for candidate ``targets`` of shape (n, C)."""
+    return np.moveaxis(basis_columns(terms, state, targets), 0, -1)
+
+
+def combination(terms: tuple[str, ...], coef: np.ndarray, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+    """``basis(...) @ coef`` without building the design array: shape (n, C)."""
     targets = np.asarray(targets, dtype=float)
     cache: dict[str, np.ndarray] = {}
-    out = np.empty(targets.shape + (len(terms),))
-    for j, term in enumerate(terms):
-        out[..., j] = _term(term, state, targets, cache)
-    return out
+    total = np.zeros(targets.shape)
+    scratch = np.empty(targets.shape)
+    for term, weight in zip(terms, coef):
+        if weight:
+            total += weight * _term(term, state, targets, cache, scratch)
+    return total
 
 
 def check_terms(terms, factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:

@@ -14,7 +14,7 @@ from sklearn.base import clone
 from sklearn.ensemble import HistGradientBoostingRegressor
 
 from agents.backward import DEFAULT_PARTIAL_MOVES, BackwardQAgent
-from agents.features import TREE_BASIS, check_terms
+from agents.features import TREE_BASIS, basis, check_terms
 from hedge_env.problem import HedgingProblem
 
 # Fewer band edges than the linear agent: every candidate costs a tree-ensemble prediction.
@@ -40,18 +40,22 @@ class FittedQAgent(BackwardQAgent):
         Candidate targets besides no trade and the hedge (per share of notional).
     factor_names : tuple of str
         Observable market factors appended to the observation, in order.
+    drift : float, optional
+        Annual drift of the underlying for the hedge-gain control variate; None
+        estimates it from the training paths.
     name : str
     """
 
     def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
-                 name: str = "fitted_q"):
+                 drift: float | None = None, name: str = "fitted_q"):
         self.problem = problem
         self.regressor = regressor
         self.basis = basis
         self.band_widths = band_widths
         self.partial_moves = partial_moves
         self.factor_names = factor_names
+        self.drift = drift
         self.name = name
 
     @property
@@ -70,12 +74,12 @@ class FittedQAgent(BackwardQAgent):
         self._rows.append((X, y))
 
     def _finish_step(self, k: int) -> None:
-        X = np.concatenate([x for x, _ in self._rows])
+        X = np.concatenate([x for x, _ in self._rows], axis=1).T
         y = np.concatenate([t for _, t in self._rows])
         self._rows = []
         base = default_regressor() if self.regressor is None else self.regressor
         self.regressors_[k] = clone(base).fit(X, y)
 
-    def _predict(self, k: int, X: np.ndarray) -> np.ndarray:
-        shape = X.shape[:-1]
-        return self.regressors_[k].predict(X.reshape(-1, X.shape[-1])).reshape(shape)
+    def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
+        X = basis(self.terms, state, targets)
+        return self.regressors_[k].predict(X.reshape(-1, X.shape[-1])).reshape(targets.shape)

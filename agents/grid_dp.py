@@ -180,9 +180,9 @@ class GridDPAgent(BaseEstimator):
     def _validate_parameters(self) -> None:
         if not isinstance(self.problem, HedgingProblem):
             raise TypeError(f"problem must be a HedgingProblem, got {type(self.problem).__name__}")
-        if self.spot_points < 4 or self.holding_points < 2 or self.quadrature_nodes < 2:
+        if self.spot_points < 4 or self.holding_points < 3 or self.quadrature_nodes < 2:
             raise ValueError(
-                "need spot_points >= 4, holding_points >= 2, quadrature_nodes >= 2; got "
+                "need spot_points >= 4, holding_points >= 3, quadrature_nodes >= 2; got "
                 f"{self.spot_points}, {self.holding_points}, {self.quadrature_nodes}"
             )
         if not (self.volatility > 0 and self.log_spot_width > 0):
@@ -310,23 +310,57 @@ class GridDPAgent(BaseEstimator):
                     f"at step {k}); GridDPAgent._trade_charge must follow the step's accounting"
                 )
 
-    def _no_trade_moments(self, k, spots, next_spots, weights) -> tuple[np.ndarray, np.ndarray]:
-        """E[dW0] and E[dW0**2] per (spot, action): hedge_step with holding = target, no trade."""
-        actions = self.holdings_
+    def _no_trade_pnl(self, k, spots, actions, next_spots) -> np.ndarray:
+        """P&L of hedge_step with holding = target (no trade), shape (spot, action, node)."""
         n_spots, n_nodes = next_spots.shape
-        first, second = np.empty((n_spots, actions.size)), np.empty((n_spots, actions.size))
+        pnl = np.empty((n_spots, actions.size, n_nodes))
         rows = max(1, _CHUNK_ELEMENTS // (actions.size * n_nodes))
         for start in range(0, n_spots, rows):
             block = slice(start, min(start + rows, n_spots))
-            count = block.stop - block.start
-            shape = (count, actions.size, n_nodes)
+            shape = (block.stop - block.start, actions.size, n_nodes)
             state = self._grid_state(k, spots[block], actions[None, :, None], shape[1:])
             exogenous = np.broadcast_to(next_spots[block, None, :], shape).ravel()
-            pnl = hedge_step(self.problem, state, state.holding, exogenous).pnl.reshape(shape)
-            w = weights[block, None, :]
-            first[block] = (pnl * w).sum(axis=2)
-            second[block] = (pnl * pnl * w).sum(axis=2)
-        return first, second
+            pnl[block] = hedge_step(self.problem, state, state.holding, exogenous).pnl.reshape(shape)
+        return pnl
+
+    def _no_trade_moments(self, k, spots, next_spots, weights) -> tuple[np.ndarray, np.ndarray]:
+        """E[dW0] and E[dW0**2] per (spot, action), dW0 the P&L of hedge_step without a trade.
+
+        Before the last step the no-trade P&L is affine in the holding on each
+        side of 0 (hedge gain, interest, dividends; the borrow fee bends it at
+        0). Then hedge_step runs at the ends of each piece only, plus two
+        probe holdings that must come out on the lines; if they do not, every
+        holding goes through hedge_step. The last step (the unwind) always does.
+        """
+        actions = self.holdings_
+        w = weights[:, None, :]
+        if k < self.problem.schedule.steps - 1:
+            anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
+            probes = actions[[actions.size // 3, (2 * actions.size) // 3]]
+            pnl = self._no_trade_pnl(k, spots, np.concatenate([anchors, probes]), next_spots)
+            anchor_pnl, probe_pnl = pnl[:, : anchors.size], pnl[:, anchors.size :]
+            piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
+            left, right = anchors[piece], anchors[piece + 1]
+            fraction = (actions - left) / (right - left)  # (action,)
+
+            def on_lines(index, frac):
+                return anchor_pnl[:, index] + frac[None, :, None] * (anchor_pnl[:, index + 1] - anchor_pnl[:, index])
+
+            probe_piece = piece[[actions.size // 3, (2 * actions.size) // 3]]
+            probe_fraction = fraction[[actions.size // 3, (2 * actions.size) // 3]]
+            scale = self.problem.notional_shares * self.problem.reference_spot
+            if np.allclose(on_lines(probe_piece, probe_fraction), probe_pnl, rtol=1e-9, atol=1e-11 * scale):
+                # pnl(a) = u + f v on the piece of a: moments from E[u], E[v], E[u^2], E[u v], E[v^2] per spot.
+                u = anchor_pnl[:, :-1]
+                v = anchor_pnl[:, 1:] - u
+                mean_u, mean_v = (u * w).sum(axis=2), (v * w).sum(axis=2)
+                mean_uu, mean_uv, mean_vv = (u * u * w).sum(axis=2), (u * v * w).sum(axis=2), (v * v * w).sum(axis=2)
+                f = fraction[None, :]
+                first = mean_u[:, piece] + f * mean_v[:, piece]
+                second = mean_uu[:, piece] + 2.0 * f * mean_uv[:, piece] + f * f * mean_vv[:, piece]
+                return first, second
+        pnl = self._no_trade_pnl(k, spots, actions, next_spots)
+        return (pnl * w).sum(axis=2), (pnl * pnl * w).sum(axis=2)
 
     def _continuation(self, value_next, next_spots, weights) -> np.ndarray:
         """E[V_{k+1}(S', a)] per (spot, action), cubic spline in log spot with linear tails."""
@@ -395,15 +429,20 @@ class GridDPAgent(BaseEstimator):
         times = self._decision_indices(decoded.t_days, n_rows)
         targets, values = np.empty(n_rows), np.empty(n_rows)
         rows_per_chunk = max(1, _CHUNK_ELEMENTS // (self.holdings_.size + 1))
+        exact = not self.problem.frictions.permanent_impact
         for k in np.unique(times):
+            k = int(k)
             rows = np.flatnonzero(times == k)
+            if exact:
+                stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
+                spline = CubicSpline(self.log_spots_, stacked, axis=0)
             for start in range(0, rows.size, rows_per_chunk):
                 chunk = rows[start : start + rows_per_chunk]
                 spot, held = decoded.spot[chunk], decoded.holding_shares[chunk]
-                if self.problem.frictions.permanent_impact:
-                    targets[chunk], values[chunk] = self._interpolate_tables(int(k), spot, held)
+                if exact:
+                    targets[chunk], values[chunk] = self._best_exact(spline, spot, held)
                 else:
-                    targets[chunk], values[chunk] = self._best_exact(int(k), spot, held)
+                    targets[chunk], values[chunk] = self._interpolate_tables(k, spot, held)
         return targets, values
 
     def _decision_indices(self, t_days, n: int) -> np.ndarray:
@@ -419,12 +458,15 @@ class GridDPAgent(BaseEstimator):
             )
         return k.astype(int)
 
-    def _best_exact(self, k: int, spot, held) -> tuple[np.ndarray, np.ndarray]:
-        """Best of every grid target and "no trade", with Q at the rows' own spot and holding."""
+    def _best_exact(self, spline: CubicSpline, spot, held) -> tuple[np.ndarray, np.ndarray]:
+        """Best of every grid target and "no trade", with Q at the rows' own spot and holding.
+
+        ``spline`` interpolates the stacked ``no_trade_value_`` and ``cost_weight_``
+        of the rows' time in log spot.
+        """
         c2 = self.reward_coefficients_[1]
         actions = self.holdings_
-        stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
-        coefficients = _evaluate_spline(CubicSpline(self.log_spots_, stacked, axis=0), np.log(spot))
+        coefficients = _evaluate_spline(spline, np.log(spot))
         level, slope = coefficients[..., 0], coefficients[..., 1]
         charge = self._trade_charge(spot[:, None], np.abs(actions[None, :] - held[:, None]))
         q = level - charge * slope
@@ -432,12 +474,14 @@ class GridDPAgent(BaseEstimator):
             q += c2 * (charge * charge)
         best = q.argmax(axis=1)
         best_q = q[np.arange(spot.size), best]
-        # Not trading: Q(S, h, h) is the no-trade value at a = h, linear between grid targets.
+        # Not trading: Q(S, h, h) is the no-trade value at a = h, quadratic through the three nearest
+        # targets (linear would be biased low, the value being concave in a, and narrow the band).
         step = actions[1] - actions[0]
-        left = np.clip(((held - actions[0]) // step).astype(int), 0, actions.size - 2)
-        weight = (held - actions[left]) / step
+        middle = np.clip(np.rint((held - actions[0]) / step).astype(int), 1, actions.size - 2)
+        t = (held - actions[middle]) / step
         rows = np.arange(spot.size)
-        stay_q = (1.0 - weight) * level[rows, left] + weight * level[rows, left + 1]
+        below, centre, above = level[rows, middle - 1], level[rows, middle], level[rows, middle + 1]
+        stay_q = centre + 0.5 * t * (above - below) + 0.5 * t * t * (above - 2.0 * centre + below)
         stay = stay_q >= best_q
         return np.where(stay, held, actions[best]), np.where(stay, stay_q, best_q)
 

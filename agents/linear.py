@@ -14,7 +14,7 @@ import numpy as np
 
 from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent
 from agents.dataset import Transitions
-from agents.features import POLYNOMIAL_BASIS, check_terms
+from agents.features import POLYNOMIAL_BASIS, check_terms, combination
 from hedge_env.problem import HedgingProblem
 
 
@@ -33,7 +33,8 @@ class NormalEquations:
 
     @classmethod
     def of(cls, X: np.ndarray, y: np.ndarray) -> NormalEquations:
-        return cls(X.T @ X, X.T @ y, float(y @ y), len(y))
+        """Statistics of a term-major design ``X`` (n_terms, rows) and targets ``y`` (rows,)."""
+        return cls(X @ X.T, X @ y, float(y @ y), len(y))
 
     def __add__(self, other: NormalEquations) -> NormalEquations:
         return NormalEquations(self.xtx + other.xtx, self.xty + other.xty, self.yty + other.yty,
@@ -61,18 +62,22 @@ class LinearBasisAgent(BackwardQAgent):
         holding + fraction x (hedge - holding). Per share of notional.
     factor_names : tuple of str
         Observable market factors appended to the observation, in order.
+    drift : float, optional
+        Annual drift of the underlying for the hedge-gain control variate; None
+        estimates it from the training paths.
     name : str
     """
 
     def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6,
                  band_widths=DEFAULT_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
-                 name: str = "linear"):
+                 drift: float | None = None, name: str = "linear"):
         self.problem = problem
         self.basis = basis
         self.ridge = ridge
         self.band_widths = band_widths
         self.partial_moves = partial_moves
         self.factor_names = factor_names
+        self.drift = drift
         self.name = name
 
     # Fit within states (fixed effects): state-only terms of the basis then carry nothing.
@@ -96,8 +101,8 @@ class LinearBasisAgent(BackwardQAgent):
     def _finish_step(self, k: int) -> None:
         self.coef_[k] = self.statistics_[k].solve(self.ridge)
 
-    def _predict(self, k: int, X: np.ndarray) -> np.ndarray:
-        return X @ self.coef_[k]
+    def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
+        return combination(self.terms, self.coef_[k], state, targets)
 
     def step_statistics(self, transitions: Transitions, k: int) -> NormalEquations:
         """Normal equations of decision time k from one block of transitions, using the fitted
