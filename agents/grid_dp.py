@@ -80,7 +80,8 @@ class GridDPAgent(BaseEstimator):
     cost_weight_ : ndarray (steps, spot_points, holding_points)
         ``G_k(S, a)`` in ``Q_k(S, h, a) = no_trade_value - G * P + c2 * P**2``, where
         ``P`` is what the trade from ``h`` to ``a`` takes out of wealth and
-        ``c2`` the reward's quadratic coefficient (see :meth:`fit`).
+        ``c2`` the reward's quadratic coefficient (see :meth:`fit`). This and
+        ``no_trade_value_`` are not set with permanent impact.
     reward_coefficients_ : (float, float)
         ``(c1, c2)`` with ``reward(x) = c1 x + c2 x**2``, read off the objective.
 
@@ -146,7 +147,10 @@ class GridDPAgent(BaseEstimator):
         so per time step ``hedge_step`` runs only over (spot, action, node)
         and the maximisation over (spot, holding, action) is array arithmetic.
         ``fit`` checks this identity against direct ``hedge_step`` calls with
-        trades on a sample of grid points and raises if it fails. Permanent
+        trades on a sample of grid points and raises if it fails. Before the
+        last step ``dW0`` is moreover piecewise affine in ``a`` (see
+        :meth:`_no_trade_moments`, which checks it), so ``hedge_step`` runs at
+        a few holdings per (spot, node) rather than at all of them. Permanent
         impact makes ``S'`` depend on the trade and breaks the separation;
         then every (spot, holding, action, node) goes through ``hedge_step``
         (slow: use small grids).
@@ -227,9 +231,10 @@ class GridDPAgent(BaseEstimator):
 
         Gauss-Hermite on smooth steps. On a step where options settle the
         integrand has kinks (payoffs) or jumps (delivered shares) at the
-        strikes, where Gauss-Hermite converges slowly; there the real line,
-        cut to +-8, is split at each strike's node and every piece gets its
-        own Gauss-Legendre rule against the normal density.
+        strikes, where Gauss-Hermite converges slowly; there the real line, cut
+        to +-8, is split into 8 pieces of width 2 and further at each strike's
+        node, and every piece gets a Gauss-Legendre rule of
+        ``quadrature_nodes // 2`` (at least 4) nodes against the normal density.
         """
         n = self.quadrature_nodes
         schedule, book = self.problem.schedule, self.problem.book
@@ -243,10 +248,9 @@ class GridDPAgent(BaseEstimator):
         mean, scale = (self.drift - 0.5 * self.volatility**2) * dt, self.volatility * math.sqrt(dt)
         edge = _SETTLEMENT_QUADRATURE_HALF_WIDTH
         kinks = (np.log(np.asarray(strikes)[None, :] / spots[:, None]) - mean) / scale
-        bounds = np.concatenate(
-            [np.full((spots.size, 1), -edge), np.clip(kinks, -edge, edge), np.full((spots.size, 1), edge)], axis=1
-        )
-        unit_nodes, unit_weights = leggauss(n)
+        fixed = np.broadcast_to(np.linspace(-edge, edge, 9), (spots.size, 9))
+        bounds = np.sort(np.concatenate([fixed, np.clip(kinks, -edge, edge)], axis=1), axis=1)
+        unit_nodes, unit_weights = leggauss(max(4, n // 2))
         middle = 0.5 * (bounds[:, 1:] + bounds[:, :-1])
         half = 0.5 * (bounds[:, 1:] - bounds[:, :-1])
         nodes = (middle[:, :, None] + half[:, :, None] * unit_nodes).reshape(spots.size, -1)
@@ -336,20 +340,15 @@ class GridDPAgent(BaseEstimator):
         w = weights[:, None, :]
         if k < self.problem.schedule.steps - 1:
             anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
-            probes = actions[[actions.size // 3, (2 * actions.size) // 3]]
-            pnl = self._no_trade_pnl(k, spots, np.concatenate([anchors, probes]), next_spots)
+            probes = np.array([actions.size // 3, (2 * actions.size) // 3])
+            pnl = self._no_trade_pnl(k, spots, np.concatenate([anchors, actions[probes]]), next_spots)
             anchor_pnl, probe_pnl = pnl[:, : anchors.size], pnl[:, anchors.size :]
             piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
-            left, right = anchors[piece], anchors[piece + 1]
-            fraction = (actions - left) / (right - left)  # (action,)
-
-            def on_lines(index, frac):
-                return anchor_pnl[:, index] + frac[None, :, None] * (anchor_pnl[:, index + 1] - anchor_pnl[:, index])
-
-            probe_piece = piece[[actions.size // 3, (2 * actions.size) // 3]]
-            probe_fraction = fraction[[actions.size // 3, (2 * actions.size) // 3]]
+            fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
+            start, end = anchor_pnl[:, piece[probes]], anchor_pnl[:, piece[probes] + 1]
+            on_lines = start + fraction[probes][None, :, None] * (end - start)
             scale = self.problem.notional_shares * self.problem.reference_spot
-            if np.allclose(on_lines(probe_piece, probe_fraction), probe_pnl, rtol=1e-9, atol=1e-11 * scale):
+            if np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
                 # pnl(a) = u + f v on the piece of a: moments from E[u], E[v], E[u^2], E[u v], E[v^2] per spot.
                 u = anchor_pnl[:, :-1]
                 v = anchor_pnl[:, 1:] - u
