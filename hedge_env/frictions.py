@@ -32,6 +32,8 @@ class Frictions:
     permanent_impact : float
         gamma: after a trade of ``d`` shares every later price is multiplied
         by ``exp(gamma * d / adv)``; the hedger's own trades move the market.
+        The trade itself fills halfway through that move (a cost, counted
+        with the impact cost).
     adv_shares : float
         Average daily volume, shares.
     cash_rate : float
@@ -95,6 +97,16 @@ class Frictions:
     def impact_factor(self, trade, exp):
         """Multiplier of all later prices after a signed trade (``exp`` is math.exp or np.exp)."""
         return exp(self.permanent_impact / self.adv_shares * trade)
+
+    def permanent_impact_cost(self, trade, spot, factor):
+        """Cost of filling a trade halfway through its own permanent impact ``factor``.
+
+        Without it a hedger could profit from its own impact: buy, lift the
+        price its holding is marked at, and sell at a mid its selling did not
+        move. Filling at the mean of the pre- and post-trade mid makes a round
+        trip cost about ``gamma d^2 S / adv`` instead.
+        """
+        return 0.5 * trade * spot * (factor - 1.0)
 
     def financing(self, cash, holding, spot, dt_years: float):
         """Interest on ``cash`` plus dividends minus borrow fee on ``holding`` over one step."""

@@ -10,7 +10,8 @@ Accounting of one step from t_k to t_{k+1} (holdings in shares, money in currenc
 
     trade       d = a - h                         a: clipped target, h: holding
     costs       c = cost_rate |d| S + fixed [d != 0] + eta S |d|^(1+beta) / adv^beta
-    impact      I' = I exp(gamma d / adv);  S_{k+1} = X_{k+1} I'   (X: exogenous path)
+                    + d S (f - 1) / 2     (the trade fills halfway through its permanent impact)
+    impact      f = exp(gamma d / adv);  I' = I f;  S_{k+1} = X_{k+1} I'   (X: exogenous path)
     cash        C' = C - d S - c;  financing F = C' (e^{r dt} - 1) + a S q dt - fee max(-a, 0) S dt
     marks       B_{k+1} = value at t_{k+1} of the options live at t_k (expired ones at payoff)
     P&L         dW = a (S_{k+1} - S_k) + F - c + (B_{k+1} - B_k)
@@ -137,13 +138,16 @@ def hedge_step(
     size = abs(trade)
     trading_cost = frictions.trading_cost(size, spot)
     impact_cost = frictions.impact_cost(size, spot)
-    # Zero terms are skipped, not added: this runs once per path and step.
-    paid = trading_cost + impact_cost if frictions.impact_coefficient else trading_cost
     if frictions.permanent_impact:
-        impact = state.impact * frictions.impact_factor(trade, exp)
+        factor = frictions.impact_factor(trade, exp)
+        impact_cost = impact_cost + frictions.permanent_impact_cost(trade, spot, factor)
+        impact = state.impact * factor
         spot_next = exogenous_next * impact
     else:
         impact, spot_next = state.impact, exogenous_next
+    # Zero terms are skipped, not added: this runs once per path and step.
+    has_impact = frictions.impact_coefficient or frictions.permanent_impact
+    paid = trading_cost + impact_cost if has_impact else trading_cost
     cash = state.cash - trade * spot - paid
     financing = frictions.financing(cash, target, spot, problem.dt_years) if frictions.has_financing else 0.0
 
@@ -174,6 +178,9 @@ def hedge_step(
         unwind = abs(residual)
         unwind_cost = frictions.trading_cost(unwind, spot_next)
         unwind_impact = frictions.impact_cost(unwind, spot_next)
+        if frictions.permanent_impact:
+            factor = frictions.impact_factor(-residual, exp)
+            unwind_impact = unwind_impact + frictions.permanent_impact_cost(-residual, spot_next, factor)
         pnl = pnl - unwind_cost - unwind_impact
         trading_cost = trading_cost + unwind_cost
         impact_cost = impact_cost + unwind_impact

@@ -89,6 +89,8 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     trade = a[0] - 0.0
     cost = COST_RATE * abs(trade) * s0 + (FIXED_COST if trade != 0 else 0.0)
     impact_cost = IMPACT_ETA * s0 * abs(trade) ** 1.5 / sqrt_adv
+    # The trade fills halfway through its own permanent impact.
+    impact_cost += 0.5 * trade * s0 * (math.exp(PERMANENT_GAMMA * trade / ADV_SHARES) - 1.0)
     impact1 = 1.0 * math.exp(PERMANENT_GAMMA * trade / ADV_SHARES)
     s1 = x[1] * impact1
     cash_after_trade = cash0 - trade * s0 - cost - impact_cost
@@ -110,6 +112,8 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     trade = a[1] - a[0]
     cost = COST_RATE * abs(trade) * s1 + (FIXED_COST if trade != 0 else 0.0)
     impact_cost = IMPACT_ETA * s1 * abs(trade) ** 1.5 / sqrt_adv
+    # The trade fills halfway through its own permanent impact.
+    impact_cost += 0.5 * trade * s1 * (math.exp(PERMANENT_GAMMA * trade / ADV_SHARES) - 1.0)
     impact2 = impact1 * math.exp(PERMANENT_GAMMA * trade / ADV_SHARES)
     s2 = x[2] * impact2
     cash_after_trade = cash1 - trade * s1 - cost - impact_cost
@@ -130,6 +134,8 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     trade = a[2] - a[1]
     cost = COST_RATE * abs(trade) * s2 + (FIXED_COST if trade != 0 else 0.0)
     impact_cost = IMPACT_ETA * s2 * abs(trade) ** 1.5 / sqrt_adv
+    # The trade fills halfway through its own permanent impact.
+    impact_cost += 0.5 * trade * s2 * (math.exp(PERMANENT_GAMMA * trade / ADV_SHARES) - 1.0)
     impact3 = impact2 * math.exp(PERMANENT_GAMMA * trade / ADV_SHARES)
     s3 = x[3] * impact3
     cash_after_trade = cash2 - trade * s2 - cost - impact_cost
@@ -138,15 +144,17 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     call_in_the_money = s3 > CALL_STRIKE
     if settlement == "liquidate":
         # Pay the short call's payoff in cash; sell (or buy back) the whole holding at s3.
-        unwind = abs(a[2])
+        unwind_trade = -a[2]
         settlement_cash = -max(s3 - CALL_STRIKE, 0.0) + a[2] * s3
     else:
         # Physical: exercised, the call takes one share for the strike; only the rest trades at s3.
         delivered = 1.0 if call_in_the_money else 0.0
-        unwind = abs(a[2] - delivered)
+        unwind_trade = -(a[2] - delivered)
         settlement_cash = delivered * CALL_STRIKE + (a[2] - delivered) * s3
+    unwind = abs(unwind_trade)
     unwind_cost = COST_RATE * unwind * s3 + (FIXED_COST if unwind != 0 else 0.0)
     unwind_impact = IMPACT_ETA * s3 * unwind**1.5 / sqrt_adv
+    unwind_impact += 0.5 * unwind_trade * s3 * (math.exp(PERMANENT_GAMMA * unwind_trade / ADV_SHARES) - 1.0)
     cash3 = cash_after_trade + financing + settlement_cash - unwind_cost - unwind_impact
     mark3 = 0.0
     step2 = dict(
