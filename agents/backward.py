@@ -13,12 +13,13 @@ the market's part of the reward and the value of what follows,
 ``r - cost_part + max_a' Q_{k+1}(s', a')``, fitted backward from the last
 decision to the first (one regression per decision time).
 
-The regression targets carry the hedge gain ``a (S' - S)``, whose noise
-swamps the differences between targets; the gain's surprise
-``a (S' - S - E[S' - S | S])`` has mean zero, so it is taken out of the
-targets as a control variate (variance falls, the expectation does not
-change). ``E[S' - S | S] = S (exp(drift dt) - 1)`` with the drift given,
-or estimated from the training paths.
+Two control variates cut the noise of the regression targets without
+changing their expectation. The hedge gain ``a (S' - S)`` carries the
+market move in full; its surprise ``a (S' - S - S m1)`` (m1 the mean
+one-step return) is taken out. The risk term ``-kappa/2 dW^2`` carries
+``(a - hedge)^2 (S' - S)^2``; its surprise against ``S^2 m2`` (m2 the mean
+squared return) is taken out too. m1 comes from the given drift or, like
+m2, from the training paths.
 
 The greedy action maximises Q over a candidate set that always holds no
 trade, the Black-Scholes hedge, band edges around it
@@ -96,7 +97,8 @@ class BackwardQAgent(BaseEstimator):
         (called once per decision time, so the data may be streamed from paths)."""
         steps = self.problem.schedule.steps
         self._setup()
-        self.drift_ = self._drift(data) if self.drift is None else float(self.drift)
+        mean_return, self.mean_squared_return_ = self._return_moments(data)
+        self.drift_ = np.log1p(mean_return) / self.problem.dt_years if self.drift is None else float(self.drift)
         for k in reversed(range(steps)):
             self._start_step(k)
             for chunk in _chunks(data):
@@ -112,14 +114,16 @@ class BackwardQAgent(BaseEstimator):
     def _setup(self) -> None:
         """Reset learned state before a fit."""
 
-    def _drift(self, data: TransitionSource) -> float:
-        """Annual drift implied by the mean one-step gross return of the training paths."""
-        total, count = 0.0, 0
+    def _return_moments(self, data: TransitionSource) -> tuple[float, float]:
+        """Mean and mean square of the one-step simple return over the training paths."""
+        total = total_squared = 0.0
+        count = 0
         for chunk in _chunks(data):
-            growth = chunk.next_obs[..., 0] / chunk.obs[..., 0]
-            total += float(growth.sum())
-            count += growth.size
-        return float(np.log(total / count) / self.problem.dt_years)
+            simple = chunk.next_obs[..., 0] / chunk.obs[..., 0] - 1.0
+            total += float(simple.sum())
+            total_squared += float((simple * simple).sum())
+            count += simple.size
+        return total / count, total_squared / count
 
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Design (term-major) and targets of step k: one row per tried action.
@@ -134,8 +138,13 @@ class BackwardQAgent(BaseEstimator):
         targets = chunk.actions[k]
         X = basis_columns(self.terms, state, targets)
         y = chunk.rewards[k] - cost_part(problem, state, targets)
-        surprise = chunk.next_obs[k, :, 0] * problem.reference_spot - state.spot * np.exp(self.drift_ * problem.dt_years)
-        y = y - targets * (problem.notional_shares * surprise)[:, None]
+        notional, spot = problem.notional_shares, state.spot
+        move = chunk.next_obs[k, :, 0] * problem.reference_spot - spot
+        move_surprise = move - spot * np.expm1(self.drift_ * problem.dt_years)
+        square_surprise = move * move - spot * spot * self.mean_squared_return_
+        gap_shares = (targets - state.hedge[:, None]) * notional
+        y = y - targets * (notional * move_surprise)[:, None]
+        y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise[:, None]
         if not chunk.done(k):
             y = y + self.value(chunk.next_observations(k), k + 1).reshape(y.shape)
         if self.within_state:

@@ -40,11 +40,14 @@ class NormalEquations:
         return NormalEquations(self.xtx + other.xtx, self.xty + other.xty, self.yty + other.yty,
                                self.rows + other.rows)
 
-    def solve(self, ridge: float) -> np.ndarray:
-        """Ridge solution with the penalty scaled to each column's size (scale-free)."""
+    def solve(self, ridge: float, prior: np.ndarray | None = None, prior_weight: float = 0.0) -> np.ndarray:
+        """Ridge solution, shrunk toward ``prior`` with weight ``prior_weight`` (both penalties
+        scaled to each column's sum of squares, so they are free of the columns' units)."""
         scale = np.diag(self.xtx).copy()
         scale[scale <= 0] = 1.0
-        return np.linalg.solve(self.xtx + ridge * np.diag(scale), self.xty)
+        lhs = self.xtx + (ridge + prior_weight) * np.diag(scale)
+        rhs = self.xty if prior is None or not prior_weight else self.xty + prior_weight * scale * prior
+        return np.linalg.solve(lhs, rhs)
 
 
 class LinearBasisAgent(BackwardQAgent):
@@ -57,6 +60,10 @@ class LinearBasisAgent(BackwardQAgent):
         Basis terms (see agents.features); default ``POLYNOMIAL_BASIS``.
     ridge : float
         Ridge penalty relative to each column's sum of squares.
+    smoothing : float
+        Shrinkage of each decision time's coefficients toward the next one's,
+        relative to the data's weight: pools information across neighbouring
+        times (0: independent regressions).
     band_widths, partial_moves : tuple of float
         Candidate targets besides no trade and the hedge: hedge +/- width, and
         holding + fraction x (hedge - holding). Per share of notional.
@@ -68,12 +75,13 @@ class LinearBasisAgent(BackwardQAgent):
     name : str
     """
 
-    def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6,
+    def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6, smoothing: float = 0.0,
                  band_widths=DEFAULT_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, name: str = "linear"):
         self.problem = problem
         self.basis = basis
         self.ridge = ridge
+        self.smoothing = smoothing
         self.band_widths = band_widths
         self.partial_moves = partial_moves
         self.factor_names = factor_names
@@ -99,7 +107,9 @@ class LinearBasisAgent(BackwardQAgent):
         self.statistics_[k] = self.statistics_[k] + NormalEquations.of(X, y)
 
     def _finish_step(self, k: int) -> None:
-        self.coef_[k] = self.statistics_[k].solve(self.ridge)
+        later = k + 1 < self.problem.schedule.steps
+        prior = self.coef_[k + 1] if later else None
+        self.coef_[k] = self.statistics_[k].solve(self.ridge, prior, self.smoothing if later else 0.0)
 
     def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
         return combination(self.terms, self.coef_[k], state, targets)
