@@ -3,14 +3,16 @@
 Shared by the fitted-Q agent (any scikit-learn regressor) and the
 linear-basis agent (streamed ridge least squares). At decision time k
 
-    Q_k(s, a) = cost_part(s, a) + model_k(basis(s, a))
+    Q_k(s, a) = known_part(s, a) + model_k(basis(s, a))
 
-``cost_part`` is the part of the reward that is a known function of the
-trade: ``-paid - kappa/2 paid^2`` with ``paid`` the trading and impact cost
-of moving from the holding to ``a`` at the current spot, computed with the
-step's own cost formulas (``problem.frictions``). The model learns the rest:
-the market's part of the reward and the value of what follows,
-``r - cost_part + max_a' Q_{k+1}(s', a')``, fitted backward from the last
+``known_part`` is what is known of the reward without fitting: the cost of
+the trade, ``-paid - kappa/2 paid^2`` with ``paid`` the trading and impact
+cost of moving from the holding to ``a`` at the current spot (the step's own
+cost formulas, ``problem.frictions``), and the leading one-step risk of the
+gap from the hedge, ``-kappa/2 ((a - hedge) N S)^2 m2`` (m2 the mean squared
+one-step return of the training paths). The model learns the rest: the
+market's part of the reward and the value of what follows,
+``r - known_part + max_a' Q_{k+1}(s', a')``, fitted backward from the last
 decision to the first (one regression per decision time).
 
 Two control variates cut the noise of the regression targets without
@@ -52,13 +54,17 @@ def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: f
     return np.clip(np.concatenate(columns, axis=1), -limit, limit)
 
 
-def cost_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-    """The known part of the reward of moving to ``targets`` (n, C): ``-paid - kappa/2 paid^2``."""
-    frictions = problem.frictions
-    size = np.abs(targets - state.holding[:, None]) * problem.notional_shares
+def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray,
+               mean_squared_return: float) -> np.ndarray:
+    """What is known of the reward of moving to ``targets`` (n, C): the trade's cost and the
+    leading one-step risk of the gap, ``-paid - kappa/2 paid^2 - kappa/2 (gap N S)^2 m2``."""
+    frictions, kappa = problem.frictions, problem.objective.risk_aversion
+    notional = problem.notional_shares
+    size = np.abs(targets - state.holding[:, None]) * notional
     spot = state.spot[:, None]
     paid = frictions.trading_cost(size, spot) + frictions.impact_cost(size, spot)
-    return -paid - 0.5 * problem.objective.risk_aversion * paid * paid
+    gap_value = (targets - state.hedge[:, None]) * (notional * spot)
+    return -paid - 0.5 * kappa * (paid * paid + gap_value * gap_value * mean_squared_return)
 
 
 def decision_index(problem: HedgingProblem, obs: np.ndarray) -> np.ndarray:
@@ -83,7 +89,6 @@ class BackwardQAgent(BaseEstimator):
     ``_predict(k, X)`` for an array of shape (..., n_basis).
     """
 
-    within_state = False
     name: str
     problem: HedgingProblem
     terms: tuple[str, ...]
@@ -126,18 +131,13 @@ class BackwardQAgent(BaseEstimator):
         return total / count, total_squared / count
 
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
-        """Design (term-major) and targets of step k: one row per tried action.
-
-        With ``within_state`` the rows are centred on their state's mean over
-        the tried actions: a fixed-effects regression that learns Q up to a
-        function of the state alone, which no greedy choice depends on, and
-        cancels the market move that the tried actions share.
-        """
+        """Design, term-major of shape (n_terms, n, M), and targets (n, M) of step k: one row per
+        state and tried action."""
         problem = self.problem
         state = state_features(problem, chunk.obs[k], self.factor_names)
         targets = chunk.actions[k]
         X = basis_columns(self.terms, state, targets)
-        y = chunk.rewards[k] - cost_part(problem, state, targets)
+        y = chunk.rewards[k] - self._known(state, targets)
         notional, spot = problem.notional_shares, state.spot
         move = chunk.next_obs[k, :, 0] * problem.reference_spot - spot
         move_surprise = move - spot * np.expm1(self.drift_ * problem.dt_years)
@@ -147,14 +147,14 @@ class BackwardQAgent(BaseEstimator):
         y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise[:, None]
         if not chunk.done(k):
             y = y + self.value(chunk.next_observations(k), k + 1).reshape(y.shape)
-        if self.within_state:
-            X = X - X.mean(axis=2, keepdims=True)
-            y = y - y.mean(axis=1, keepdims=True)
-        return X.reshape(len(self.terms), -1), y.reshape(-1)
+        return X, y
 
     # -- using the fitted Q ------------------------------------------------------------------
+    def _known(self, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
+        return known_part(self.problem, state, targets, self.mean_squared_return_)
+
     def _q(self, k: int, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-        return cost_part(self.problem, state, targets) + self._predict(k, state, targets)
+        return self._known(state, targets) + self._predict(k, state, targets)
 
     def _limit(self) -> float:
         return self.problem.frictions.position_limit_shares / self.problem.notional_shares

@@ -1,5 +1,12 @@
 """Fitted Q iteration over any scikit-learn regressor, finite horizon, one regression per decision time.
 
+A tree ensemble costs microseconds per prediction, and the fit and the
+greedy policy need a prediction per state and candidate. When the basis
+uses only quantities that are functions of moneyness and the gap at a
+fixed decision time (the default), each fitted regression is tabulated once
+on a moneyness x gap grid and read by bilinear interpolation: the
+regressors stay what was fitted, the table is how they are evaluated.
+
 One regression per decision time (rather than one pooled model with time as
 a feature) follows the backward structure exactly: each fit sees targets
 from an already-fitted later step, so a single backward sweep is the whole
@@ -14,16 +21,33 @@ from sklearn.base import clone
 from sklearn.ensemble import HistGradientBoostingRegressor
 
 from agents.backward import DEFAULT_PARTIAL_MOVES, BackwardQAgent
-from agents.features import TREE_BASIS, basis, check_terms
+from agents.features import HATS, TREE_BASIS, basis, check_terms, state_features
 from hedge_env.problem import HedgingProblem
 
 # Fewer band edges than the linear agent: every candidate costs a tree-ensemble prediction.
 TREE_BAND_WIDTHS = (0.005, 0.01, 0.015, 0.02, 0.03, 0.04, 0.055, 0.075, 0.1, 0.14, 0.2)
 
 
+# Features that, at a fixed decision time, are functions of moneyness and the gap alone.
+TABULABLE = {"moneyness", "years_left", "hedge", "gamma", "target", "gap", "abs_gap", "abs_target", *HATS}
+TABLE_MONEYNESS_POINTS = 121
+TABLE_GAPS = np.linspace(-0.45, 0.45, 181)
+
+
 def default_regressor() -> HistGradientBoostingRegressor:
-    return HistGradientBoostingRegressor(max_iter=150, learning_rate=0.1, max_leaf_nodes=31,
-                                         min_samples_leaf=40, random_state=0)
+    return HistGradientBoostingRegressor(max_iter=80, learning_rate=0.15, max_leaf_nodes=15,
+                                         early_stopping=False, random_state=0)
+
+
+def _bilinear(table: np.ndarray, x_grid: np.ndarray, y_grid: np.ndarray, x: np.ndarray, y: np.ndarray):
+    """Interpolate ``table[x_grid, y_grid]`` (uniform grids) at x (n,) and y (n, C), clamped to the grid."""
+    fx = np.clip((x - x_grid[0]) / (x_grid[1] - x_grid[0]), 0.0, len(x_grid) - 1.000001)[:, None]
+    fy = np.clip((y - y_grid[0]) / (y_grid[1] - y_grid[0]), 0.0, len(y_grid) - 1.000001)
+    ix, iy = fx.astype(int), fy.astype(int)
+    wx, wy = fx - ix, fy - iy
+    low = table[ix, iy] * (1.0 - wy) + table[ix, iy + 1] * wy
+    high = table[ix + 1, iy] * (1.0 - wy) + table[ix + 1, iy + 1] * wy
+    return low * (1.0 - wx) + high * wx
 
 
 class FittedQAgent(BackwardQAgent):
@@ -64,22 +88,62 @@ class FittedQAgent(BackwardQAgent):
 
     def _setup(self) -> None:
         check_terms(self.terms, tuple(self.factor_names))
-        self.regressors_: list = [None] * self.problem.schedule.steps
+        steps = self.problem.schedule.steps
+        self.regressors_: list = [None] * steps
+        tabulable = not self.factor_names and all(
+            factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
+        self.tables_: list | None = [None] * steps if tabulable else None
         self._rows: list[tuple[np.ndarray, np.ndarray]] = []
 
     def _start_step(self, k: int) -> None:
         self._rows = []
+        self._moneyness_range = (np.inf, -np.inf)
+
+    def _regression_rows(self, chunk, k):
+        moneyness = np.log(chunk.obs[k, :, 0])
+        low, high = self._moneyness_range
+        self._moneyness_range = (min(low, moneyness.min()), max(high, moneyness.max()))
+        return super()._regression_rows(chunk, k)
 
     def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
-        self._rows.append((X, y))
+        # Within-state targets: the M actions of a state are independent draws of the behaviour, so
+        # E[y_j - mean_i y_i | s, a_j] = (M - 1) / M * (Q(s, a_j) - mean over actions of Q(s, .)).
+        # Rescaled, the regression learns Q up to a function of the state, without the noise that
+        # the actions share.
+        m = y.shape[1]
+        if m < 2:
+            raise ValueError("fitted Q needs exploration.actions_per_state >= 2")
+        centred = (y - y.mean(axis=1, keepdims=True)) * (m / (m - 1))
+        self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1)))
 
     def _finish_step(self, k: int) -> None:
-        X = np.concatenate([x for x, _ in self._rows], axis=1).T
+        X = np.concatenate([x for x, _ in self._rows])
         y = np.concatenate([t for _, t in self._rows])
         self._rows = []
         base = default_regressor() if self.regressor is None else self.regressor
         self.regressors_[k] = clone(base).fit(X, y)
+        if self.tables_ is not None:
+            self.tables_[k] = self._tabulate(k)
 
-    def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
+    def _tabulate(self, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """The fitted regression of time k on a moneyness x gap grid over the training range."""
+        low, high = self._moneyness_range
+        # Padded: at the first decision every path may sit at the same spot.
+        pad = max(0.05 * (high - low), 3.0 * self.problem.marks.volatility * np.sqrt(self.problem.dt_years))
+        moneyness = np.linspace(low - pad, high + pad, TABLE_MONEYNESS_POINTS)
+        obs = np.column_stack([np.exp(moneyness), np.full_like(moneyness, self.problem.years_to_horizon(k)),
+                               np.zeros_like(moneyness)])
+        state = state_features(self.problem, obs)
+        targets = state.hedge[:, None] + TABLE_GAPS[None, :]
+        return moneyness, self._regress(k, state, targets)
+
+    def _regress(self, k: int, state, targets: np.ndarray) -> np.ndarray:
         X = basis(self.terms, state, targets)
         return self.regressors_[k].predict(X.reshape(-1, X.shape[-1])).reshape(targets.shape)
+
+    def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
+        if self.tables_ is None:
+            return self._regress(k, state, targets)
+        moneyness, table = self.tables_[k]
+        gaps = targets - state.hedge[:, None]
+        return _bilinear(table, moneyness, TABLE_GAPS, state.values["moneyness"], gaps)

@@ -88,9 +88,6 @@ class LinearBasisAgent(BackwardQAgent):
         self.drift = drift
         self.name = name
 
-    # Fit within states (fixed effects): state-only terms of the basis then carry nothing.
-    within_state = True
-
     @property
     def terms(self) -> tuple[str, ...]:
         return tuple(self.basis)
@@ -104,7 +101,7 @@ class LinearBasisAgent(BackwardQAgent):
         self.statistics_[k] = NormalEquations.empty(len(self.terms))
 
     def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
-        self.statistics_[k] = self.statistics_[k] + NormalEquations.of(X, y)
+        self.statistics_[k] = self.statistics_[k] + _within_state(X, y)
 
     def _finish_step(self, k: int) -> None:
         later = k + 1 < self.problem.schedule.steps
@@ -117,4 +114,12 @@ class LinearBasisAgent(BackwardQAgent):
     def step_statistics(self, transitions: Transitions, k: int) -> NormalEquations:
         """Normal equations of decision time k from one block of transitions, using the fitted
         coefficients of later times: what one worker contributes before the sum and the solve."""
-        return NormalEquations.of(*self._regression_rows(transitions, k))
+        return _within_state(*self._regression_rows(transitions, k))
+
+
+def _within_state(X: np.ndarray, y: np.ndarray) -> NormalEquations:
+    """Normal equations of the fixed-effects regression: design (terms, n, M) and targets (n, M)
+    centred on each state's mean, so terms of the state alone carry nothing."""
+    X = X - X.mean(axis=2, keepdims=True)
+    y = y - y.mean(axis=1, keepdims=True)
+    return NormalEquations.of(X.reshape(len(X), -1), y.reshape(-1))
