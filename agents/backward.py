@@ -25,7 +25,8 @@ m2, from the training paths.
 
 The greedy action maximises Q over a candidate set that always holds no
 trade, the Black-Scholes hedge, band edges around it
-(``hedge +/- band_widths``) and partial moves toward it.
+(``hedge +/- band_widths``, in hedge moves: agents.features.hedge_move) and
+partial moves toward it.
 """
 
 from __future__ import annotations
@@ -36,19 +37,20 @@ import numpy as np
 from sklearn.base import BaseEstimator
 
 from agents.dataset import Transitions
-from agents.features import StateFeatures, basis_columns, state_features
+from agents.features import StateFeatures, basis_columns, hedge_move, state_features
 from hedge_env.problem import HedgingProblem
 
-DEFAULT_BAND_WIDTHS = (0.0025, 0.005, 0.0075, 0.01, 0.015, 0.02, 0.025, 0.03, 0.04, 0.05, 0.065, 0.08,
-                       0.1, 0.13, 0.17, 0.22, 0.3)
+# Band edges around the hedge, in hedge moves (the typical one-step change of the hedge).
+DEFAULT_BAND_WIDTHS = (0.035, 0.07, 0.1, 0.14, 0.2, 0.27, 0.35, 0.42, 0.55, 0.7, 0.9, 1.1, 1.4, 1.8, 2.3, 3.0, 4.0)
 DEFAULT_PARTIAL_MOVES = (0.25, 0.5, 0.75)
 ROW_BLOCK = 2048  # rows evaluated at a time: bounds the (rows, candidates, basis) array
 
 
-def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: float) -> np.ndarray:
-    """(n, C) candidate targets per share of notional: no trade, hedge, band edges, partial moves."""
+def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: float, move: float = 1.0) -> np.ndarray:
+    """(n, C) candidate targets per share of notional: no trade, hedge, band edges
+    (``band_widths`` x ``move``), partial moves."""
     h, hedge = state.holding[:, None], state.hedge[:, None]
-    widths = np.asarray(band_widths, dtype=float)
+    widths = np.asarray(band_widths, dtype=float) * move
     moves = np.asarray(partial_moves, dtype=float)
     columns = [h, hedge, hedge - widths, hedge + widths, h + moves * (hedge - h)]
     return np.clip(np.concatenate(columns, axis=1), -limit, limit)
@@ -101,6 +103,7 @@ class BackwardQAgent(BaseEstimator):
         """Fit from transitions: a Transitions block, or a callable returning an iterable of blocks
         (called once per decision time, so the data may be streamed from paths)."""
         steps = self.problem.schedule.steps
+        self.move_ = hedge_move(self.problem)
         self._setup()
         mean_return, self.mean_squared_return_ = self._return_moments(data)
         self.drift_ = np.log1p(mean_return) / self.problem.dt_years if self.drift is None else float(self.drift)
@@ -166,7 +169,7 @@ class BackwardQAgent(BaseEstimator):
         for start in range(0, len(obs), ROW_BLOCK):
             rows = slice(start, start + ROW_BLOCK)
             state = state_features(self.problem, obs[rows], self.factor_names)
-            targets = candidate_targets(state, self.band_widths, self.partial_moves, self._limit())
+            targets = candidate_targets(state, self.band_widths, self.partial_moves, self._limit(), self.move_)
             q = self._q(k, state, targets)
             best = np.argmax(q, axis=1)
             pick = np.arange(len(best))

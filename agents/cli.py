@@ -14,8 +14,9 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from rich.table import Table
 
 from agents.config import ConfigError, load_config
-from agents.evaluate import evaluate_policies
+from agents.evaluate import evaluate_policies, write_metrics
 from agents.scenario import build_market, build_problem, prepare_baselines
+from agents.training import load_run, train, write_run
 
 CAUTION = (
     "Decision support, not advice: a policy is only as good as the market model and data it was "
@@ -111,36 +112,17 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
     )
 
 
-@app.command()
-def evaluate(
-    config: Path = typer.Argument(..., help="TOML config file."),
-    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
-    seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
-    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
-    quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
-) -> None:
-    """Score every baseline of CONFIG on held-out paths and print them ranked by objective."""
-    cfg = _load(config)
-    problem, market = build_problem(cfg), build_market(cfg)
-    n_paths = paths or cfg.data.heldout_paths
-    seed = cfg.data.heldout_seed if seed is None else seed
-    with _progress(quiet) as start:
-        if any(getattr(s, p, None) == "tune" for s in cfg.baselines for p in ("risk_aversion", "half_width")):
-            start("tuning baselines on training paths", 1)
-        policies, tuning = prepare_baselines(cfg, problem, market)
-        advance = start("hedging held-out paths", n_paths)
-        kinds = {spec.name: spec.kind for spec in cfg.baselines}
-        evaluation = evaluate_policies(
-            problem, policies, market, n_paths, seed, kinds, cfg.data.chunk_paths, progress=advance
-        )
+def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json: bool, run_dir=None) -> None:
     records = evaluation.to_records()
     if as_json:
         out = {
             "config": cfg.name,
             "heldout_paths": n_paths,
             "heldout_seed": seed,
+            "reference_policy": evaluation.reference,
             "tuned": {name: {r.parameter: r.value, "train_objective": r.objective} for name, r in tuning.items()},
             "policies": records,
+            "run": None if run_dir is None else str(run_dir),
             "caution": CAUTION,
         }
         sys.stdout.write(json.dumps(out, indent=2) + "\n")
@@ -150,9 +132,105 @@ def evaluate(
         "costs per path, turnover in notionals",
         records,
     )
+    reference = evaluation.reference
+    if reference in evaluation.results:
+        console.print(f"objective difference from {reference}, paired over paths, 95% CI:", highlight=False)
+        for record in records:
+            if record["name"] != reference:
+                v = record["vs_reference"]
+                verdict = "above" if v["ci_low"] > 0 else "below" if v["ci_high"] < 0 else "not distinguishable"
+                console.print(f"  {record['name']:<18} {v['mean']:+.4g}  [{v['ci_low']:+.4g}, {v['ci_high']:+.4g}]"
+                              f"  {verdict}", highlight=False)
     for name, result in tuning.items():
         console.print(f"tuned on training paths: {name}.{result.parameter} = {result.value:.6g}", highlight=False)
+    if run_dir is not None:
+        console.print(f"run folder: {run_dir}", highlight=False)
     console.print(CAUTION, style="dim", highlight=False)
+
+
+def _heldout(cfg, paths: int | None, seed: int | None) -> tuple[int, int]:
+    return paths or cfg.data.heldout_paths, cfg.data.heldout_seed if seed is None else seed
+
+
+@app.command()
+def evaluate(
+    source: Path = typer.Argument(..., help="TOML config file, or a run folder written by `rehedge run`/`train`."),
+    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
+    seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+) -> None:
+    """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
+    with _progress(quiet) as start:
+        if source.is_dir():
+            try:
+                run = load_run(source)
+            except ConfigError as error:
+                fail(str(error))
+            cfg, problem, market = run.config, run.problem, run.market
+            policies, tuning = {**run.baselines, **run.agents}, {}
+            kinds = {s.name: s.kind for s in [*cfg.baselines, *cfg.agents]}
+        else:
+            cfg = _load(source)
+            problem, market = build_problem(cfg), build_market(cfg)
+            start("tuning baselines on training paths", 1)
+            policies, tuning = prepare_baselines(cfg, problem, market)
+            kinds = {spec.name: spec.kind for spec in cfg.baselines}
+        n_paths, seed = _heldout(cfg, paths, seed)
+        evaluation = evaluate_policies(
+            problem, policies, market, n_paths, seed, kinds, cfg.data.chunk_paths,
+            progress=start("hedging held-out paths", n_paths), reference=_reference(cfg, policies),
+        )
+    _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
+
+
+def _reference(cfg, policies) -> str | None:
+    return cfg.report.reference_policy if cfg.report.reference_policy in policies else None
+
+
+def _train(config: Path, runs_dir: Path, quiet: bool):
+    cfg = _load(config)
+    try:
+        with _progress(quiet) as start:
+            training = train(cfg, start)
+    except ConfigError as error:
+        fail(str(error))
+    run_dir = write_run(training, config.read_text(), runs_dir)
+    return cfg, training, run_dir
+
+
+@app.command("train")
+def train_command(
+    config: Path = typer.Argument(..., help="TOML config file."),
+    runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where run folders are written."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+) -> None:
+    """Tune the baselines and fit every agent of CONFIG on its training paths; write a run folder."""
+    _, training, run_dir = _train(config, runs_dir, quiet)
+    for line in training.log:
+        console.print(line, highlight=False)
+    console.print(f"run folder: {run_dir}", highlight=False)
+
+
+@app.command()
+def run(
+    config: Path = typer.Argument(..., help="TOML config file."),
+    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
+    runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where run folders are written."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+) -> None:
+    """The main job: train every agent, then score agents and baselines on the same held-out paths."""
+    cfg, training, run_dir = _train(config, runs_dir, quiet)
+    n_paths, seed = _heldout(cfg, paths, None)
+    with _progress(quiet) as start:
+        evaluation = evaluate_policies(
+            training.problem, training.policies, training.market, n_paths, seed, training.kinds,
+            cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
+            reference=_reference(cfg, training.policies),
+        )
+    write_metrics(evaluation, run_dir)
+    _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
 
 
 def main() -> None:  # pragma: no cover - console entry point

@@ -416,28 +416,71 @@ def default_baselines() -> list:
     ]
 
 
-class FittedQAgentSpec(_NamedPolicy):
-    """Fitted Q-iteration agent."""
+class ExplorationSpec(_Spec):
+    """Behaviour policy that collects the training transitions."""
+
+    no_trade: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
+        0.3, description="Probability of keeping the holding.")
+    delta: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
+        0.2, description="Probability of trading to the Black-Scholes hedge.")
+    spread: float = Field(1.1, ge=0, description="Std of other targets around the hedge or the holding, "
+                                                 "in hedge moves (typical one-step change of the hedge).")
+    actions_per_state: int = Field(8, ge=2, description="Targets replayed on each state's market move.")
+
+    @model_validator(mode="after")
+    def _probabilities(self):
+        if self.no_trade + self.delta > 1:
+            raise _rule(f"no_trade + delta must be <= 1, got {self.no_trade + self.delta:g}", "no_trade")
+        return self
+
+
+BasisTerms = Annotated[list[str], Field(min_length=1)]
+
+
+class _LearnedAgent(_NamedPolicy):
+    exploration: ExplorationSpec = Field(default_factory=ExplorationSpec,
+                                         description="Behaviour policy of the training transitions.")
+    band_widths: list[Annotated[float, Field(gt=0)]] | None = Field(
+        None, description="Band edges around the hedge among the candidate targets, in hedge moves; "
+                          "default the agent's own.")
+    drift: float | None = Field(None, description="Annual drift for the control variate; default estimated "
+                                                  "from the training paths.")
+
+
+REGRESSORS = ("hist_gradient_boosting", "extra_trees", "random_forest", "gradient_boosting", "ridge",
+              "k_neighbors", "mlp")
+
+
+class FittedQAgentSpec(_LearnedAgent):
+    """Fitted Q iteration over a scikit-learn regressor, one regression per decision time."""
 
     kind: Literal["fitted_q"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    params: dict[str, Any] = Field(default_factory=dict, description="Agent settings (free-form for now).")
+    regressor: Literal[REGRESSORS] = Field(  # type: ignore[valid-type]
+        "hist_gradient_boosting", description="scikit-learn regressor by name.")
+    regressor_params: dict[str, Any] = Field(default_factory=dict,
+                                             description="Keyword arguments of the regressor.")
+    basis: BasisTerms | None = Field(None, description="Feature columns (agents.features); default the tree set.")
 
 
-class LinearAgentSpec(_NamedPolicy):
-    """Linear policy on hand-made features."""
+class LinearAgentSpec(_LearnedAgent):
+    """Linear-basis agent: ridge least squares on basis functions, backward in time."""
 
     kind: Literal["linear"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    params: dict[str, Any] = Field(default_factory=dict, description="Agent settings (free-form for now).")
+    basis: BasisTerms | None = Field(None, description="Basis terms (agents.features); default the polynomial set.")
+    ridge: float = Field(1e-6, ge=0, description="Ridge penalty relative to each column's sum of squares.")
+    smoothing: float = Field(0.0, ge=0, description="Shrinkage toward the next decision time's coefficients.")
 
 
 class GridDPAgentSpec(_NamedPolicy):
-    """Dynamic programming on a state grid."""
+    """Model-based dynamic programming on a (time, log spot, holding) grid: the reference optimum (GBM)."""
 
     kind: Literal["grid_dp"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    params: dict[str, Any] = Field(default_factory=dict, description="Agent settings (free-form for now).")
+    spot_points: int = Field(151, ge=11, description="Log-spot grid points.")
+    holding_points: int = Field(201, ge=11, description="Holding grid points (also the candidate targets).")
+    quadrature_nodes: int = Field(16, ge=4, description="Gauss-Hermite nodes of the next-spot expectation.")
 
 
 AgentSpec = Annotated[

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from agents.features import hedge_move
 from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import MARK_VOLATILITY_FACTOR, as_market
@@ -28,13 +29,14 @@ from hedge_env.step import HedgeState, hedge_step, initial_state, observe
 @dataclass(frozen=True)
 class Exploration:
     """Behaviour policy: with probability ``no_trade`` keep the holding, with ``delta`` trade
-    to the Black-Scholes hedge, otherwise draw a target ``spread`` (per share of notional,
-    normal) around the hedge or around the holding, half and half."""
+    to the Black-Scholes hedge, otherwise draw a target normally around the hedge or around
+    the holding, half and half, with std ``spread`` hedge moves (agents.features.hedge_move:
+    the typical one-step change of the hedge)."""
 
     no_trade: float = 0.3
     delta: float = 0.2
-    spread: float = 0.08
-    actions_per_state: int = 4
+    spread: float = 1.1
+    actions_per_state: int = 8
 
     def __post_init__(self) -> None:
         if not (0 <= self.no_trade and 0 <= self.delta and self.no_trade + self.delta <= 1):
@@ -42,12 +44,14 @@ class Exploration:
         if self.spread < 0 or self.actions_per_state < 1:
             raise ValueError("exploration: spread must be >= 0 and actions_per_state >= 1")
 
-    def draw(self, rng: np.random.Generator, holding: np.ndarray, hedge: np.ndarray, size: int) -> np.ndarray:
-        """(n, size) targets per share of notional for rows with ``holding`` and ``hedge``."""
+    def draw(self, rng: np.random.Generator, holding: np.ndarray, hedge: np.ndarray, size: int,
+             move: float) -> np.ndarray:
+        """(n, size) targets per share of notional for rows with ``holding`` and ``hedge``;
+        ``move`` is the hedge move in shares per share of notional."""
         n = holding.shape[0]
         u = rng.random((n, size))
         center = np.where(rng.random((n, size)) < 0.5, hedge[:, None], holding[:, None])
-        spread = center + self.spread * rng.standard_normal((n, size))
+        spread = center + (self.spread * move) * rng.standard_normal((n, size))
         targets = np.where(u < self.no_trade + self.delta, hedge[:, None], spread)
         return np.where(u < self.no_trade, holding[:, None], targets)
 
@@ -120,6 +124,7 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
             observed: tuple[str, ...] = ()) -> Transitions:
     """Transitions of ``paths`` under the behaviour policy (random draws from ``seed``)."""
     rng = np.random.default_rng(seed)
+    move = hedge_move(problem)
     n, steps, m = paths.n_paths, problem.schedule.steps, exploration.actions_per_state
     notional = problem.notional_shares
     spot = np.ascontiguousarray(paths.spot.T)
@@ -135,7 +140,7 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
     for k in range(steps):
         obs[k] = observe(problem, state, [factors[f][k] for f in observed])
         hedge = -state.delta / notional
-        actions[k] = exploration.draw(rng, obs[k, :, 2], hedge, m)
+        actions[k] = exploration.draw(rng, obs[k, :, 2], hedge, m, move)
         # Column-major tiling: rows j*n .. (j+1)*n-1 are action j of every state.
         outcome = hedge_step(
             problem, _tile(state, m), actions[k].T.reshape(-1) * notional, np.tile(spot[k + 1], m),

@@ -98,6 +98,21 @@ def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple
     return StateFeatures(values, decoded.spot, decoded.holding_shares)
 
 
+def hedge_move(problem: HedgingProblem, points: int = 41) -> float:
+    """The problem's natural unit of holdings: the typical one-step change of the hedge, per
+    share of notional, ``|book gamma| S vol sqrt(dt) / notional`` averaged over spots within one
+    horizon standard deviation of the reference spot at the start (floored at 1e-4).
+
+    Exploration spreads and candidate band widths are multiples of it, so the same settings suit
+    a single option and a spread whose net gamma is small.
+    """
+    marks = problem.marks
+    width = marks.volatility * np.sqrt(problem.horizon_years)
+    spots = problem.reference_spot * np.exp(np.linspace(-width, width, points))
+    gamma = np.abs(problem.book.gamma(spots, 0.0, marks)) * spots / problem.notional_shares
+    return max(float(gamma.mean()) * marks.volatility * np.sqrt(problem.dt_years), 1e-4)
+
+
 def _tents(x: np.ndarray, knots: np.ndarray) -> list[np.ndarray]:
     """Piecewise-linear tent functions on ``knots`` (a partition of unity; clamped at the ends)."""
     x = np.clip(x, knots[0], knots[-1])

@@ -25,13 +25,13 @@ from agents.features import HATS, TREE_BASIS, basis, check_terms, state_features
 from hedge_env.problem import HedgingProblem
 
 # Fewer band edges than the linear agent: every candidate costs a tree-ensemble prediction.
-TREE_BAND_WIDTHS = (0.005, 0.01, 0.015, 0.02, 0.03, 0.04, 0.055, 0.075, 0.1, 0.14, 0.2)
+TREE_BAND_WIDTHS = (0.07, 0.14, 0.2, 0.27, 0.42, 0.55, 0.75, 1.0, 1.4, 1.9, 2.7)
 
 
 # Features that, at a fixed decision time, are functions of moneyness and the gap alone.
 TABULABLE = {"moneyness", "years_left", "hedge", "gamma", "target", "gap", "abs_gap", "abs_target", *HATS}
 TABLE_MONEYNESS_POINTS = 121
-TABLE_GAPS = np.linspace(-0.45, 0.45, 181)
+TABLE_GAPS = np.linspace(-6.0, 6.0, 181)  # in hedge moves
 
 
 def default_regressor() -> HistGradientBoostingRegressor:
@@ -134,7 +134,7 @@ class FittedQAgent(BackwardQAgent):
         obs = np.column_stack([np.exp(moneyness), np.full_like(moneyness, self.problem.years_to_horizon(k)),
                                np.zeros_like(moneyness)])
         state = state_features(self.problem, obs)
-        targets = state.hedge[:, None] + TABLE_GAPS[None, :]
+        targets = state.hedge[:, None] + self.move_ * TABLE_GAPS[None, :]
         return moneyness, self._regress(k, state, targets)
 
     def _regress(self, k: int, state, targets: np.ndarray) -> np.ndarray:
@@ -145,5 +145,5 @@ class FittedQAgent(BackwardQAgent):
         if self.tables_ is None:
             return self._regress(k, state, targets)
         moneyness, table = self.tables_[k]
-        gaps = targets - state.hedge[:, None]
+        gaps = (targets - state.hedge[:, None]) / self.move_
         return _bilinear(table, moneyness, TABLE_GAPS, state.values["moneyness"], gaps)

@@ -119,11 +119,10 @@ class Book:
         value = delta = None
         for leg in legs:
             tau = self._years_left(leg, t_days, marks)
+            # The position size is folded into the pricing's scalar factors: no pass over the arrays.
             leg_value, leg_delta = pricing.price_and_delta(
-                spot, leg.strike, tau, vol, marks.rate, marks.dividend_yield, leg.is_call
+                spot, leg.strike, tau, vol, marks.rate, marks.dividend_yield, leg.is_call, leg.shares
             )
-            leg_value *= leg.shares
-            leg_delta *= leg.shares
             if not scalar_time:
                 live = leg.expiry_days > t_days + _DAYS_TOLERANCE
                 leg_value = np.where(live, leg_value, 0.0)

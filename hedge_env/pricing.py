@@ -126,14 +126,38 @@ def _as_sign(is_call) -> float | None:
     return None
 
 
-def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w):
-    """Price and delta for scalar tau > 0, vol > 0, rate, dividend and sign.
+def _payoff_price_delta(spot, strike, w, scale):
+    """Price and delta at or past expiry (scalar tau <= 0 and sign), times ``scale``.
+
+    The payoff and the step delta of the limit, without the masks and the
+    normal CDFs of the general path: the last step of every rollout lands here.
+    Bit for bit what :func:`black_scholes` gives at ``tau <= 0`` when ``scale`` is 1.
+    """
+    S = np.asarray(spot, dtype=np.float64)
+    k = _as_float(strike)
+    K = k if k is not None else np.asarray(strike, dtype=np.float64)
+    # Intrinsic value w (S - K), written as K - S for puts so at the money it is +0.0, not -0.0.
+    intrinsic = S - K if w > 0.0 else K - S
+    # sign(w (S - K)) is 1, 0, -1 in, at and out of the money: delta w (1 + sign) / 2 is w, w/2, 0.
+    dlt = np.sign(intrinsic)
+    dlt += 1.0
+    dlt *= 0.5 * w * scale
+    dlt += 0.0  # turns the -0.0 of an out-of-the-money put into 0.0, as the general path does
+    prc = np.maximum(intrinsic, 0.0)
+    if scale != 1.0:
+        prc *= scale
+    return np.asarray(prc), np.asarray(dlt)
+
+
+def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w, scale=1.0):
+    """Price and delta for scalar tau > 0, vol > 0, rate, dividend and sign, times ``scale``.
 
     No masks are needed because vol*sqrt(tau) > 0; every scalar factor is
     computed once and the array work is one log, two ndtr and a few
-    multiply/adds. The sign ``w`` is folded into the scalar factors so puts
-    cost the same as calls and are computed directly from N(-d1), N(-d2),
-    which keeps far out-of-the-money puts accurate (no parity cancellation).
+    multiply/adds. The sign ``w`` and ``scale`` are folded into the scalar
+    factors so puts and positions cost the same as one call, and puts are
+    computed directly from N(-d1), N(-d2), which keeps far out-of-the-money
+    puts accurate (no parity cancellation).
     """
     S = np.asarray(spot, dtype=np.float64)
     std = vol * math.sqrt(tau)
@@ -143,19 +167,20 @@ def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w):
     # one scale; the drift and the half-variance are folded into a scalar.
     growth = math.exp((rate - dividend) * tau + 0.5 * std * std)
     k = _as_float(strike)
+    w_scale = w * scale
     if k is not None:
         x = S * (growth / k)
-        k_df = w * df_r * k
+        k_df = w_scale * df_r * k
     else:
         K = np.asarray(strike, dtype=np.float64)
         x = S * (growth / K)
-        k_df = (w * df_r) * K
+        k_df = (w_scale * df_r) * K
     a = w / std
     if not isinstance(x, np.ndarray):
         # Scalar spot and strike: numpy scalars cannot be written in place.
         x = np.log(x) * a
         with np.errstate(under="ignore"):
-            dlt = ndtr(x) * (w * df_q)
+            dlt = ndtr(x) * (w_scale * df_q)
             prc = S * dlt - ndtr(x - w * std) * k_df
         return np.asarray(prc), np.asarray(dlt)
     # Array case: work in place in x, which has the full broadcast shape of
@@ -168,7 +193,7 @@ def _fast_price_delta(spot, strike, tau, vol, rate, dividend, w):
     # ndtr returns subnormals for w*d in about [-37.7, -37.5]; scaling them
     # may underflow, which is correct, so keep a caller's under="raise" quiet.
     with np.errstate(under="ignore"):
-        x *= w * df_q  # delta = w e^{-q tau} N(w d1)
+        x *= w_scale * df_q  # delta = w e^{-q tau} N(w d1)
         prc = S * x
         n2 *= k_df
         prc -= n2  # price = S*delta - w K e^{-r tau} N(w d2)
@@ -238,32 +263,42 @@ def black_scholes(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) 
     return Greeks(*(a if a.shape == shape else np.broadcast_to(a, shape).copy() for a in fields))
 
 
-def price_and_delta(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True):
-    """Black-Scholes price and delta, with a fast path for the hedging loop.
-    {params}
+def price_and_delta(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True, scale=1.0):
+    """Black-Scholes price and delta, with fast paths for the hedging loop.
+    {params}    scale : float, default 1.0
+        Multiplier of both results, e.g. the signed shares of a position;
+        folded into scalar factors, so it costs no pass over the arrays.
+
     Returns
     -------
     price : ndarray
-        Option value, float64, broadcast over the inputs.
+        Option value times ``scale``, float64, broadcast over the inputs.
     delta : ndarray
-        dV/dS, float64, broadcast over the inputs.
+        dV/dS times ``scale``, float64, broadcast over the inputs.
 
     Notes
     -----
     When ``tau``, ``vol``, ``rate``, ``dividend`` and ``is_call`` are scalars
     with ``tau > 0`` and ``vol > 0`` (the usual case: one time step across
     many paths) a mask-free path is used: one log over the spot array and
-    two ``ndtr`` calls. Otherwise the general :func:`black_scholes` is used.
+    two ``ndtr`` calls. A scalar ``tau <= 0`` with a scalar ``is_call`` gives
+    the payoff and step delta directly. Otherwise the general
+    :func:`black_scholes` is used.
     """
     t = _as_float(tau)
     v = _as_float(vol)
-    if t is not None and v is not None and t > 0.0 and v > 0.0 and v * math.sqrt(t) > _MIN_STD:
+    if t is not None and v is not None:
         r = _as_float(rate)
         q = _as_float(dividend)
         w = _as_sign(is_call)
         if r is not None and q is not None and w is not None:
-            return _fast_price_delta(spot, strike, t, v, r, q, w)
+            if t <= 0.0:
+                return _payoff_price_delta(spot, strike, w, scale)
+            if v > 0.0 and v * math.sqrt(t) > _MIN_STD:
+                return _fast_price_delta(spot, strike, t, v, r, q, w, scale)
     g = black_scholes(spot, strike, tau, vol, rate, dividend, is_call)
+    if scale != 1.0:
+        return g.price * scale, g.delta * scale
     return g.price, g.delta
 
 

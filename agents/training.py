@@ -1,0 +1,235 @@
+"""Training from a config: draw the training paths once, tune the baselines, collect
+transitions, fit every configured agent; save and load run folders.
+
+A run folder ``runs/NAME-TIMESTAMP/`` holds the config as given
+(``config.toml``) and resolved (``config.json``), ``manifest.json``
+(package version, seeds, config hash, timings, data sizes, tuned values),
+one ``agents/NAME.joblib`` per fitted agent and ``training.log``.
+"""
+
+from __future__ import annotations
+
+import json
+import platform
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field, replace
+from datetime import datetime, timezone
+from pathlib import Path
+
+import joblib
+import numpy as np
+import sklearn
+from sklearn import ensemble, linear_model, neighbors, neural_network
+
+import hedge_env
+from agents.config import Config, ConfigError, config_hash, parse_config
+from agents.dataset import Exploration, Transitions, collect
+from agents.fitted_q import FittedQAgent
+from agents.grid_dp import GridDPAgent
+from agents.linear import LinearBasisAgent
+from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines, training_paths
+from hedge_env.market import GBMMarket, PathGenerator
+from hedge_env.problem import HedgingProblem
+
+REGRESSOR_CLASSES = {
+    "hist_gradient_boosting": ensemble.HistGradientBoostingRegressor,
+    "extra_trees": ensemble.ExtraTreesRegressor,
+    "random_forest": ensemble.RandomForestRegressor,
+    "gradient_boosting": ensemble.GradientBoostingRegressor,
+    "ridge": linear_model.Ridge,
+    "k_neighbors": neighbors.KNeighborsRegressor,
+    "mlp": neural_network.MLPRegressor,
+}
+
+# Reporter of progress: start(label, total) -> advance(n).
+ProgressStart = Callable[[str, int], Callable[[int], None]]
+
+
+def _no_progress(label: str, total: int) -> Callable[[int], None]:
+    return lambda n: None
+
+
+def make_regressor(name: str, params: dict, where: str):
+    """A scikit-learn regressor by name; unknown parameters are a config error naming ``where``."""
+    regressor = REGRESSOR_CLASSES[name]()
+    unknown = sorted(set(params) - set(regressor.get_params()))
+    if unknown:
+        raise ConfigError(f"{where}: unknown parameter {unknown[0]!r} for {name}")
+    return regressor.set_params(**params)
+
+
+def build_agent(spec, index: int, problem: HedgingProblem, market: PathGenerator):
+    """An unfitted agent from its config entry ``agents[index]``."""
+    where = f"agents[{index}]"
+    if spec.kind == "grid_dp":
+        if not isinstance(market, GBMMarket):
+            raise ConfigError(f"{where}.kind: grid_dp needs a one-factor GBM market")
+        return GridDPAgent(problem, drift=market.drift, volatility=market.volatility,
+                           spot_points=spec.spot_points, holding_points=spec.holding_points,
+                           quadrature_nodes=spec.quadrature_nodes, name=spec.name)
+    common = dict(factor_names=market.observed_factors, drift=spec.drift, name=spec.name)
+    if spec.band_widths is not None:
+        common["band_widths"] = tuple(spec.band_widths)
+    if spec.basis is not None:
+        common["basis"] = tuple(spec.basis)
+    if spec.kind == "linear":
+        return LinearBasisAgent(problem, ridge=spec.ridge, smoothing=spec.smoothing, **common)
+    if spec.kind == "fitted_q":
+        regressor = make_regressor(spec.regressor, spec.regressor_params, f"{where}.regressor_params")
+        return FittedQAgent(problem, regressor=regressor, **common)
+    raise ConfigError(f"{where}.kind: unknown agent kind {spec.kind!r}")
+
+
+def _exploration(spec) -> Exploration:
+    e = spec.exploration
+    return Exploration(no_trade=e.no_trade, delta=e.delta, spread=e.spread, actions_per_state=e.actions_per_state)
+
+
+@dataclass
+class Training:
+    """Everything a training run produced."""
+
+    config: Config
+    problem: HedgingProblem
+    market: PathGenerator
+    agents: dict[str, object]
+    baselines: dict[str, object]
+    tuning: dict
+    timings: dict[str, float] = field(default_factory=dict)
+    sizes: dict[str, int] = field(default_factory=dict)
+    log: list[str] = field(default_factory=list)
+
+    @property
+    def policies(self) -> dict[str, object]:
+        return {**self.baselines, **self.agents}
+
+    @property
+    def kinds(self) -> dict[str, str]:
+        kinds = {spec.name: spec.kind for spec in self.config.baselines}
+        kinds.update({spec.name: spec.kind for spec in self.config.agents})
+        return kinds
+
+    def note(self, line: str) -> None:
+        self.log.append(f"{datetime.now(timezone.utc).isoformat(timespec='seconds')} {line}")
+
+
+def train(config: Config, start: ProgressStart = _no_progress) -> Training:
+    """Tune the baselines and fit every agent of ``config`` on its training paths."""
+    problem, market = build_problem(config), build_market(config)
+    agents = {spec.name: build_agent(spec, i, problem, market) for i, spec in enumerate(config.agents)}
+    outcome = Training(config, problem, market, {}, {}, {})
+    data = config.data
+    clock = time.perf_counter()
+    advance = start("simulating training paths", data.train_paths)
+    paths = training_paths(config, market, problem)
+    advance(data.train_paths)
+    outcome.timings["simulate_s"] = time.perf_counter() - clock
+    outcome.sizes.update(train_paths=data.train_paths, steps=problem.schedule.steps)
+    outcome.note(f"simulated {data.train_paths} training paths x {problem.schedule.steps} steps, seed {data.train_seed}")
+
+    clock = time.perf_counter()
+    start("tuning baselines", 1)
+    outcome.baselines, outcome.tuning = prepare_baselines(config, problem, market, train=paths)
+    outcome.timings["tune_s"] = time.perf_counter() - clock
+    for name, result in outcome.tuning.items():
+        outcome.note(f"tuned {name}.{result.parameter} = {result.value:.6g} (train objective {result.objective:.6g})")
+
+    transitions: dict[Exploration, Transitions] = {}
+    for index, spec in enumerate(config.agents):
+        agent = agents[spec.name]
+        clock = time.perf_counter()
+        if spec.kind == "grid_dp":
+            agent.fit()
+        else:
+            exploration = _exploration(spec)
+            if exploration not in transitions:
+                advance = start(f"collecting transitions ({spec.name})", data.train_paths)
+                parts = []
+                for i, begin in enumerate(range(0, data.train_paths, data.chunk_paths)):
+                    chunk = paths.rows(begin, min(begin + data.chunk_paths, data.train_paths))
+                    seed = np.random.SeedSequence(data.train_seed, spawn_key=(1, i))
+                    parts.append(collect(problem, chunk, exploration, seed, market.observed_factors))
+                    advance(chunk.n_paths)
+                transitions[exploration] = Transitions.concat(parts)
+                rows = transitions[exploration].actions.size
+                outcome.sizes[f"transitions_{spec.name}"] = rows
+                outcome.note(f"collected {rows} transitions for {spec.name}")
+            agent.fit(transitions[exploration], progress=start(f"fitting {spec.name}", problem.schedule.steps))
+        outcome.timings[f"fit_{spec.name}_s"] = time.perf_counter() - clock
+        outcome.note(f"fitted {spec.name} ({spec.kind}) in {outcome.timings[f'fit_{spec.name}_s']:.2f} s")
+        outcome.agents[spec.name] = agent
+    return outcome
+
+
+def _timestamp() -> str:
+    return datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+
+
+def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict | None = None) -> Path:
+    """Write a run folder; it is first built under a temporary name, so nothing is half-written."""
+    config = training.config
+    final = Path(runs_dir) / f"{config.name}-{_timestamp()}"
+    staging = final.with_name(final.name + ".partial")
+    (staging / "agents").mkdir(parents=True)
+    (staging / "config.toml").write_text(config_text)
+    (staging / "config.json").write_text(json.dumps(config.model_dump(), indent=2, default=str) + "\n")
+    for name, agent in training.agents.items():
+        joblib.dump(agent, staging / "agents" / f"{name}.joblib")
+    manifest = {
+        "package": "rehedge",
+        "version": hedge_env.__version__,
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scikit_learn": sklearn.__version__,
+        "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "config_name": config.name,
+        "config_hash": config_hash(config),
+        "seeds": {"seed": config.seed, "train_seed": config.data.train_seed,
+                  "heldout_seed": config.data.heldout_seed},
+        "timings_s": {k: round(v, 4) for k, v in training.timings.items()},
+        "sizes": training.sizes,
+        "tuned": {name: {r.parameter: r.value, "train_objective": r.objective}
+                  for name, r in training.tuning.items()},
+        "agents": {spec.name: spec.kind for spec in config.agents},
+        **(extra or {}),
+    }
+    (staging / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
+    (staging / "training.log").write_text("\n".join(training.log) + "\n")
+    staging.rename(final)
+    return final
+
+
+@dataclass
+class Run:
+    """A run folder read back: config, problem, market, policies (baselines rebuilt with their tuned values)."""
+
+    path: Path
+    config: Config
+    manifest: dict
+    problem: HedgingProblem
+    market: PathGenerator
+    agents: dict[str, object]
+    baselines: dict[str, object]
+
+
+def load_run(path: str | Path) -> Run:
+    """Read a run folder written by :func:`write_run`; a missing or broken folder is a ConfigError."""
+    path = Path(path)
+    manifest_file = path / "manifest.json"
+    if not manifest_file.is_file():
+        raise ConfigError(f"{path}: not a run folder (no manifest.json)")
+    manifest = json.loads(manifest_file.read_text())
+    config = parse_config(json.loads((path / "config.json").read_text()), source=str(path / "config.json"))
+    problem, market = build_problem(config), build_market(config)
+    baselines = {}
+    for spec in config.baselines:
+        policy = build_baseline(spec, problem)
+        # Tuned values come from the manifest: a run is read back, never re-tuned.
+        tuned = manifest.get("tuned", {}).get(spec.name)
+        if tuned:
+            parameter = next(k for k in tuned if k != "train_objective")
+            policy = replace(policy, **{parameter: tuned[parameter]})
+        baselines[spec.name] = policy
+    agents = {spec.name: joblib.load(path / "agents" / f"{spec.name}.joblib") for spec in config.agents}
+    return Run(path, config, manifest, problem, market, agents, baselines)
