@@ -13,7 +13,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from agents.config import ConfigError, load_config
+from agents.config import ConfigError, load_config, load_variants
 from agents.evaluate import evaluate_policies, write_metrics
 from agents.scenario import build_market, build_problem, prepare_baselines
 from agents.training import load_run, train, write_run
@@ -45,6 +45,13 @@ def fail(message: str, code: int = 2) -> None:
 def _load(path: Path):
     try:
         return load_config(path)
+    except ConfigError as error:
+        fail(str(error))
+
+
+def _load_variants(path: Path):
+    try:
+        return load_variants(path)
     except ConfigError as error:
         fail(str(error))
 
@@ -103,11 +110,13 @@ def _print_table(title: str, records: list[dict]) -> None:
 @app.command("check-config")
 def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -> None:
     """Validate a config file; print what it describes, or the first error in one line."""
-    cfg = _load(config)
+    variants = _load_variants(config)
+    cfg = variants[0]
     console.print(
         f"{config}: ok: {len(cfg.book.options)} option(s), {cfg.notional_shares:g} notional shares, "
         f"{cfg.schedule.steps} rehedges over {cfg.horizon_days:g} days, "
-        f"{len(cfg.baselines)} baseline(s), {len(cfg.agents)} agent(s)",
+        f"{len(cfg.baselines)} baseline(s), {len(cfg.agents)} agent(s)"
+        + (f", {len(variants)} sweep variants" if len(variants) > 1 else ""),
         highlight=False,
     )
 
@@ -188,15 +197,13 @@ def _reference(cfg, policies) -> str | None:
     return cfg.report.reference_policy if cfg.report.reference_policy in policies else None
 
 
-def _train(config: Path, runs_dir: Path, quiet: bool):
-    cfg = _load(config)
+def _train(cfg, config: Path, runs_dir: Path, quiet: bool):
     try:
         with _progress(quiet) as start:
             training = train(cfg, start)
     except ConfigError as error:
         fail(str(error))
-    run_dir = write_run(training, config.read_text(), runs_dir)
-    return cfg, training, run_dir
+    return training, write_run(training, config.read_text(), runs_dir)
 
 
 @app.command("train")
@@ -205,11 +212,13 @@ def train_command(
     runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where run folders are written."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
-    """Tune the baselines and fit every agent of CONFIG on its training paths; write a run folder."""
-    _, training, run_dir = _train(config, runs_dir, quiet)
-    for line in training.log:
-        console.print(line, highlight=False)
-    console.print(f"run folder: {run_dir}", highlight=False)
+    """Tune the baselines and fit every agent of CONFIG on its training paths; write a run folder
+    (one per variant when the config has a sweep)."""
+    for cfg in _load_variants(config):
+        training, run_dir = _train(cfg, config, runs_dir, quiet)
+        for line in training.log:
+            console.print(line, highlight=False)
+        console.print(f"run folder: {run_dir}", highlight=False)
 
 
 @app.command()
@@ -220,17 +229,19 @@ def run(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
-    """The main job: train every agent, then score agents and baselines on the same held-out paths."""
-    cfg, training, run_dir = _train(config, runs_dir, quiet)
-    n_paths, seed = _heldout(cfg, paths, None)
-    with _progress(quiet) as start:
-        evaluation = evaluate_policies(
-            training.problem, training.policies, training.market, n_paths, seed, training.kinds,
-            cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
-            reference=_reference(cfg, training.policies),
-        )
-    write_metrics(evaluation, run_dir)
-    _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
+    """The main job: train every agent, then score agents and baselines on the same held-out paths
+    (each variant in turn when the config has a sweep)."""
+    for cfg in _load_variants(config):
+        training, run_dir = _train(cfg, config, runs_dir, quiet)
+        n_paths, seed = _heldout(cfg, paths, None)
+        with _progress(quiet) as start:
+            evaluation = evaluate_policies(
+                training.problem, training.policies, training.market, n_paths, seed, training.kinds,
+                cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
+                reference=_reference(cfg, training.policies),
+            )
+        write_metrics(evaluation, run_dir)
+        _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
 
 
 def main() -> None:  # pragma: no cover - console entry point

@@ -18,8 +18,10 @@ that starts with the TOML key path, e.g.
 
 from __future__ import annotations
 
+import copy
 import difflib
 import hashlib
+import itertools
 import json
 import math
 import re
@@ -526,6 +528,10 @@ class Config(_Spec):
     agents: list[AgentSpec] = Field(default_factory=list, description="Learned policies to train.")
     report: ReportSpec = Field(default_factory=ReportSpec, description="Report settings.")
     export: ExportSpec = Field(default_factory=ExportSpec, description="Export settings.")
+    sweep: dict[str, Annotated[list[Any], Field(min_length=1)]] = Field(
+        default_factory=dict,
+        description="Dotted keys to vary, each with its list of values, e.g. "
+                    "{ \"frictions.cost_rate\" = [0.001, 0.005] }: one variant per combination.")
 
     @property
     def horizon_days(self) -> float:
@@ -616,6 +622,35 @@ def load_config(path: str | Path) -> Config:
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: {_toml_error(exc, text)}", source=source) from None
     return parse_config(data, source=source)
+
+
+def load_variants(path: str | Path) -> list[Config]:
+    """The config of ``path`` and, when it has a ``sweep``, one config per combination of the
+    swept values (each named ``NAME-key-value``, validated like a config of its own)."""
+    base = load_config(path)
+    if not base.sweep:
+        return [base]
+    data = tomllib.loads(Path(path).read_text())
+    sweep = data.pop("sweep")
+    variants = []
+    for values in itertools.product(*sweep.values()):
+        variant = copy.deepcopy(data)
+        label = []
+        for key, value in zip(sweep, values):
+            *parents, leaf = key.split(".")
+            table = variant
+            for part in parents:
+                table = table.setdefault(part, {})
+                if not isinstance(table, dict):
+                    raise ConfigError(f"sweep.{key}: {part!r} is not a table", source=str(path), key=f"sweep.{key}")
+            table[leaf] = value
+            label.append(f"{leaf}{value:g}" if isinstance(value, float) else f"{leaf}{value}")
+        variant["name"] = "-".join([data["name"], *label]).replace("_", "")
+        try:
+            variants.append(parse_config(variant, source=str(path)))
+        except ConfigError as error:
+            raise ConfigError(f"sweep {dict(zip(sweep, values))}: {error}", source=str(path), key="sweep") from None
+    return variants
 
 
 def parse_config(data: dict, source: str = "<config>") -> Config:

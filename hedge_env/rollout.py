@@ -16,7 +16,7 @@ import pandas as pd
 from hedge_env.market import GivenPaths, MarketPaths, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem
-from hedge_env.step import hedge_step, initial_state, observe
+from hedge_env.step import StepOutcome, hedge_step, initial_state, observe
 
 # A factor of this name, when a market supplies it, is the mark volatility per path and time.
 MARK_VOLATILITY_FACTOR = "mark_volatility"
@@ -153,18 +153,36 @@ def _policy_name(policy) -> str:
     return getattr(policy, "name", type(policy).__name__)
 
 
+def _time_major(values: np.ndarray) -> np.ndarray:
+    """(n_paths, n_times) -> a C-contiguous (n_times, n_paths) copy, transposed in row blocks.
+
+    A block of 512 paths x a month of daily times stays in cache while it is
+    transposed; one strided pass over a whole chunk takes twice as long.
+    """
+    n = values.shape[0]
+    out = np.empty(values.shape[::-1])
+    for start in range(0, n, 512):
+        out[:, start:start + 512] = values[start:start + 512].T
+    return out
+
+
+# Where each per-path total sits in a StepOutcome.
+_OUTCOME_INDEX = tuple(StepOutcome._fields.index(key) for key in _TOTALS)
+
+
 def _rollout_chunk(problem, policy, paths: MarketPaths, observed, keep_holdings, name) -> HedgeResult:
     n, steps = paths.n_paths, problem.schedule.steps
     if paths.n_steps != steps:
         raise ValueError(f"paths have {paths.n_steps} steps, the schedule has {steps}")
     # Time-major copies: the loop reads one column per step, contiguously.
-    spot = np.ascontiguousarray(paths.spot.T)
-    factors = {name: np.ascontiguousarray(paths.factors[name].T) for name in observed}
+    spot = _time_major(paths.spot)
+    factors = {name: _time_major(paths.factors[name]) for name in observed}
     mark_vol = paths.factors.get(MARK_VOLATILITY_FACTOR)
-    mark_vol = None if mark_vol is None else np.ascontiguousarray(mark_vol.T)
+    mark_vol = None if mark_vol is None else _time_major(mark_vol)
     notional = problem.notional_shares
     state = initial_state(problem, spot[0], None if mark_vol is None else mark_vol[0])
     totals = {key: np.zeros(n) for key in _TOTALS}
+    accumulate = tuple(zip(_OUTCOME_INDEX, totals.values()))
     holdings = np.empty((n, steps)) if keep_holdings else None
     # Column-major: each observation column is written and read contiguously.
     obs = np.empty((n, 3 + len(observed)), order="F")
@@ -177,8 +195,11 @@ def _rollout_chunk(problem, policy, paths: MarketPaths, observed, keep_holdings,
         outcome = hedge_step(
             problem, state, target, spot[k + 1], None if mark_vol is None else mark_vol[k + 1]
         )
-        for key in _TOTALS:
-            totals[key] += getattr(outcome, key)
+        for index, total in accumulate:
+            part = outcome[index]
+            # A float part is the exact 0.0 of a friction the problem does not have: nothing to add.
+            if type(part) is not float:
+                total += part
         if holdings is not None:
             holdings[:, k] = outcome.held
         state = outcome.state

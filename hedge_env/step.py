@@ -253,16 +253,19 @@ def observe(problem: HedgingProblem, state: HedgeState, factor_values=(), out: n
     ``state.spot``, or floats). ``out`` is an optional (n, 3 + n_factors)
     buffer to fill; the result is 2-D for arrays and 1-D for floats.
     """
-    columns = (
-        state.spot / problem.reference_spot,
-        problem.years_to_horizon(state.k),
-        state.holding / problem.notional_shares,
-        *factor_values,
-    )
+    years_left = problem.years_to_horizon(state.k)
     if isinstance(state.spot, float):
-        return np.array(columns, dtype=dtype)
+        return np.array(
+            (state.spot / problem.reference_spot, years_left, state.holding / problem.notional_shares,
+             *factor_values),
+            dtype=dtype,
+        )
     if out is None:
-        out = np.empty((np.shape(state.spot)[0], len(columns)), dtype=dtype)
-    for j, column in enumerate(columns):
+        out = np.empty((np.shape(state.spot)[0], 3 + len(factor_values)), dtype=dtype)
+    # Scaled straight into the columns: no temporaries to copy over.
+    np.divide(state.spot, problem.reference_spot, out=out[..., 0])
+    out[..., 1] = years_left
+    np.divide(state.holding, problem.notional_shares, out=out[..., 2])
+    for j, column in enumerate(factor_values, start=3):
         out[..., j] = column
     return out

@@ -1,0 +1,118 @@
+"""Learned agents against the grid optimum on the reference case. Measures and prints; passes nothing.
+
+    python -m benchmarks.agents [--config configs/reference-gbm.toml] [--figure runs/agents.png]
+
+Per cost level (the config's sweep): every policy's held-out objective, the
+share of the grid-DP gain over delta it captures, ((policy - delta) /
+(DP - delta), paired on the same paths, 95% bootstrap CI over paths), its
+paired difference from the tuned Whalley-Wilmott band, and fit times.
+
+The figure compares one regression per decision time with pooling across
+times: the linear agent refitted with growing shrinkage of each time's
+coefficients toward the next one's (``smoothing``; very large is a single
+pooled coefficient set), held-out share of the DP gain against smoothing.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+from agents.config import load_variants
+from agents.dataset import Exploration, Transitions, collect
+from agents.linear import LinearBasisAgent
+from agents.scenario import training_paths
+from agents.training import train
+from hedge_env.rollout import rollout_many
+
+BOOTSTRAP = 1000
+
+
+def share_with_ci(policy: np.ndarray, delta: np.ndarray, optimum: np.ndarray, rng) -> tuple[float, float, float]:
+    """Share of the optimum's gain over delta, with a paired bootstrap 95% interval over paths."""
+    gain, best = policy - delta, optimum - delta
+    share = gain.mean() / best.mean()
+    rows = rng.integers(0, gain.size, size=(BOOTSTRAP, gain.size))
+    shares = gain[rows].mean(axis=1) / best[rows].mean(axis=1)
+    low, high = np.quantile(shares, [0.025, 0.975])
+    return float(share), float(low), float(high)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--config", default="configs/reference-gbm.toml")
+    parser.add_argument("--figure", default="runs/agents-per-step-vs-pooled.png")
+    parser.add_argument("--smoothing", default="0,0.3,1,3,10,100")
+    args = parser.parse_args()
+    rng = np.random.default_rng(0)
+    figure_rows = []
+    for config in load_variants(args.config):
+        started = time.perf_counter()
+        training = train(config)
+        train_s = time.perf_counter() - started
+        problem, market = training.problem, training.market
+        policies = training.policies
+        results = rollout_many(problem, policies, market, config.data.heldout_paths, config.data.heldout_seed)
+        delta, optimum = results["delta"].reward, results["grid_dp"].reward
+        band = results["whalley_wilmott"].reward
+        print(f"\n{config.name}: cost {config.frictions.cost_rate * 1e4:g} bps, "
+              f"{config.data.train_paths:,} training / {config.data.heldout_paths:,} held-out paths "
+              f"(training {train_s:.1f} s)")
+        print(f"{'policy':<18}{'objective':>11}{'share of DP gain [95% CI]':>30}{'minus WW band [95% CI]':>30}{'fit s':>8}")
+        for name, result in sorted(results.items(), key=lambda item: -item[1].objective_value):
+            share, low, high = share_with_ci(result.reward, delta, optimum, rng)
+            diff = result.reward - band
+            half = 1.96 * diff.std(ddof=1) / np.sqrt(diff.size)
+            fit = training.timings.get(f"fit_{name}_s", training.timings.get("tune_s") if name in training.tuning else 0.0)
+            print(f"{name:<18}{result.objective_value:>11.5f}{share:>12.3f} [{low:.3f}, {high:.3f}]"
+                  f"{diff.mean():>14.5f} [{diff.mean() - half:+.5f}, {diff.mean() + half:+.5f}]{fit:>8.1f}")
+
+        # One regression per decision time against pooling: the same transitions, growing smoothing.
+        spec = next(s for s in config.agents if s.kind == "linear")
+        e = spec.exploration
+        exploration = Exploration(e.no_trade, e.delta, e.spread, e.actions_per_state)
+        paths = training_paths(config, market, problem)
+        transitions = collect(problem, paths, exploration, np.random.SeedSequence(config.data.train_seed, spawn_key=(1, 0)))
+        base = training.agents[spec.name]
+        for smoothing in [float(x) for x in args.smoothing.split(",")]:
+            agent = LinearBasisAgent(**{**base.get_params(), "smoothing": smoothing}).fit(transitions)
+            reward = rollout_many(problem, {"a": agent}, market, config.data.heldout_paths,
+                                  config.data.heldout_seed)["a"].reward
+            share, low, high = share_with_ci(reward, delta, optimum, rng)
+            figure_rows.append((config.frictions.cost_rate, smoothing, share, low, high))
+            print(f"  linear, smoothing {smoothing:>6g}: share of DP gain {share:.3f} [{low:.3f}, {high:.3f}]")
+    _figure(figure_rows, Path(args.figure))
+
+
+def _figure(rows, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(6.4, 3.8))
+    colours = ["#1b6f8a", "#c8553d", "#5b8c5a"]
+    for colour, cost in zip(colours, sorted({r[0] for r in rows})):
+        mine = [r for r in rows if r[0] == cost]
+        x = [max(r[1], 0.03) for r in mine]  # smoothing 0 drawn at the left edge of the log axis
+        share = [r[2] for r in mine]
+        err = [[r[2] - r[3] for r in mine], [r[4] - r[2] for r in mine]]
+        ax.errorbar(x, share, yerr=err, marker="o", color=colour, capsize=3, label=f"{cost * 1e4:g} bps")
+    ax.set_xscale("log")
+    ax.set_xlabel("smoothing toward the next time's coefficients (left: one regression per time; right: pooled)")
+    ax.set_ylabel("share of grid-DP gain over delta")
+    ax.set_title("Linear agent: per-time regressions against pooling across times", fontsize=10)
+    ax.grid(alpha=0.3)
+    ax.legend(title="cost")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    print(f"figure: {path}")
+
+
+if __name__ == "__main__":
+    main()
