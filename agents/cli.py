@@ -33,7 +33,7 @@ app = typer.Typer(
 )
 # Tables are wide: when the output is not a terminal, do not fold them at 80 columns.
 console = Console(width=None if sys.stdout.isatty() else 160)
-errors = Console(stderr=True)
+errors = Console(stderr=True, soft_wrap=True)
 
 
 def fail(message: str, code: int = 2) -> None:
@@ -244,8 +244,18 @@ def run(
         _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
 
 
-def main() -> None:  # pragma: no cover - console entry point
-    app()
+def main() -> None:
+    """Console entry point: usage errors end in one line on stderr and exit code 2, like config errors."""
+    try:
+        code = app(standalone_mode=False)
+    except typer.Abort:
+        sys.exit(1)
+    except typer.TyperException as error:  # usage errors: bad option values, missing arguments, unknown commands
+        context = getattr(error, "ctx", None)
+        hint = f" (see `{context.command_path} --help`)" if context is not None else ""
+        errors.print(f"error: {error.format_message()}{hint}", markup=False, highlight=False)
+        sys.exit(getattr(error, "exit_code", 2))
+    sys.exit(code if isinstance(code, int) else 0)
 
 
 if __name__ == "__main__":  # pragma: no cover
