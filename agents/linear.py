@@ -43,8 +43,12 @@ class NormalEquations:
     def solve(self, ridge: float, prior: np.ndarray | None = None, prior_weight: float = 0.0) -> np.ndarray:
         """Ridge solution, shrunk toward ``prior`` with weight ``prior_weight`` (both penalties
         scaled to each column's sum of squares, so they are free of the columns' units)."""
-        scale = np.diag(self.xtx).copy()
-        scale[scale <= 0] = 1.0
+        # Floored against the largest column: a column that is zero up to rounding (a moneyness term
+        # at the first decision, where every training state sits at the start spot) must be shrunk to
+        # nothing, not scaled up to a coefficient of 1e13 that explodes off that spot.
+        diagonal = np.diag(self.xtx)
+        largest = diagonal.max(initial=0.0)
+        scale = np.maximum(diagonal, 1e-12 * largest) if largest > 0 else np.ones_like(diagonal)
         lhs = self.xtx + (ridge + prior_weight) * np.diag(scale)
         rhs = self.xty if prior is None or not prior_weight else self.xty + prior_weight * scale * prior
         return np.linalg.solve(lhs, rhs)

@@ -1,0 +1,179 @@
+"""The command line: evaluate, train, run, check-config; run folders; one-line errors."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import joblib
+import numpy as np
+import pytest
+
+from agents.training import load_run
+
+ROOT = Path(__file__).resolve().parents[1]
+
+SMALL = """
+name = "small-test"
+seed = 3
+
+[market]
+model = "gbm"
+spot = 100.0
+volatility = 0.2
+
+[[book.options]]
+kind = "call"
+strike = 100.0
+expiry_days = 10
+quantity = -1
+
+[schedule]
+steps = 10
+
+[frictions]
+cost_rate = 0.001
+
+[objective]
+risk_aversion = 1.0
+
+[data]
+train_paths = 600
+heldout_paths = 1500
+chunk_paths = 500
+
+[[baselines]]
+kind = "delta"
+
+[[baselines]]
+kind = "fixed_band"
+half_width = "tune"
+
+[[agents]]
+kind = "linear"
+
+[[agents]]
+kind = "fitted_q"
+regressor = "hist_gradient_boosting"
+regressor_params = { max_iter = 10 }
+
+[[agents]]
+kind = "grid_dp"
+spot_points = 41
+holding_points = 41
+"""
+
+
+def rehedge(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", *args],
+                          capture_output=True, text=True, cwd=cwd or ROOT)
+
+
+@pytest.fixture(scope="module")
+def small_run(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("cli")
+    config = folder / "small.toml"
+    config.write_text(SMALL)
+    done = rehedge("run", str(config), "--runs-dir", str(folder / "runs"), "--json", "--quiet")
+    assert done.returncode == 0, done.stderr
+    return folder, config, json.loads(done.stdout)
+
+
+def test_run_prints_every_policy_with_the_promised_json_fields(small_run):
+    _, _, out = small_run
+    names = {p["name"] for p in out["policies"]}
+    assert names == {"delta", "fixed_band", "linear", "fitted_q", "grid_dp"}
+    for policy in out["policies"]:
+        for key in ("name", "kind", "objective", "mean_pnl", "std_pnl", "cvar_95", "mean_cost", "turnover"):
+            assert key in policy
+        assert set(policy["vs_reference"]) >= {"mean", "ci_low", "ci_high"}
+    objectives = [p["objective"] for p in out["policies"]]
+    assert objectives == sorted(objectives, reverse=True)  # ranked by objective
+    delta = next(p for p in out["policies"] if p["name"] == "delta")
+    assert delta["vs_reference"]["mean"] == 0.0 and delta["vs_reference"]["ci_low"] == 0.0
+
+
+def test_run_folder_holds_config_manifest_agents_log_and_metrics(small_run):
+    _, _, out = small_run
+    run_dir = Path(out["run"])
+    for name in ("config.toml", "config.json", "manifest.json", "training.log", "metrics.csv", "metrics.json"):
+        assert (run_dir / name).is_file(), name
+    manifest = json.loads((run_dir / "manifest.json").read_text())
+    assert manifest["seeds"]["train_seed"] != manifest["seeds"]["heldout_seed"]
+    assert len(manifest["config_hash"]) == 64
+    assert set(manifest["agents"]) == {"linear", "fitted_q", "grid_dp"}
+    assert "fixed_band" in manifest["tuned"]
+    metrics = json.loads((run_dir / "metrics.json").read_text())
+    assert [p["objective"] for p in metrics["policies"]] == [p["objective"] for p in out["policies"]]
+
+
+def test_a_run_read_back_scores_the_same_numbers(small_run):
+    _, _, out = small_run
+    again = rehedge("evaluate", out["run"], "--json", "--quiet")
+    assert again.returncode == 0, again.stderr
+    first = {p["name"]: p["objective"] for p in out["policies"]}
+    second = {p["name"]: p["objective"] for p in json.loads(again.stdout)["policies"]}
+    assert second == first  # same held-out seed, same policies (agents loaded, tuned values from the manifest)
+
+
+def test_saved_agents_load_and_act_identically(small_run):
+    _, _, out = small_run
+    run = load_run(out["run"])
+    obs = np.column_stack([np.linspace(0.9, 1.1, 7), np.full(7, 5 / 365), np.linspace(0.2, 0.8, 7)])
+    for name, agent in run.agents.items():
+        reloaded = joblib.load(Path(out["run"]) / "agents" / f"{name}.joblib")
+        assert np.array_equal(agent.act(obs), reloaded.act(obs))
+
+
+def test_same_config_same_seed_gives_the_same_numbers(small_run):
+    folder, config, out = small_run
+    again = rehedge("run", str(config), "--runs-dir", str(folder / "runs2"), "--json", "--quiet")
+    assert again.returncode == 0, again.stderr
+    assert json.loads(again.stdout)["policies"] == [
+        {**p, "vs_reference": p["vs_reference"]} for p in out["policies"]
+    ]
+
+
+def test_bad_config_is_one_line_with_key_and_rule_and_exit_code_2(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(SMALL.replace("strike = 100.0", "strike = -5.0"))
+    done = rehedge("run", str(bad), "--runs-dir", str(tmp_path / "runs"))
+    assert done.returncode == 2
+    assert done.stderr.strip() == "error: book.options[0].strike: must be > 0, got -5.0"
+    assert not (tmp_path / "runs").exists()  # nothing half-written
+
+
+def test_unknown_regressor_parameter_names_the_key(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(SMALL.replace("regressor_params = { max_iter = 10 }", "regressor_params = { max_iters = 10 }"))
+    done = rehedge("train", str(bad), "--runs-dir", str(tmp_path / "runs"), "--quiet")
+    assert done.returncode == 2
+    assert done.stderr.strip() == "error: agents[1].regressor_params: unknown parameter 'max_iters' for hist_gradient_boosting"
+
+
+@pytest.mark.parametrize("args, message", [
+    (("evaluate",), "error: Missing argument 'source'."),
+    (("evaluate", "configs/demo.toml", "--paths", "0"), "error: Invalid value for '--paths'"),
+    (("frobnicate",), "error: No such command 'frobnicate'."),
+])
+def test_usage_errors_are_one_line_with_exit_code_2(args, message):
+    done = rehedge(*args)
+    assert done.returncode == 2
+    assert done.stderr.count("\n") == 1 and done.stderr.startswith(message)
+
+
+def test_check_config_accepts_the_shipped_configs():
+    for config in ("configs/demo.toml", "configs/reference-gbm.toml"):
+        done = rehedge("check-config", config)
+        assert done.returncode == 0, done.stderr
+        assert ": ok:" in done.stdout
+
+
+def test_evaluate_json_on_the_demo_has_every_baseline():
+    done = rehedge("evaluate", "configs/demo.toml", "--paths", "2000", "--json", "--quiet")
+    assert done.returncode == 0, done.stderr
+    out = json.loads(done.stdout)
+    assert {p["name"] for p in out["policies"]} == {"no_hedge", "delta", "leland", "whalley_wilmott", "fixed_band"}
+    assert out["caution"].startswith("Decision support, not advice")
