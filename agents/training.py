@@ -25,7 +25,7 @@ from sklearn import ensemble, linear_model, neighbors, neural_network
 import hedge_env
 from agents.config import Config, ConfigError, config_hash, parse_config
 from agents.dataset import Exploration, Transitions, collect
-from agents.fitted_q import FittedQAgent
+from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
 from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines, training_paths
@@ -51,8 +51,9 @@ def _no_progress(label: str, total: int) -> Callable[[int], None]:
 
 
 def make_regressor(name: str, params: dict, where: str):
-    """A scikit-learn regressor by name; unknown parameters are a config error naming ``where``."""
-    regressor = REGRESSOR_CLASSES[name]()
+    """A scikit-learn regressor by name, from the fitted-Q agent's own settings for the default
+    tree ensemble; unknown parameters are a config error naming ``where``."""
+    regressor = default_regressor() if name == "hist_gradient_boosting" else REGRESSOR_CLASSES[name]()
     unknown = sorted(set(params) - set(regressor.get_params()))
     if unknown:
         raise ConfigError(f"{where}: unknown parameter {unknown[0]!r} for {name}")
