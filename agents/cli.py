@@ -129,6 +129,7 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
             "heldout_paths": n_paths,
             "heldout_seed": seed,
             "reference_policy": evaluation.reference,
+            "bootstrap": {"samples": evaluation.bootstrap_samples, "seed": evaluation.bootstrap_seed},
             "tuned": {name: {r.parameter: r.value, "train_objective": r.objective} for name, r in tuning.items()},
             "policies": records,
             "run": None if run_dir is None else str(run_dir),
@@ -143,7 +144,8 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
     )
     reference = evaluation.reference
     if reference in evaluation.results:
-        console.print(f"objective difference from {reference}, paired over paths, 95% CI:", highlight=False)
+        console.print(f"objective difference from {reference}, paired over paths, bootstrap 95% CI "
+                      f"({evaluation.bootstrap_samples} resamples, seed {evaluation.bootstrap_seed}):", highlight=False)
         for record in records:
             if record["name"] != reference:
                 v = record["vs_reference"]
@@ -189,6 +191,7 @@ def evaluate(
         evaluation = evaluate_policies(
             problem, policies, market, n_paths, seed, kinds, cfg.data.chunk_paths,
             progress=start("hedging held-out paths", n_paths), reference=_reference(cfg, policies),
+            bootstrap_samples=cfg.report.bootstrap_samples,
         )
     _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
 
@@ -238,7 +241,7 @@ def run(
             evaluation = evaluate_policies(
                 training.problem, training.policies, training.market, n_paths, seed, training.kinds,
                 cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
-                reference=_reference(cfg, training.policies),
+                reference=_reference(cfg, training.policies), bootstrap_samples=cfg.report.bootstrap_samples,
             )
         write_metrics(evaluation, run_dir)
         _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
