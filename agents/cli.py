@@ -14,7 +14,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from rich.table import Table
 
 from agents.config import ConfigError, load_config, load_variants
-from agents.evaluate import evaluate_policies, write_metrics
+from agents.evaluate import evaluate_policies, evaluate_with_quotes, write_metrics
 from agents.scenario import build_market, build_problem, prepare_baselines
 from agents.training import load_run, train, write_run
 
@@ -173,20 +173,7 @@ def evaluate(
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
     with _progress(quiet) as start:
-        if source.is_dir():
-            try:
-                run = load_run(source)
-            except ConfigError as error:
-                fail(str(error))
-            cfg, problem, market = run.config, run.problem, run.market
-            policies, tuning = {**run.baselines, **run.agents}, {}
-            kinds = {s.name: s.kind for s in [*cfg.baselines, *cfg.agents]}
-        else:
-            cfg = _load(source)
-            problem, market = build_problem(cfg), build_market(cfg)
-            start("tuning baselines on training paths", 1)
-            policies, tuning = prepare_baselines(cfg, problem, market)
-            kinds = {spec.name: spec.kind for spec in cfg.baselines}
+        cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
         n_paths, seed = _heldout(cfg, paths, seed)
         evaluation = evaluate_policies(
             problem, policies, market, n_paths, seed, kinds, cfg.data.chunk_paths,
@@ -238,13 +225,68 @@ def run(
         training, run_dir = _train(cfg, config, runs_dir, quiet)
         n_paths, seed = _heldout(cfg, paths, None)
         with _progress(quiet) as start:
-            evaluation = evaluate_policies(
-                training.problem, training.policies, training.market, n_paths, seed, training.kinds,
-                cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
+            evaluation = evaluate_with_quotes(
+                training.problem, training.policies, training.market, n_paths, seed, kinds=training.kinds,
+                chunk_paths=cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
                 reference=_reference(cfg, training.policies), bootstrap_samples=cfg.report.bootstrap_samples,
             )
         write_metrics(evaluation, run_dir)
         _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
+
+
+@app.command()
+def quote(
+    source: Path = typer.Argument(..., help="TOML config file, or a run folder."),
+    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+) -> None:
+    """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
+    with _progress(quiet) as start:
+        cfg, problem, market, policies, _, kinds = _policies_of(source, start)
+        n_paths, seed = _heldout(cfg, paths, None)
+        evaluation = evaluate_with_quotes(
+            problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
+            progress=start("hedging held-out paths (both sides)", n_paths), reference=_reference(cfg, policies),
+            bootstrap_samples=cfg.report.bootstrap_samples,
+        )
+    rows = evaluation.to_records()
+    if as_json:
+        keys = ("mark", "quote_bid", "quote_ask", "cvar_bid", "cvar_ask", "spread_bid", "spread_ask",
+                "spread_bid_vol_points", "spread_ask_vol_points")
+        out = {"config": cfg.name, "heldout_paths": n_paths, "heldout_seed": seed,
+               "quotes": [{"name": r["name"], **{k: r[k] for k in keys}} for r in rows], "caution": CAUTION}
+        sys.stdout.write(json.dumps(out, indent=2) + "\n")
+        return
+    table = Table(title=f"{cfg.name}: premium for the book as configured (ask) and the opposite book (bid), "
+                        f"{n_paths:,} held-out paths; Black-Scholes mark {rows[0]['mark']:,.4g}",
+                  title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    for header in ("policy", "bid", "ask", "spread bid/ask (vol pts)", "CVaR-95 bid", "CVaR-95 ask"):
+        table.add_column(header, justify="left" if header == "policy" else "right", no_wrap=True)
+    for r in rows:
+        table.add_row(r["name"], _money(r["quote_bid"]), _money(r["quote_ask"]),
+                      f"{r['spread_bid_vol_points']:.2f} / {r['spread_ask_vol_points']:.2f}",
+                      _money(r["cvar_bid"]), _money(r["cvar_ask"]))
+    console.print(table)
+    console.print("bid and ask: mean-variance indifference premiums (mark -/+ the risk-adjusted cost of hedging); "
+                  "the bid mirrors each policy for the opposite book.", highlight=False)
+    console.print(CAUTION, style="dim", highlight=False)
+
+
+def _policies_of(source: Path, start):
+    """Config or run folder -> (config, problem, market, policies, tuning, kinds)."""
+    if source.is_dir():
+        try:
+            run = load_run(source)
+        except ConfigError as error:
+            fail(str(error))
+        kinds = {s.name: s.kind for s in [*run.config.baselines, *run.config.agents]}
+        return run.config, run.problem, run.market, {**run.baselines, **run.agents}, {}, kinds
+    cfg = _load(source)
+    problem, market = build_problem(cfg), build_market(cfg)
+    start("tuning baselines on training paths", 1)
+    policies, tuning = prepare_baselines(cfg, problem, market)
+    return cfg, problem, market, policies, tuning, {spec.name: spec.kind for spec in cfg.baselines}
 
 
 def main() -> None:

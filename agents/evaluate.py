@@ -4,11 +4,15 @@ from __future__ import annotations
 
 import json
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from scipy.optimize import brentq
+
+from agents.policy import Mirrored
+from hedge_env.book import Book
 
 from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
@@ -50,6 +54,7 @@ class Evaluation:
     reference: str | None = None
     bootstrap_samples: int = 2000
     bootstrap_seed: int = 0
+    quotes: dict[str, dict[str, float]] | None = None
 
     @property
     def table(self) -> pd.DataFrame:
@@ -62,6 +67,9 @@ class Evaluation:
                                       self.bootstrap_samples, self.bootstrap_seed)
             for key in ("mean", "ci_low", "ci_high"):
                 table[f"vs_reference_{key}"] = [versus[name][key] for name in table.index]
+        if self.quotes:
+            for key in next(iter(self.quotes.values())):
+                table[key] = [self.quotes[name][key] for name in table.index]
         table.index.name = "policy"
         return table.sort_values("objective", ascending=False)
 
@@ -107,3 +115,67 @@ def write_metrics(evaluation: Evaluation, folder: Path) -> None:
                "bootstrap_samples": evaluation.bootstrap_samples, "bootstrap_seed": evaluation.bootstrap_seed,
                "policies": evaluation.to_records()}
     (folder / "metrics.json").write_text(json.dumps(payload, indent=2) + "\n")
+
+
+def opposite_problem(problem: HedgingProblem) -> HedgingProblem:
+    """The same problem with every option quantity negated (the other side of the trade)."""
+    legs = tuple(replace(leg, quantity=-leg.quantity) for leg in problem.book.legs)
+    return replace(problem, book=Book(legs))
+
+
+def implied_book_volatility(problem: HedgingProblem, premium: float) -> float:
+    """Volatility at which the configured position's Black-Scholes liability equals ``premium``
+    (NaN when no volatility in [0.1%, 500%] does)."""
+    spot = np.array([problem.reference_spot])
+
+    def gap(vol: float) -> float:
+        return float(-problem.book.value(spot, 0.0, problem.marks, vol)[0]) - premium
+
+    low, high = 1e-3, 5.0
+    if gap(low) * gap(high) > 0:
+        return float("nan")
+    return float(brentq(gap, low, high, xtol=1e-10))
+
+
+def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation) -> dict[str, dict[str, float]]:
+    """Per policy, the premium the risk justifies, for the book as configured and the opposite book.
+
+    ``mark`` is the configured position's Black-Scholes liability at t0 (for a
+    short book, the premium of the options sold). Mean-variance indifference:
+    ``quote_ask = mark - objective`` (the premium at which the expected summed
+    reward plus premium minus mark is zero) and ``quote_bid = mark +
+    objective of the opposite book``; conservative: ``cvar_ask = mark + CVaR95``
+    and ``cvar_bid = mark - CVaR95`` of the opposite book. Spreads over the mark
+    are in currency and in volatility points (implied volatility of the quote
+    minus the mark volatility, x 100).
+    """
+    spot = np.array([problem.reference_spot])
+    mark = float(-problem.book.value(spot, 0.0, problem.marks)[0])
+    vol_points = 100.0 * problem.marks.volatility
+    out = {}
+    for name, result in evaluation.results.items():
+        other = opposite.results[name]
+        mine, theirs = result.summary(), other.summary()
+        row = {
+            "mark": mark,
+            "quote_ask": mark - result.objective_value,
+            "quote_bid": mark + other.objective_value,
+            "cvar_ask": mark + float(mine["cvar_95"]),
+            "cvar_bid": mark - float(theirs["cvar_95"]),
+        }
+        for side in ("ask", "bid"):
+            implied = implied_book_volatility(problem, row[f"quote_{side}"])
+            row[f"spread_{side}"] = abs(row[f"quote_{side}"] - mark)
+            row[f"spread_{side}_vol_points"] = abs(100.0 * implied - vol_points)
+        out[name] = row
+    return out
+
+
+def evaluate_with_quotes(problem, policies, source, n_paths, seed, **options) -> Evaluation:
+    """Held-out evaluation of ``policies`` and of their mirrors on the opposite book (same paths)."""
+    evaluation = evaluate_policies(problem, policies, source, n_paths, seed, **options)
+    mirrored = {name: Mirrored(policy) for name, policy in policies.items()}
+    options = {**options, "progress": None}
+    opposite = evaluate_policies(opposite_problem(problem), mirrored, source, n_paths, seed, **options)
+    evaluation.quotes = quotes(problem, evaluation, opposite)
+    return evaluation

@@ -54,3 +54,24 @@ def decode(problem: HedgingProblem, obs: np.ndarray) -> DecodedObservation:
         t_days = problem.days_from_years_to_horizon(years_left)
     spot = obs[:, 0] * problem.reference_spot
     return DecodedObservation(spot.astype(float, copy=False), t_days, obs[:, 2] * problem.notional_shares)
+
+
+@dataclass(frozen=True)
+class Mirrored:
+    """A policy for the opposite book: ``act(obs) = -policy.act(obs with the holding negated)``.
+
+    With zero drift and symmetric frictions the opposite book's problem is the
+    mirror image of the original, so this is its hedge; a learned agent is not
+    re-trained (borrow fees and drift break the symmetry a little).
+    """
+
+    policy: object
+
+    @property
+    def name(self) -> str:
+        return getattr(self.policy, "name", type(self.policy).__name__)
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        mirrored = np.array(obs, dtype=float, copy=True)
+        mirrored[:, 2] *= -1.0
+        return -np.asarray(self.policy.act(mirrored))
