@@ -108,9 +108,17 @@ def evaluate_policies(
 
 
 def write_metrics(evaluation: Evaluation, folder: Path) -> None:
-    """metrics.csv (one row per policy) and metrics.json (the same numbers) into ``folder``."""
+    """metrics.csv (one row per policy), metrics.json (the same numbers) and heldout.npz (per-path
+    P&L, reward and costs, and the mean cost per step, of every policy) into ``folder``."""
     folder = Path(folder)
     evaluation.table.to_csv(folder / "metrics.csv")
+    arrays = {"policies": np.array(list(evaluation.results))}
+    for name, result in evaluation.results.items():
+        arrays[f"pnl__{name}"] = result.pnl
+        arrays[f"reward__{name}"] = result.reward
+        arrays[f"cost__{name}"] = result.trading_cost + result.impact_cost
+        arrays[f"step_cost__{name}"] = result.step_cost
+    np.savez_compressed(folder / "heldout.npz", **arrays)
     payload = {"heldout_seed": evaluation.seed, "reference_policy": evaluation.reference,
                "bootstrap_samples": evaluation.bootstrap_samples, "bootstrap_seed": evaluation.bootstrap_seed,
                "policies": evaluation.to_records()}

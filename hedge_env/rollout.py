@@ -49,6 +49,7 @@ class HedgeResult:
     traded_shares: np.ndarray
     trades: np.ndarray
     holdings: np.ndarray | None = field(default=None, repr=False)
+    step_cost: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def n_paths(self) -> int:
@@ -76,7 +77,10 @@ class HedgeResult:
         first = parts[0]
         arrays = {name: np.concatenate([getattr(p, name) for p in parts]) for name in _TOTALS}
         holdings = None if first.holdings is None else np.concatenate([p.holdings for p in parts])
-        return HedgeResult(first.name, first.objective, first.notional_shares, holdings=holdings, **arrays)
+        weights = np.array([p.n_paths for p in parts], dtype=float)
+        step_cost = sum(w * p.step_cost for w, p in zip(weights, parts)) / weights.sum()
+        return HedgeResult(first.name, first.objective, first.notional_shares, holdings=holdings,
+                           step_cost=step_cost, **arrays)
 
 
 def as_market(source: PathGenerator | MarketPaths) -> PathGenerator:
@@ -184,6 +188,7 @@ def _rollout_chunk(problem, policy, paths: MarketPaths, observed, keep_holdings,
     totals = {key: np.zeros(n) for key in _TOTALS}
     accumulate = tuple(zip(_OUTCOME_INDEX, totals.values()))
     holdings = np.empty((n, steps)) if keep_holdings else None
+    step_cost = np.zeros(steps)
     # Column-major: each observation column is written and read contiguously.
     obs = np.empty((n, 3 + len(observed)), order="F")
     # The step already priced the book; a policy that hedges around the mark-volatility
@@ -202,5 +207,6 @@ def _rollout_chunk(problem, policy, paths: MarketPaths, observed, keep_holdings,
                 total += part
         if holdings is not None:
             holdings[:, k] = outcome.held
+        step_cost[k] = (np.sum(outcome.trading_cost) + np.sum(outcome.impact_cost)) / n
         state = outcome.state
-    return HedgeResult(name, problem.objective, notional, holdings=holdings, **totals)
+    return HedgeResult(name, problem.objective, notional, holdings=holdings, step_cost=step_cost, **totals)
