@@ -44,13 +44,14 @@ FEATURES = STATE_FEATURES + ACTION_FEATURES
 # The linear agent's default basis: terms that vary with the target (it is fitted within
 # states, so terms of the state alone would carry nothing). Enough to carry the mean-variance
 # reward of one step (quadratic in the gap, scaled by spot and gamma) and the cost-to-go of the
-# later ones (kinked in the gap and, near the horizon, in the unwound holding).
+# later ones (kinked in the gap and, near the horizon, in the unwound holding). The target
+# itself is left out: within a state it differs from the gap by a constant.
 POLYNOMIAL_BASIS = (
     "gap", "gap*moneyness", "gap*moneyness^2", "gap*gamma",
     "gap^2", "gap^2*moneyness", "gap^2*moneyness^2", "gap^2*gamma", "gap^2*gamma^2",
     "gap^3", "gap^3*moneyness", "gap^4",
     "abs_gap", "abs_gap*moneyness", "abs_gap*moneyness^2", "abs_gap*gamma",
-    "target", "target^2", "abs_target", "abs_target*moneyness",
+    "target^2", "abs_target", "abs_target*moneyness",
 )
 
 # Raw columns for a tree ensemble, which finds its own interactions.

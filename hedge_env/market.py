@@ -137,7 +137,9 @@ class GBMMarket(SimulatedMarket):
         log_spot[:, 0] = np.log(self.spot)
         np.cumsum(log_steps, axis=1, out=log_spot[:, 1:])
         log_spot[:, 1:] += log_spot[:, :1]
-        return MarketPaths(np.exp(log_spot))
+        spot = np.exp(log_spot)
+        spot[:, 0] = self.spot  # exactly the starting spot, not exp(log(spot)) one rounding away
+        return MarketPaths(spot)
 
 
 @dataclass(frozen=True)
