@@ -162,23 +162,20 @@ def _colors(names: Sequence[str]) -> dict[str, str]:
 
 
 def _figure(width: float, height: float, rows: int = 1, cols: int = 1, **subplot_options):
-    figure = Figure(figsize=(width, height), dpi=_DPI)
+    figure = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
     FigureCanvasAgg(figure)
     axes = figure.subplots(rows, cols, squeeze=False, **subplot_options)
     return figure, axes
 
 
-def _legend_below(ax, handles=None, labels=None, columns: int = 8) -> None:
-    """A legend under the axes, so it never hides a line."""
-    if handles is None:
-        handles, labels = ax.get_legend_handles_labels()
-    ax.legend(handles, labels, loc="upper center", bbox_to_anchor=(0.5, -0.2), ncols=min(columns, len(handles)))
+def _legend_below(figure: Figure, handles, labels, columns: int = 8) -> None:
+    """The figure's legend under its axes, so it never hides a line."""
+    figure.legend(handles, labels, loc="outside lower center", ncols=min(columns, len(handles)))
 
 
 def _png_data_uri(figure: Figure) -> str:
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=_DPI, bbox_inches="tight", pad_inches=0.08,
-                   metadata={"Software": None})
+    figure.savefig(buffer, format="png", dpi=_DPI, metadata={"Software": None})
     return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
@@ -219,7 +216,7 @@ def _pnl_figure(scored: _Scored, colors: dict[str, str]) -> tuple[str, str]:
     ax.set_xlabel("P&L per path over the horizon (currency)")
     ax.set_ylabel("density (per currency unit)")
     ax.set_title("Held-out P&L distribution")
-    _legend_below(ax)
+    _legend_below(figure, *ax.get_legend_handles_labels())
     paths = pnl[names[0]].size
     caption = (f"Step histograms of the P&L of {paths:,} held-out paths per policy, between the "
                f"{100 * _CLIP[0]:g}% and {100 * _CLIP[1]:g}% quantiles of the policies shown (pooled).")
@@ -315,8 +312,7 @@ def _map_figures(scored: _Scored, sample_factors: dict[str, np.ndarray]) -> list
             ax.set_title(f"day {t_days:g}, {days_left:g} days to horizon")
             ax.set_xlabel("spot (currency per share)")
         axes[0, 0].set_ylabel("holding (shares per share of notional)")
-        handles, labels = axes[0, 0].get_legend_handles_labels()
-        figure.legend(handles, labels, loc="upper center", bbox_to_anchor=(0.5, 0.0), ncols=len(handles))
+        _legend_below(figure, *axes[0, 0].get_legend_handles_labels())
         caption = (f"{name}: target holding against spot when the current holding is the Black-Scholes "
                    f"hedge (minus the book's delta at {100 * volatility:g}% volatility, per share of the "
                    f"{notional:,.0f}-share notional). The shaded region is where {name} does not trade: "
@@ -343,7 +339,7 @@ def _cost_figure(scored: _Scored, colors: dict[str, str]) -> tuple[str, str]:
     ax.set_ylabel("cumulative mean cost per path (currency)")
     ax.set_title("Trading and impact cost over the horizon")
     ax.set_xlim(0, schedule.horizon_days)
-    _legend_below(ax)
+    _legend_below(figure, *ax.get_legend_handles_labels())
     caption = ("Mean over held-out paths of the proportional, fixed and impact costs paid up to the end of "
                "each rehedge interval (the trade at its start included); the last point includes the unwind "
                "at the horizon.")
@@ -381,7 +377,7 @@ def _path_figure(scored: _Scored, paths, seed: int, colors: dict[str, str]) -> t
     spot_axis.set_ylabel("spot (currency per share)")
     lines, labels = ax.get_legend_handles_labels()
     more, more_labels = spot_axis.get_legend_handles_labels()
-    _legend_below(ax, lines + more, labels + more_labels, columns=7)
+    _legend_below(figure, lines + more, labels + more_labels)
     caption = (f"The first path of the held-out stream (seed {seed}): the holding each policy keeps over "
                "each rehedge interval (before the unwind at the horizon), and the spot (dashed, right axis).")
     return _png_data_uri(figure), caption
@@ -452,8 +448,7 @@ def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
         handles.append(matplotlib.lines.Line2D([], [], linestyle="none", marker=_MARKERS[index % len(_MARKERS)],
                                                markersize=5, color="#5c6b73"))
         legend_labels.append(label)
-    figure.legend(handles, legend_labels, loc="upper center", bbox_to_anchor=(0.5, 0.0),
-                  ncols=min(8, len(handles)))
+    _legend_below(figure, handles, legend_labels)
     caption = ("Cost-risk frontier: mean trading + impact cost per path against the spread of P&L, one "
                "marker per run of the sweep ("
                + "; ".join(f"{label}: {path.name}" for (path, _, _), label in zip(variants, labels))

@@ -56,3 +56,33 @@ def test_table_is_ranked_by_objective_and_records_keep_the_promised_fields():
     for record in records:
         assert {"name", "kind", "objective", "mean_pnl", "std_pnl", "cvar_95", "mean_cost", "turnover"} <= set(record)
         assert record["vs_reference"]["policy"] == "delta"
+
+
+def test_quotes_of_a_zero_cost_delta_hedge_tend_to_the_black_scholes_price_as_rehedging_gets_finer():
+    # Black-Scholes (1973): with continuous frictionless rehedging the hedged book is riskless, so
+    # the premium the risk justifies tends to the Black-Scholes price. With N rehedges the
+    # mean-variance quote exceeds it by about kappa/2 times the hedging-error variance, which
+    # falls like 1/N (Kamal and Derman 1999, from memory), and the bid sits below by as much.
+    from dataclasses import replace
+
+    from agents.evaluate import evaluate_with_quotes
+    from hedge_env.frictions import Frictions
+    from hedge_env.problem import Schedule
+
+    problem, market = default_problem()
+    excess = []
+    for steps in (8, 32, 128):
+        fine = replace(problem, frictions=Frictions(), schedule=Schedule(steps=steps, step_days=30 / steps))
+        evaluation = evaluate_with_quotes(fine, {"delta": DeltaHedge(fine)}, market, 20000, seed=4)
+        q = evaluation.quotes["delta"]
+        result = evaluation.results["delta"]
+        # Monte Carlo error of the quote: the standard error of the mean summed reward.
+        se = result.reward.std(ddof=1) / np.sqrt(result.n_paths)
+        excess.append((q["quote_ask"] - q["mark"], q["mark"] - q["quote_bid"], se))
+    asks = [a for a, _, _ in excess]
+    assert asks[0] > asks[1] > asks[2] > 0
+    # The spread around the mark shrinks about fourfold for every fourfold finer rehedging.
+    for (a0, b0, _), (a1, b1, _) in zip(excess, excess[1:]):
+        assert 2.5 < a0 / a1 < 6.0 and 2.5 < b0 / b1 < 6.0
+    ask, bid, se = excess[-1]
+    assert abs(ask - 0.5 * (ask + bid)) < 4 * se  # at N = 128 the two sides are symmetric within MC error
