@@ -15,6 +15,7 @@ from rich.table import Table
 
 from agents.config import ConfigError, load_config, load_variants
 from agents.evaluate import evaluate_policies, evaluate_with_quotes, write_metrics
+from agents.report import build_report, format_money
 from agents.scenario import build_market, build_problem, prepare_baselines
 from agents.training import load_run, train, write_run
 
@@ -74,8 +75,7 @@ def _progress(quiet: bool):
         yield start
 
 
-def _money(value: float) -> str:
-    return f"{value:,.0f}" if abs(value) >= 100 else f"{value:,.3g}" if abs(value) < 1 else f"{value:,.2f}"
+_money = format_money
 
 
 def _count(value: float) -> str:
@@ -221,8 +221,12 @@ def run(
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
-    for cfg in _load_variants(config):
+    run_dirs = []
+    variants = _load_variants(config)
+    sweep = len(variants) > 1
+    for cfg in variants:
         training, run_dir = _train(cfg, config, runs_dir, quiet)
+        run_dirs.append(run_dir)
         n_paths, seed = _heldout(cfg, paths, None)
         with _progress(quiet) as start:
             evaluation = evaluate_with_quotes(
@@ -231,7 +235,15 @@ def run(
                 reference=_reference(cfg, training.policies), bootstrap_samples=cfg.report.bootstrap_samples,
             )
         write_metrics(evaluation, run_dir)
+        if not sweep:
+            build_report(run_dir)
         _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
+    if sweep:
+        # A sweep: every variant's report also draws the cost-risk frontier across the variants.
+        for run_dir in run_dirs:
+            siblings = [d for d in run_dirs if d != run_dir]
+            (run_dir / "sweep.json").write_text(json.dumps({"siblings": [d.name for d in siblings]}, indent=2))
+            build_report(run_dir, siblings)
 
 
 @app.command()
@@ -271,6 +283,23 @@ def quote(
     console.print("bid and ask: mean-variance indifference premiums (mark -/+ the risk-adjusted cost of hedging); "
                   "the bid mirrors each policy for the opposite book.", highlight=False)
     console.print(CAUTION, style="dim", highlight=False)
+
+
+@app.command()
+def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run`.")) -> None:
+    """Rebuild report.html of a run folder from its saved results."""
+    if not (run_dir / "metrics.json").is_file():
+        fail(f"{run_dir}: no metrics.json (a folder written by `rehedge run` has one)")
+    sweep = run_dir / "sweep.json"
+    siblings = []
+    if sweep.is_file():
+        siblings = [run_dir.parent / name for name in json.loads(sweep.read_text())["siblings"]]
+        siblings = [d for d in siblings if (d / "metrics.json").is_file()]
+    try:
+        path = build_report(run_dir, siblings)
+    except ConfigError as error:
+        fail(str(error))
+    console.print(f"report: {path} ({path.stat().st_size / 1e6:.2f} MB)", highlight=False)
 
 
 def _policies_of(source: Path, start):

@@ -45,7 +45,7 @@ CAUTION = (
 LEARNED_KINDS = ("linear", "fitted_q", "grid_dp")
 
 # Our own palette: muted, distinguishable in print and for the common colour-vision deficiencies.
-PALETTE = ("#1f4e79", "#d1603d", "#3a8f5c", "#8c5fb0", "#e0a526", "#4fa3c7", "#8a5a44", "#c2466f",
+PALETTE = ("#1f4e79", "#d1603d", "#3a8f5c", "#8c5fb0", "#e0a526", "#4fa3c7", "#8a5a44", "#7a7a1e",
            "#5c6b73", "#2a9d8f", "#a3a13b", "#34344a")
 
 _STYLE = {
@@ -77,11 +77,13 @@ _STYLE = {
 _DPI = 100
 # A policy whose central P&L range is this many times the median range is left off the P&L and
 # frontier plots (typically no_hedge): it would flatten every other policy into one spike.
-_OUTLIER_SPREAD = 4.0
+_OUTLIER_SPREAD = 2.0
 # Central quantiles the P&L plot shows.
 _CLIP = (0.005, 0.995)
 _MAP_SPOTS = 61
-_MAP_HOLDINGS = 241
+# Gaps from the hedge searched for an agent's no-trade region, per share of notional.
+_MAP_OFFSET_RANGE = (1e-5, 0.5)
+_MAP_OFFSETS_PER_SIDE = 150
 _NO_TRADE_TOLERANCE = 1e-9
 
 
@@ -186,7 +188,10 @@ def _central_range(pnl: np.ndarray) -> tuple[float, float]:
 
 def _wide_policies(pnl: dict[str, np.ndarray]) -> list[str]:
     """Policies whose central P&L range dwarfs the median policy's (left off the shared plots)."""
-    spans = {name: np.subtract(*_central_range(values)[::-1]) for name, values in pnl.items()}
+    spans = {}
+    for name, values in pnl.items():
+        low, high = _central_range(values)
+        spans[name] = high - low
     typical = float(np.median(list(spans.values())))
     if typical <= 0:
         return []
@@ -236,7 +241,9 @@ def _ww_band(scored: _Scored):
 
 
 def _map_times(steps: int) -> list[int]:
-    return sorted({0, steps // 2, steps - 1})
+    """Early, middle and last decision times. Early is the second decision, not the first: at the
+    first every path has the starting spot and no holding, so an agent has seen no other state there."""
+    return sorted({min(1, steps - 1), steps // 2, steps - 1})
 
 
 def _observations(problem, spot: np.ndarray, k: int, holding_per_notional: np.ndarray, factors: Sequence[float]):
@@ -249,21 +256,27 @@ def _observations(problem, spot: np.ndarray, k: int, holding_per_notional: np.nd
     return rows
 
 
-def policy_map(problem, agent, spot: np.ndarray, k: int, half_range: float,
-               factors: Sequence[float] = ()) -> dict[str, np.ndarray]:
+def _holding_offsets() -> np.ndarray:
+    """Holdings around the hedge, per share of notional: geometric on each side, so the edge of a
+    narrow region and of a wide one are both found to within about 8% of its width."""
+    side = np.geomspace(_MAP_OFFSET_RANGE[0], _MAP_OFFSET_RANGE[1], _MAP_OFFSETS_PER_SIDE)
+    return np.concatenate([-side[::-1], [0.0], side])
+
+
+def policy_map(problem, agent, spot: np.ndarray, k: int, factors: Sequence[float] = ()) -> dict[str, np.ndarray]:
     """An agent's decisions at decision time ``k`` over a spot grid, per share of notional.
 
     Returns ``hedge`` (minus the book's Black-Scholes delta), ``target`` (the
     agent's target when holding the hedge) and ``no_trade_low`` /
-    ``no_trade_high``: the smallest and largest holding, on a grid of
-    ``_MAP_HOLDINGS`` holdings within ``half_range`` of the hedge, that the
-    agent keeps (``act == holding`` within 1e-9); NaN where it keeps none.
+    ``no_trade_high``: the smallest and largest holding near the hedge (see
+    :func:`_holding_offsets`) that the agent keeps (``act == holding`` within
+    1e-9); NaN where it keeps none.
     """
     notional = problem.notional_shares
     t_days = problem.schedule.time_days(k)
     hedge = -problem.book.value_and_delta(spot, t_days, problem.marks)[1] / notional
     target = np.asarray(agent.act(_observations(problem, spot, k, hedge, factors)), dtype=float)
-    offsets = np.linspace(-half_range, half_range, _MAP_HOLDINGS)
+    offsets = _holding_offsets()
     holdings = hedge[:, None] + offsets[None, :]
     rows = _observations(problem, np.repeat(spot, offsets.size), k, holdings.ravel(), factors)
     kept = np.abs(np.asarray(agent.act(rows), dtype=float) - holdings.ravel()) <= _NO_TRADE_TOLERANCE
@@ -279,45 +292,48 @@ def _map_figures(scored: _Scored, sample_factors: dict[str, np.ndarray]) -> list
     if not learned:
         return []
     notional = problem.notional_shares
-    steps = problem.schedule.steps
     volatility = problem.marks.volatility
-    spread = 2.5 * volatility * math.sqrt(problem.horizon_years)
-    spot = problem.reference_spot * np.exp(np.linspace(-spread, spread, _MAP_SPOTS))
+    path_volatility = getattr(run.market, "volatility", volatility)
     band = _ww_band(scored)
-    times = _map_times(steps)
-    # The holding grid reaches well past the band, so a wider no-trade region still shows its edges.
-    half_ranges = {}
-    for k in times:
-        widest = 0.0 if band is None else float(np.max(band[1].half_width_shares(spot, problem.schedule.time_days(k))))
-        half_ranges[k] = max(0.15, 3.0 * widest / notional)
+    times = _map_times(problem.schedule.steps)
     out = []
     for name in learned:
         agent = run.agents[name]
-        figure, axes = _figure(10.5, 3.3, 1, len(times), sharey=True)
-        for ax, k in zip(axes[0], times):
+        figure, axes = _figure(10.5, 5.6, 2, len(times), sharex="col", sharey="row")
+        for column, k in enumerate(times):
+            # Spots where the paths are at this time (+-2.5 sd of log spot): off them an agent extrapolates.
+            spread = 2.5 * path_volatility * math.sqrt(problem.schedule.time_days(k) / problem.marks.days_per_year)
+            spot = problem.reference_spot * np.exp(np.linspace(-spread, spread, _MAP_SPOTS))
             factors = [float(sample_factors[f][0, k]) for f in run.market.observed_factors]
-            decisions = policy_map(problem, agent, spot, k, half_ranges[k], factors)
+            decisions = policy_map(problem, agent, spot, k, factors)
             t_days = problem.schedule.time_days(k)
-            ax.fill_between(spot, decisions["no_trade_low"], decisions["no_trade_high"], color=PALETTE[5],
-                            alpha=0.28, linewidth=0, label=f"{name} no-trade region")
-            if band is not None:
-                half_width = band[1].half_width_shares(spot, t_days) / notional
-                for sign in (-1.0, 1.0):
-                    ax.plot(spot, decisions["hedge"] + sign * half_width, color=PALETTE[1], linewidth=1.0,
-                            linestyle="--", label=f"{band[0]} band" if sign > 0 else None)
-            ax.plot(spot, decisions["hedge"], color="#33312c", linewidth=1.0, linestyle=":",
-                    label="Black-Scholes hedge")
-            ax.plot(spot, decisions["target"], color=PALETTE[0], linewidth=1.8, label=f"{name} target")
+            hedge = decisions["hedge"]
+            half_width = None if band is None else band[1].half_width_shares(spot, t_days) / notional
+            # Top: holdings themselves; bottom: their gap from the hedge, where the bands are readable.
+            for ax, center in ((axes[0, column], hedge), (axes[1, column], 0.0 * hedge)):
+                shift = hedge - center
+                ax.fill_between(spot, decisions["no_trade_low"] - shift, decisions["no_trade_high"] - shift,
+                                color=PALETTE[5], alpha=0.3, linewidth=0, label=f"{name} no-trade region")
+                if half_width is not None:
+                    for sign in (-1.0, 1.0):
+                        ax.plot(spot, center + sign * half_width, color=PALETTE[1], linewidth=1.0, linestyle="--",
+                                label=f"{band[0]} band" if sign > 0 else None)
+                ax.plot(spot, center, color="#33312c", linewidth=1.0, linestyle=":", label="Black-Scholes hedge")
+                ax.plot(spot, decisions["target"] - shift, color=PALETTE[0], linewidth=1.8, label=f"{name} target")
             days_left = problem.schedule.horizon_days - t_days
-            ax.set_title(f"day {t_days:g}, {days_left:g} days to horizon")
-            ax.set_xlabel("spot (currency per share)")
+            axes[0, column].set_title(f"day {t_days:g}, {_days(days_left)} to horizon")
+            axes[1, column].set_xlabel("spot (currency per share)")
         axes[0, 0].set_ylabel("holding (shares per share of notional)")
+        axes[1, 0].set_ylabel("holding - hedge (per share of notional)")
         _legend_below(figure, *axes[0, 0].get_legend_handles_labels())
+        low, high = _MAP_OFFSET_RANGE
         caption = (f"{name}: target holding against spot when the current holding is the Black-Scholes "
                    f"hedge (minus the book's delta at {100 * volatility:g}% volatility, per share of the "
-                   f"{notional:,.0f}-share notional). The shaded region is where {name} does not trade: "
-                   f"the holdings it keeps (target equal to the holding within {_NO_TRADE_TOLERANCE:g}), "
-                   f"on a grid of {_MAP_HOLDINGS} holdings around the hedge.")
+                   f"{notional:,.0f}-share notional), over the spots within 2.5 standard deviations of "
+                   "log spot at each time (about 99% of paths); below, the same as gaps from the hedge. The shaded "
+                   f"region is where {name} does not trade: the holdings it keeps (target equal to the "
+                   f"holding within {_NO_TRADE_TOLERANCE:g}), searched from {low:g} to {high:g} either side "
+                   "of the hedge, geometrically spaced.")
         if band is not None:
             caption += (f" Dashed: the {band[0]} no-trade band (risk aversion "
                         f"{band[1].risk_aversion:.6g}"
@@ -435,7 +451,7 @@ def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
                     points.append((record[key], record["mean_cost"] + record["mean_impact"], index))
             if not points:
                 continue
-            x, y, which = zip(*points)
+            x, y, _ = zip(*points)
             ax.plot(x, y, color=colors[name], linewidth=1.2, label=name)
             for xi, yi, index in points:
                 ax.plot(xi, yi, linestyle="none", marker=_MARKERS[index % len(_MARKERS)], markersize=5,
@@ -495,6 +511,10 @@ def _facts_table(rows: list[tuple[str, str]]) -> str:
     return f'<table class="facts">{body}</table>'
 
 
+def _days(value: float) -> str:
+    return f"{value:g} day" if value == 1 else f"{value:g} days"
+
+
 def _percent(value: float) -> str:
     return f"{100 * value:g}%"
 
@@ -524,8 +544,8 @@ def _scenario_html(scored: _Scored) -> str:
                    f"dividend yield {_percent(market.dividend_yield)} (annual)"),
         ("pricing", f"Black-Scholes marks at volatility {_percent(run.problem.marks.volatility)}, "
                     f"{config.pricing.days_per_year:g} days per year"),
-        ("schedule", f"{schedule.steps} rehedges every {schedule.step_days:g} days "
-                     f"(horizon {config.horizon_days:g} days), settlement: {schedule.settlement}"),
+        ("schedule", f"{schedule.steps} rehedges every {_days(schedule.step_days)} "
+                     f"(horizon {_days(config.horizon_days)}), settlement: {schedule.settlement}"),
         ("frictions", f"proportional cost {frictions.cost_rate * 1e4:g} bps of traded notional; fixed cost "
                       f"{frictions.fixed_cost:g} per trade; temporary impact coefficient "
                       f"{frictions.impact_coefficient:g}, exponent {frictions.impact_exponent:g}; permanent "
@@ -564,8 +584,7 @@ def _summary_columns(records: list[dict]) -> list[tuple[str, str, object]]:
     columns += [("mean_pnl", "mean P&L (currency)", format_money), ("std_pnl", "std P&L (currency)", format_money)]
     for key in risk:
         measure, level = key.split("_")
-        columns.append((key, f"{measure.upper() if measure == 'var' else 'CVaR'} {level} (currency, loss)",
-                        format_money))
+        columns.append((key, f"{'VaR' if measure == 'var' else 'CVaR'} {level} (currency, loss)", format_money))
     columns += [("mean_cost", "mean cost (currency per path)", format_money),
                 ("mean_impact", "mean impact (currency per path)", format_money),
                 ("turnover", "turnover (shares traded per share of notional)", format_count),

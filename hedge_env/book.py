@@ -52,11 +52,12 @@ class OptionLeg:
         if not (self.strike > 0 and self.expiry_days > 0 and self.multiplier > 0):
             raise ValueError(f"strike, expiry_days and multiplier must be > 0, got {self}")
 
-    @property
+    # Cached: read on every step of every path; a frozen leg cannot change them.
+    @cached_property
     def is_call(self) -> bool:
         return self.kind == "call"
 
-    @property
+    @cached_property
     def shares(self) -> float:
         """Signed shares of underlying the position refers to (quantity x multiplier)."""
         return self.quantity * self.multiplier
@@ -167,6 +168,7 @@ class Book:
                 spot, leg.strike, self._years_left(leg, t_days, marks), vol,
                 marks.rate, marks.dividend_yield, leg.is_call,
             )
-            value += leg.shares * leg_value
-            delta += leg.shares * leg_delta
+            shares = leg.shares
+            value += shares * leg_value
+            delta += shares * leg_delta
         return value, delta

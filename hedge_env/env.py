@@ -49,14 +49,15 @@ def _spaces(problem: HedgingProblem, observed: tuple[str, ...]) -> tuple[spaces.
 
 
 def _info(problem: HedgingProblem, outcome: StepOutcome | None, state: HedgeState) -> dict[str, Any]:
-    info = {"mark": state.mark, "delta": state.delta, "spot": state.spot, "wealth": state.wealth()}
-    if outcome is not None:
-        info.update(
-            pnl=outcome.pnl, hedge_gain=outcome.hedge_gain, book_change=outcome.book_change,
-            financing=outcome.financing, trading_cost=outcome.trading_cost, impact_cost=outcome.impact_cost,
-            traded_shares=outcome.traded_shares, held=outcome.held,
-        )
-    return info
+    if outcome is None:
+        return {"mark": state.mark, "delta": state.delta, "spot": state.spot, "wealth": state.wealth()}
+    # One literal rather than a dict and an update: this runs every step of the single env.
+    return {
+        "mark": state.mark, "delta": state.delta, "spot": state.spot, "wealth": state.wealth(),
+        "pnl": outcome.pnl, "hedge_gain": outcome.hedge_gain, "book_change": outcome.book_change,
+        "financing": outcome.financing, "trading_cost": outcome.trading_cost,
+        "impact_cost": outcome.impact_cost, "traded_shares": outcome.traded_shares, "held": outcome.held,
+    }
 
 
 class HedgingEnv(gym.Env):
@@ -150,6 +151,9 @@ class HedgingEnv(gym.Env):
         self._pool: MarketPaths | None = None
         self._pool_next = 0
         self._path: MarketPaths | None = None
+        self._spot_path: list[float] = []
+        self._factor_paths: list[list[float]] = []
+        self._mark_volatility_path: list[float] | None = None
         self._state: HedgeState | None = None
 
     def _draw_path(self) -> MarketPaths:
@@ -167,26 +171,31 @@ class HedgingEnv(gym.Env):
 
     def _observation(self) -> np.ndarray:
         k = self._state.k
-        factors = [float(self._path.factors[f][0, k]) for f in self.market.observed_factors]
+        factors = [path[k] for path in self._factor_paths]
         return observe(self.problem, self._state, factors, dtype=np.float32)
 
     def _mark_volatility(self, k: int):
-        values = self._path.factors.get(MARK_VOLATILITY_FACTOR)
-        return None if values is None else float(values[0, k])
+        return None if self._mark_volatility_path is None else self._mark_volatility_path[k]
 
     def reset(self, *, seed: int | None = None, options: dict | None = None):
         super().reset(seed=seed)
         if seed is not None:
             self._pool = None
         self._path = self._draw_path()
+        # Python floats, once per episode: each step then reads list items, not numpy scalars.
         self._spot_path = self._path.spot[0].tolist()
+        self._factor_paths = [self._path.factors[f][0].tolist() for f in self.market.observed_factors]
+        mark_volatility = self._path.factors.get(MARK_VOLATILITY_FACTOR)
+        self._mark_volatility_path = None if mark_volatility is None else mark_volatility[0].tolist()
         self._state = initial_state(self.problem, self._spot_path[0], self._mark_volatility(0), scalar=True)
         return self._observation(), _info(self.problem, None, self._state)
 
     def step(self, action):
         if self._state is None or self._state.k >= self.problem.schedule.steps:
             raise RuntimeError("call reset() before step(), and again after the episode ends")
-        target = float(np.asarray(action).reshape(-1)[0]) * self.problem.notional_shares
+        # item(0) is the first element of any array, as reshape(-1)[0], without two array views.
+        first = action.item(0) if isinstance(action, np.ndarray) else np.asarray(action).reshape(-1)[0]
+        target = float(first) * self.problem.notional_shares
         k = self._state.k
         outcome = hedge_step(
             self.problem, self._state, target, self._spot_path[k + 1], self._mark_volatility(k + 1), scalar=True

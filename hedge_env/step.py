@@ -112,20 +112,18 @@ class _Plan(NamedTuple):
 _PLAN_ATTRIBUTE = "_hedge_step_plan"
 
 
-def _plan(problem: HedgingProblem) -> _Plan:
-    plan = problem.__dict__.get(_PLAN_ATTRIBUTE)
-    if plan is None:
-        book, schedule, frictions = problem.book, problem.schedule, problem.frictions
-        steps = []
-        for k in range(schedule.steps):
-            t_now, t_next = schedule.time_days(k), schedule.time_days(k + 1)
-            settling = tuple(leg for leg in book.live_legs(t_now) if not leg.live_at(t_next))
-            steps.append(_StepPlan(t_next, book.live_legs(t_next), settling, k + 1 == schedule.steps))
-        plan = _Plan(
-            tuple(steps), not math.isinf(frictions.position_limit_shares), bool(frictions.impact_coefficient),
-            bool(frictions.permanent_impact), frictions.has_financing, schedule.settlement == "physical",
-        )
-        problem.__dict__[_PLAN_ATTRIBUTE] = plan
+def _make_plan(problem: HedgingProblem) -> _Plan:
+    book, schedule, frictions = problem.book, problem.schedule, problem.frictions
+    steps = []
+    for k in range(schedule.steps):
+        t_now, t_next = schedule.time_days(k), schedule.time_days(k + 1)
+        settling = tuple(leg for leg in book.live_legs(t_now) if not leg.live_at(t_next))
+        steps.append(_StepPlan(t_next, book.live_legs(t_next), settling, k + 1 == schedule.steps))
+    plan = _Plan(
+        tuple(steps), not math.isinf(frictions.position_limit_shares), bool(frictions.impact_coefficient),
+        bool(frictions.permanent_impact), frictions.has_financing, schedule.settlement == "physical",
+    )
+    problem.__dict__[_PLAN_ATTRIBUTE] = plan
     return plan
 
 
@@ -171,7 +169,7 @@ def hedge_step(
         step the holding is 0 (unwound) and the cash holds the final wealth
         less the value of options that outlive the horizon.
     """
-    plan = _plan(problem)
+    plan = problem.__dict__.get(_PLAN_ATTRIBUTE) or _make_plan(problem)
     if not 0 <= state.k < len(plan.steps):
         raise ValueError(f"step index {state.k} outside 0..{len(plan.steps) - 1}: the episode is over")
     step = plan.steps[state.k]

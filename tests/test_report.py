@@ -1,0 +1,291 @@
+"""The HTML report of a run folder: self-contained, cautions first, numbers exactly those of metrics.json."""
+
+from __future__ import annotations
+
+import csv
+import json
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from agents.config import ConfigError, load_variants
+from agents.evaluate import evaluate_with_quotes, write_metrics
+from agents.baselines import DeltaHedge
+from agents.report import CAUTION, build_report, format_money, policy_map
+from agents.training import load_run, train, write_run
+
+# Two variants (10 and 50 bps) of a short 8-day call: seconds to train and score.
+TINY = """
+name = "report-test"
+seed = 5
+
+[market]
+model = "gbm"
+spot = 100.0
+volatility = 0.2
+
+[[book.options]]
+kind = "call"
+strike = 100.0
+expiry_days = 8
+quantity = -1
+
+[schedule]
+steps = 8
+
+[frictions]
+cost_rate = 0.001
+
+[objective]
+risk_aversion = 1.0
+
+[data]
+train_paths = 400
+heldout_paths = 800
+chunk_paths = 400
+
+[[baselines]]
+kind = "no_hedge"
+
+[[baselines]]
+kind = "delta"
+
+[[baselines]]
+kind = "whalley_wilmott"
+risk_aversion = "tune"
+
+[[agents]]
+kind = "linear"
+
+[[agents]]
+kind = "fitted_q"
+regressor = "hist_gradient_boosting"
+regressor_params = { max_iter = 5 }
+
+[[agents]]
+kind = "grid_dp"
+spot_points = 21
+holding_points = 21
+quadrature_nodes = 4
+
+[report]
+bootstrap_samples = 200
+
+[sweep]
+"frictions.cost_rate" = [0.001, 0.005]
+"""
+
+VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
+
+
+class StrictParser(HTMLParser):
+    """Collects tags, attributes, table cells and text; records every end tag that closes the wrong element."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.open: list[str] = []
+        self.mismatches: list[str] = []
+        self.tags: list[tuple[str, dict]] = []
+        self.text: list[str] = []
+        self.rows: list[dict] = []  # summary rows: {"policy": name, key: cell text}
+        self._row: dict | None = None
+        self._cell_key: str | None = None
+
+    def handle_starttag(self, tag, attrs):
+        attributes = dict(attrs)
+        self.tags.append((tag, attributes))
+        if tag not in VOID:
+            self.open.append(tag)
+        if tag == "tr" and "data-policy" in attributes:
+            self._row = {"policy": attributes["data-policy"]}
+        if tag == "td" and self._row is not None:
+            self._cell_key = attributes.get("data-key")
+            if self._cell_key:
+                self._row[self._cell_key] = ""
+                self._row[self._cell_key + "@value"] = attributes.get("data-value")
+
+    def handle_startendtag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_endtag(self, tag):
+        if tag in VOID:
+            return
+        if not self.open or self.open[-1] != tag:
+            self.mismatches.append(f"</{tag}> closes {self.open[-1] if self.open else 'nothing'}")
+        else:
+            self.open.pop()
+        if tag == "td":
+            self._cell_key = None
+        if tag == "tr" and self._row is not None:
+            self.rows.append(self._row)
+            self._row = None
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._row is not None and self._cell_key:
+            self._row[self._cell_key] += data
+
+
+def parse(path: Path) -> StrictParser:
+    parser = StrictParser()
+    parser.feed(path.read_text(encoding="utf-8"))
+    parser.close()
+    return parser
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory) -> list[Path]:
+    folder = tmp_path_factory.mktemp("report")
+    config_file = folder / "tiny.toml"
+    config_file.write_text(TINY)
+    out = []
+    for config in load_variants(config_file):
+        training = train(config)
+        run_dir = write_run(training, TINY, folder / "runs")
+        evaluation = evaluate_with_quotes(
+            training.problem, training.policies, training.market, config.data.heldout_paths,
+            config.data.heldout_seed, kinds=training.kinds, chunk_paths=config.data.chunk_paths,
+            reference="delta", bootstrap_samples=config.report.bootstrap_samples,
+        )
+        write_metrics(evaluation, run_dir)
+        out.append(run_dir)
+    return out
+
+
+@pytest.fixture(scope="module")
+def report(runs) -> Path:
+    return build_report(runs[0])
+
+
+@pytest.fixture(scope="module")
+def report_with_siblings(runs, tmp_path_factory) -> Path:
+    return build_report(runs[1], [runs[0]])
+
+
+def test_report_is_written_in_the_run_folder_as_report_html(runs, report):
+    assert report == runs[0] / "report.html"
+    assert report.is_file()
+
+
+def test_report_is_well_formed_html_with_head_body_and_a_table(report):
+    parser = parse(report)
+    assert parser.mismatches == []
+    assert parser.open == []
+    tags = {tag for tag, _ in parser.tags}
+    assert {"html", "head", "body", "table", "style"} <= tags
+    assert report.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+
+
+def test_report_is_self_contained_png_data_uris_no_urls_no_external_scripts(report):
+    parser = parse(report)
+    images = [attributes for tag, attributes in parser.tags if tag == "img"]
+    # P&L, three policy maps (linear, fitted_q, grid_dp), cost over time, one sample path.
+    assert len(images) == 6
+    assert all(image["src"].startswith("data:image/png;base64,") for image in images)
+    for _, attributes in parser.tags:
+        for name in ("src", "href"):
+            value = attributes.get(name) or ""
+            assert "http://" not in value and "https://" not in value
+    assert [a for tag, a in parser.tags if tag == "script" and "src" in a] == []
+    assert [tag for tag, a in parser.tags if tag == "link"] == []
+    assert "@import" not in report.read_text(encoding="utf-8")
+    assert report.stat().st_size <= 3 * 1024 * 1024
+
+
+def test_cautions_come_first_in_the_body(report):
+    text = re.sub(r"\s+", " ", "".join(parse(report).text))
+    assert CAUTION.startswith("Decision support, not advice. A policy is only as good as the market model")
+    assert "the rules that apply where you trade" in CAUTION
+    position = text.index(CAUTION)
+    assert position < text.index("Scenario") < text.index("Summary")
+
+
+def test_scenario_names_config_seeds_created_time_and_config_hash(runs, report):
+    manifest = json.loads((runs[0] / "manifest.json").read_text())
+    metrics = json.loads((runs[0] / "metrics.json").read_text())
+    text = re.sub(r"\s+", " ", "".join(parse(report).text))
+    assert "report-test-costrate0.001" in text
+    assert manifest["created"] in text
+    assert manifest["config_hash"] in text
+    assert f"800 paths, seed {metrics['heldout_seed']}" in text
+    assert f"200 paired resamples over paths, seed {metrics['bootstrap_seed']}" in text
+    assert "10 bps of traded notional" in text
+
+
+def test_summary_objectives_are_the_metrics_json_values_formatted_in_rank_order(runs, report):
+    metrics = json.loads((runs[0] / "metrics.json").read_text())
+    rows = parse(report).rows
+    assert [row["policy"] for row in rows] == [record["name"] for record in metrics["policies"]]
+    for row, record in zip(rows, metrics["policies"]):
+        assert row["objective"] == format_money(record["objective"])
+        # The cell carries the unrounded value too: the very float of metrics.json.
+        assert float(row["objective@value"]) == record["objective"]
+        assert float(row["vs_reference_mean@value"]) == record["vs_reference"]["mean"]
+        assert row["cvar_95"] == format_money(record["cvar_95"])
+        assert row["quote_ask"] == format_money(record["quote_ask"])
+
+
+def test_metrics_csv_objectives_equal_metrics_json(runs):
+    metrics = json.loads((runs[0] / "metrics.json").read_text())
+    with open(runs[0] / "metrics.csv", newline="") as handle:
+        from_csv = {row["policy"]: float(row["objective"]) for row in csv.DictReader(handle)}
+    assert from_csv == {record["name"]: record["objective"] for record in metrics["policies"]}
+
+
+def test_money_format_matches_the_command_line_rules():
+    assert format_money(-1234.567) == "-1,235"
+    assert format_money(12.3456) == "12.35"
+    assert format_money(-0.21046) == "-0.21"
+    assert format_money(float("nan")) == "n/a"
+
+
+def test_report_without_siblings_has_no_frontier(report):
+    assert 'id="frontier"' not in report.read_text(encoding="utf-8")
+
+
+def test_report_with_a_sibling_run_adds_the_cost_risk_frontier(runs, report_with_siblings):
+    parser = parse(report_with_siblings)
+    assert parser.mismatches == []
+    frontier = [a for tag, a in parser.tags if tag == "figure" and a.get("id") == "frontier"]
+    assert len(frontier) == 1
+    images = [a for tag, a in parser.tags if tag == "img"]
+    assert len(images) == 7
+    text = "".join(parser.text)
+    assert "cost_rate=0.001" in text and "cost_rate=0.005" in text
+    assert runs[0].name in text and runs[1].name in text
+
+
+def test_policy_map_finds_the_whalley_wilmott_band_as_its_no_trade_region(runs):
+    # The band is known in closed form (Whalley and Wilmott, 1997, as coded in agents.baselines): the
+    # search must find its edges to within the geometric grid's spacing (7.5% between holdings).
+    run = load_run(runs[0])
+    band, problem = run.baselines["whalley_wilmott"], run.problem
+    spot = np.linspace(96.0, 104.0, 9)
+    decisions = policy_map(problem, band, spot, k=4)
+    half_width = band.half_width_shares(spot, problem.schedule.time_days(4)) / problem.notional_shares
+    assert (half_width > 1e-3).all()
+    np.testing.assert_array_equal(decisions["target"], decisions["hedge"])
+    for found in (decisions["hedge"] - decisions["no_trade_low"], decisions["no_trade_high"] - decisions["hedge"]):
+        assert ((found <= half_width * (1 + 1e-12)) & (found >= half_width / 1.08)).all()
+
+
+def test_policy_map_of_delta_hedging_keeps_only_the_hedge(runs):
+    run = load_run(runs[0])
+    spot = np.linspace(96.0, 104.0, 9)
+    decisions = policy_map(run.problem, DeltaHedge(run.problem), spot, k=4)
+    np.testing.assert_allclose(decisions["no_trade_low"], decisions["hedge"], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(decisions["no_trade_high"], decisions["hedge"], rtol=0, atol=1e-9)
+
+
+def test_folder_without_metrics_is_a_one_line_config_error(runs, tmp_path):
+    unscored = tmp_path / "unscored"
+    unscored.mkdir()
+    for name in ("config.json", "manifest.json", "config.toml"):
+        (unscored / name).write_text((runs[0] / name).read_text())
+    (unscored / "agents").symlink_to(runs[0] / "agents")
+    with pytest.raises(ConfigError, match=r"no metrics\.json") as error:
+        build_report(unscored)
+    assert "\n" not in str(error.value)
