@@ -12,6 +12,7 @@ import pandas as pd
 from scipy.optimize import brentq
 
 from agents.policy import Mirrored
+from hedge_env import pricing
 from hedge_env.book import Book
 
 from hedge_env.market import MarketPaths, PathGenerator
@@ -155,11 +156,17 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
     objective of the opposite book``; conservative: ``cvar_ask = mark + CVaR95``
     and ``cvar_bid = mark - CVaR95`` of the opposite book. Spreads over the mark
     are in currency and in volatility points (implied volatility of the quote
-    minus the mark volatility, x 100).
+    minus the mark volatility, x 100; for a book with no implied volatility at
+    that premium, the spread over the book's vega per vol point).
     """
     spot = np.array([problem.reference_spot])
     mark = float(-problem.book.value(spot, 0.0, problem.marks)[0])
     vol_points = 100.0 * problem.marks.volatility
+    marks = problem.marks
+    vega_point = 0.01 * abs(sum(
+        leg.shares * float(pricing.vega(spot, leg.strike, leg.expiry_days / marks.days_per_year, marks.volatility,
+                                        marks.rate, marks.dividend_yield, leg.is_call)[0])
+        for leg in problem.book.legs))
     out = {}
     for name, result in evaluation.results.items():
         other = opposite.results[name]
@@ -172,9 +179,13 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
             "cvar_bid": mark - float(theirs["cvar_95"]),
         }
         for side in ("ask", "bid"):
+            spread = abs(row[f"quote_{side}"] - mark)
             implied = implied_book_volatility(problem, row[f"quote_{side}"])
-            row[f"spread_{side}"] = abs(row[f"quote_{side}"] - mark)
-            row[f"spread_{side}_vol_points"] = abs(100.0 * implied - vol_points)
+            # A book whose value is not monotone in volatility (a spread) has no implied volatility
+            # for every premium: then the spread is expressed per vol point of the book's vega.
+            points = abs(100.0 * implied - vol_points) if np.isfinite(implied) else spread / vega_point
+            row[f"spread_{side}"] = spread
+            row[f"spread_{side}_vol_points"] = float(points)
         out[name] = row
     return out
 
