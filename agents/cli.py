@@ -14,7 +14,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from rich.table import Table
 
 from agents.config import ConfigError, load_config, load_variants
-from agents.evaluate import evaluate_policies, evaluate_with_quotes, write_metrics
+from agents.evaluate import evaluate_with_quotes, write_metrics
 from agents.report import build_report, format_money
 from agents.scenario import build_market, build_problem, prepare_baselines
 from agents.training import load_run, train, write_run
@@ -175,8 +175,8 @@ def evaluate(
     with _progress(quiet) as start:
         cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
         n_paths, seed = _heldout(cfg, paths, seed)
-        evaluation = evaluate_policies(
-            problem, policies, market, n_paths, seed, kinds, cfg.data.chunk_paths,
+        evaluation = evaluate_with_quotes(
+            problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
             progress=start("hedging held-out paths", n_paths), reference=_reference(cfg, policies),
             bootstrap_samples=cfg.report.bootstrap_samples,
         )
