@@ -114,7 +114,7 @@ class Book:
         times); with an array, each leg counts where it is live.
         """
         vol = marks.volatility if volatility is None else volatility
-        scalar_time = np.ndim(t_days) == 0
+        scalar_time = type(t_days) is float or np.ndim(t_days) == 0  # the type test spares a numpy call
         if legs is None:
             legs = self.live_legs(float(t_days)) if scalar_time else self.legs
         value = delta = None

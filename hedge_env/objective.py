@@ -37,7 +37,11 @@ class Objective:
         """Per-step reward of a wealth change ``pnl`` (float or array)."""
         if not self.risk_aversion:
             return pnl
-        return pnl - (0.5 * self.risk_aversion) * (pnl * pnl)
+        # pnl - (kappa / 2) pnl^2 in one buffer for arrays: the same bits, as negation is exact.
+        reward = pnl * pnl
+        reward *= -0.5 * self.risk_aversion
+        reward += pnl
+        return reward
 
     @property
     def entropic_theta(self) -> float:

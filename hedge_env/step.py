@@ -154,9 +154,11 @@ def hedge_step(
     state : HedgeState
         State at t_k with ``state.k < problem.schedule.steps``.
     target : float or ndarray
-        Target holding in shares (clipped to the position limit).
+        Target holding in shares (clipped to the position limit); an array
+        has the shape of the state's arrays.
     exogenous_next : float or ndarray
-        Exogenous price X_{k+1} of the market path (before the hedger's impact).
+        Exogenous price X_{k+1} of the market path (before the hedger's
+        impact); an array has the shape of the state's arrays.
     volatility_next : float or ndarray, optional
         Mark volatility at t_{k+1}; default ``problem.marks.volatility``.
     scalar : bool
@@ -179,7 +181,9 @@ def hedge_step(
     if plan.clip:
         target = frictions.clip_target(target)
 
-    # Zero terms are skipped, not added: this runs once per path and step.
+    # Zero terms are skipped, not added: this runs once per path and step. Augmented
+    # assignments (x -= y) only ever update a temporary made in this step: on arrays they
+    # work in place, so a step touches fewer buffers; on floats they are plain arithmetic.
     spot = state.spot
     trade = target - state.holding
     size = abs(trade)
@@ -194,23 +198,27 @@ def hedge_step(
         impact_cost = impact_cost + fill_cost if plan.temporary_impact else fill_cost
         impact = impact * factor
         spot_next = exogenous_next * impact
-    if plan.temporary_impact or plan.permanent_impact:
+    has_impact = plan.temporary_impact or plan.permanent_impact
+    if has_impact:
         paid = trading_cost + impact_cost
-    cash = state.cash - trade * spot - paid
+    cash = state.cash - trade * spot
+    cash -= paid
     financing = frictions.financing(cash, target, spot, problem.dt_years) if plan.financing else 0.0
 
     value_and_delta = book.value_and_delta_scalar if scalar else book.value_and_delta
     mark_next, delta_next = value_and_delta(spot_next, step.t_next, marks, volatility_next, legs=step.live_next)
-    hedge_gain = target * (spot_next - spot)
+    hedge_gain = spot_next - spot
+    hedge_gain *= target
     book_change = mark_next - state.mark
     if step.settling:
         settled = value_and_delta(spot_next, step.t_next, marks, volatility_next, legs=step.settling)[0]
-        book_change = book_change + settled
-        cash = cash + settled
-    pnl = hedge_gain + book_change - paid
+        book_change += settled
+        cash += settled
+    pnl = hedge_gain + book_change
+    pnl -= paid
     if plan.financing:
-        pnl = pnl + financing
-        cash = cash + financing
+        pnl += financing
+        cash += financing
     holding = target
     traded_shares = size
     # A float count for arrays: adding int64 counts to float totals costs more than the step's arithmetic.
@@ -224,17 +232,21 @@ def hedge_step(
             residual = target + (float(delivered) if scalar else delivered)
         unwind = abs(residual)
         unwind_cost = frictions.trading_cost(unwind, spot_next)
-        unwind_impact = frictions.impact_cost(unwind, spot_next)
-        if plan.permanent_impact:
-            factor = frictions.impact_factor(-residual, math.exp if scalar else np.exp)
-            unwind_impact = unwind_impact + frictions.permanent_impact_cost(-residual, spot_next, factor)
-        pnl = pnl - unwind_cost - unwind_impact
-        trading_cost = trading_cost + unwind_cost
-        impact_cost = impact_cost + unwind_impact
-        cash = cash + target * spot_next - unwind_cost - unwind_impact
+        pnl -= unwind_cost
+        cash += target * spot_next
+        cash -= unwind_cost
+        trading_cost += unwind_cost
+        if has_impact:
+            unwind_impact = frictions.impact_cost(unwind, spot_next)
+            if plan.permanent_impact:
+                factor = frictions.impact_factor(-residual, math.exp if scalar else np.exp)
+                unwind_impact = unwind_impact + frictions.permanent_impact_cost(-residual, spot_next, factor)
+            pnl -= unwind_impact
+            cash -= unwind_impact
+            impact_cost += unwind_impact
         holding = 0.0 * target
-        traded_shares = traded_shares + unwind
-        trades = trades + (unwind > 0) * 1
+        traded_shares += unwind
+        trades += unwind > 0
 
     next_state = HedgeState(state.k + 1, spot_next, impact, holding, cash, mark_next, delta_next)
     return StepOutcome(
