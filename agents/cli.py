@@ -172,15 +172,21 @@ def evaluate(
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
+    cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet)
+    _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
+
+
+def _score(source: Path, paths: int | None, seed: int | None, quiet: bool):
+    """Policies of a config or run folder on its held-out paths, with CIs and quotes."""
     with _progress(quiet) as start:
         cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
         n_paths, seed = _heldout(cfg, paths, seed)
         evaluation = evaluate_with_quotes(
             problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
-            progress=start("hedging held-out paths", n_paths), reference=_reference(cfg, policies),
-            bootstrap_samples=cfg.report.bootstrap_samples,
+            progress=start("hedging held-out paths (both sides of the book)", n_paths),
+            reference=_reference(cfg, policies), bootstrap_samples=cfg.report.bootstrap_samples,
         )
-    _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
+    return cfg, evaluation, tuning, n_paths, seed
 
 
 def _reference(cfg, policies) -> str | None:
@@ -254,14 +260,7 @@ def quote(
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
-    with _progress(quiet) as start:
-        cfg, problem, market, policies, _, kinds = _policies_of(source, start)
-        n_paths, seed = _heldout(cfg, paths, None)
-        evaluation = evaluate_with_quotes(
-            problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
-            progress=start("hedging held-out paths (both sides)", n_paths), reference=_reference(cfg, policies),
-            bootstrap_samples=cfg.report.bootstrap_samples,
-        )
+    cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet)
     rows = evaluation.to_records()
     if as_json:
         keys = ("mark", "quote_bid", "quote_ask", "cvar_bid", "cvar_ask", "spread_bid", "spread_ask",
