@@ -128,7 +128,7 @@ class HedgingEnv(gym.Env):
     >>> obs, info = env.reset(seed=7)
     >>> done = False
     >>> while not done:
-    ...     obs, reward, done, truncated, info = env.step(-info["delta"] * [1.0])
+    ...     obs, reward, done, truncated, info = env.step([-info["delta"]])  # a one-share book: delta per share
     """
 
     metadata = {"render_modes": []}

@@ -93,7 +93,7 @@ def rollout(
     source: PathGenerator | MarketPaths,
     n_paths: int | None = None,
     seed: int = 0,
-    chunk_paths: int = 8192,
+    chunk_paths: int = 16384,
     keep_holdings: bool = False,
     name: str | None = None,
     progress: Callable[[int], None] | None = None,
@@ -109,8 +109,10 @@ def rollout(
     n_paths : int, optional
         Default: all given paths; required for a market model.
     chunk_paths : int
-        Paths simulated and hedged at a time (memory bound; 8192 keeps a
-        step's arrays in a core's cache).
+        Paths simulated and hedged at a time (memory bound). 16384 measured
+        fastest: smaller chunks pay the per-step Python and numpy call
+        overhead more often, larger ones spill a step's arrays out of the
+        core's 1 MB L2 cache.
     keep_holdings : bool
         Also return the holding after every decision, shares.
     name : str, optional
@@ -130,7 +132,7 @@ def rollout_many(
     source: PathGenerator | MarketPaths,
     n_paths: int | None = None,
     seed: int = 0,
-    chunk_paths: int = 8192,
+    chunk_paths: int = 16384,
     keep_holdings: bool = False,
     progress: Callable[[int], None] | None = None,
 ) -> dict[str, HedgeResult]:
@@ -138,6 +140,8 @@ def rollout_many(
 
     Each chunk of paths is simulated once and hedged by every policy, so the
     comparison is paired path by path and paths are never stored whole.
+    Within a chunk, rows reach a policy sorted by spot level (it makes pricing
+    faster); a policy maps each row on its own, so no result depends on it.
     """
     market = as_market(source)
     if n_paths is None:
@@ -146,8 +150,11 @@ def rollout_many(
         n_paths = source.n_paths
     parts: dict[str, list[HedgeResult]] = {name: [] for name in policies}
     for chunk in market.iter_chunks(n_paths, problem.schedule.steps, problem.dt_years, seed, chunk_paths):
+        order = _hedging_order(chunk.spot)
         for name, policy in policies.items():
-            parts[name].append(_rollout_chunk(problem, policy, chunk, market.observed_factors, keep_holdings, name))
+            parts[name].append(
+                _rollout_chunk(problem, policy, chunk, order, market.observed_factors, keep_holdings, name)
+            )
         if progress is not None:
             progress(chunk.n_paths)
     return {name: HedgeResult.concat(chunks) for name, chunks in parts.items()}
@@ -157,16 +164,37 @@ def _policy_name(policy) -> str:
     return getattr(policy, "name", type(policy).__name__)
 
 
-def _time_major(values: np.ndarray) -> np.ndarray:
-    """(n_paths, n_times) -> a C-contiguous (n_times, n_paths) copy, transposed in row blocks.
+def _hedging_order(spot: np.ndarray) -> np.ndarray:
+    """The order in which a chunk's paths are hedged: by their spot three quarters of the way.
 
-    A block of 512 paths x a month of daily times stays in cache while it is
-    transposed; one strided pass over a whole chunk takes twice as long.
+    Neighbouring paths then have close Black-Scholes d's at every step, so the
+    branches inside scipy's ndtr (on the sign and size of d) are predicted:
+    mispredicted branches per path-step fell from 2.0 to 1.25 and the delta
+    rollout got ~20% faster (late spots sort the steps where d spreads widest
+    best). Every number of a path is the same in any order: all arithmetic is
+    per path and policies map rows to rows. Results go back in path order.
+    """
+    return np.argsort(spot[:, (3 * spot.shape[1]) // 4])
+
+
+def _time_major(values: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """(n_paths, n_times) rows taken in ``order`` -> a C-contiguous (n_times, n_paths) copy.
+
+    Transposed 512 rows at a time: a block of 512 paths x a month of daily
+    times stays in cache; one strided pass over a whole chunk measured 15%
+    (data in memory) to 2x (data in cache) slower.
     """
     n = values.shape[0]
     out = np.empty(values.shape[::-1])
     for start in range(0, n, 512):
-        out[:, start:start + 512] = values[start:start + 512].T
+        out[:, start:start + 512] = values[order[start:start + 512]].T
+    return out
+
+
+def _in_path_order(values: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """Rows hedged in ``order`` back in path order."""
+    out = np.empty_like(values)
+    out[order] = values
     return out
 
 
@@ -174,15 +202,15 @@ def _time_major(values: np.ndarray) -> np.ndarray:
 _OUTCOME_INDEX = tuple(StepOutcome._fields.index(key) for key in _TOTALS)
 
 
-def _rollout_chunk(problem, policy, paths: MarketPaths, observed, keep_holdings, name) -> HedgeResult:
+def _rollout_chunk(problem, policy, paths: MarketPaths, order, observed, keep_holdings, name) -> HedgeResult:
     n, steps = paths.n_paths, problem.schedule.steps
     if paths.n_steps != steps:
         raise ValueError(f"paths have {paths.n_steps} steps, the schedule has {steps}")
-    # Time-major copies: the loop reads one column per step, contiguously.
-    spot = _time_major(paths.spot)
-    factors = {name: _time_major(paths.factors[name]) for name in observed}
+    # Time-major copies in hedging order: the loop reads one column per step, contiguously.
+    spot = _time_major(paths.spot, order)
+    factors = {name: _time_major(paths.factors[name], order) for name in observed}
     mark_vol = paths.factors.get(MARK_VOLATILITY_FACTOR)
-    mark_vol = None if mark_vol is None else _time_major(mark_vol)
+    mark_vol = None if mark_vol is None else _time_major(mark_vol, order)
     notional = problem.notional_shares
     state = initial_state(problem, spot[0], None if mark_vol is None else mark_vol[0])
     totals = {key: np.zeros(n) for key in _TOTALS}
@@ -207,6 +235,11 @@ def _rollout_chunk(problem, policy, paths: MarketPaths, observed, keep_holdings,
                 total += part
         if holdings is not None:
             holdings[:, k] = outcome.held
-        step_cost[k] = (np.sum(outcome.trading_cost) + np.sum(outcome.impact_cost)) / n
+        paid = outcome.trading_cost.sum()
+        if type(outcome.impact_cost) is not float:  # again, a float is the exact 0.0 of no impact
+            paid += outcome.impact_cost.sum()
+        step_cost[k] = paid / n
         state = outcome.state
+    totals = {key: _in_path_order(total, order) for key, total in totals.items()}
+    holdings = None if holdings is None else _in_path_order(holdings, order)
     return HedgeResult(name, problem.objective, notional, holdings=holdings, step_cost=step_cost, **totals)

@@ -99,6 +99,8 @@ class _StepPlan(NamedTuple):
 
 
 class _Plan(NamedTuple):
+    """What hedge_step reads on every call: the schedule's steps and which frictions are on."""
+
     steps: tuple[_StepPlan, ...]
     clip: bool  # a finite position limit
     temporary_impact: bool
