@@ -19,7 +19,7 @@ target is minus the book's delta (shares), expressed per share of notional.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -145,8 +145,3 @@ BASELINES = {
     "whalley_wilmott": WhalleyWilmottBand,
     "fixed_band": FixedBand,
 }
-
-
-def with_parameter(policy, **changes):
-    """A copy of a baseline with some parameters changed (used by tuning)."""
-    return replace(policy, **changes)
