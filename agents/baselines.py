@@ -58,8 +58,11 @@ class DeltaHedge:
         """
         decoded = decode(self.problem, obs)
         marks = self.problem.marks
-        if book_delta is None or self.volatility not in (None, marks.volatility):
-            book_delta = self.problem.book.value_and_delta(decoded.spot, decoded.t_days, marks, self.volatility)[1]
+        # The step's delta is at the mark volatility: per row when the market supplies it.
+        own = self.volatility is not None and (decoded.volatility is not None or self.volatility != marks.volatility)
+        if book_delta is None or own:
+            volatility = self.volatility if self.volatility is not None else decoded.volatility
+            book_delta = self.problem.book.value_and_delta(decoded.spot, decoded.t_days, marks, volatility)[1]
         return -book_delta, decoded
 
     def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
@@ -72,6 +75,8 @@ def leland_volatility(volatility: float, round_trip_cost: float, dt_years: float
     """Leland (1985) adjusted volatility; floored at a tiny positive number when the adjustment overwhelms it."""
     leland_number = math.sqrt(2.0 / math.pi) * round_trip_cost / (volatility * math.sqrt(dt_years))
     variance = volatility**2 * (1.0 + leland_number if written else 1.0 - leland_number)
+    if isinstance(variance, np.ndarray):  # a mark volatility per row
+        return np.sqrt(np.maximum(variance, 1e-12))
     return math.sqrt(max(variance, 1e-12))
 
 
@@ -86,9 +91,11 @@ class LelandDelta:
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         problem = self.problem
-        vol = problem.marks.volatility if self.volatility is None else self.volatility
-        cost = problem.frictions.cost_rate if self.cost_rate is None else self.cost_rate
         decoded = decode(problem, obs)
+        vol = self.volatility
+        if vol is None:
+            vol = problem.marks.volatility if decoded.volatility is None else decoded.volatility
+        cost = problem.frictions.cost_rate if self.cost_rate is None else self.cost_rate
         book_delta = np.zeros(len(obs))
         for written in (True, False):
             legs = tuple(leg for leg in problem.book.legs if (leg.quantity < 0) == written)
@@ -106,9 +113,10 @@ class WhalleyWilmottBand:
     risk_aversion: float = 1.0
     name: str = "whalley_wilmott"
 
-    def half_width_shares(self, spot, t_days) -> np.ndarray:
+    def half_width_shares(self, spot, t_days, volatility=None) -> np.ndarray:
+        """Band half-width in shares; gamma at ``volatility`` (per row, or None: the mark volatility)."""
         problem = self.problem
-        gamma = problem.book.gamma(spot, t_days, problem.marks)
+        gamma = problem.book.gamma(spot, t_days, problem.marks, volatility)
         years_left = (problem.schedule.horizon_days - np.asarray(t_days)) / problem.marks.days_per_year
         discount = np.exp(-problem.marks.rate * years_left)
         cost = problem.frictions.cost_rate
@@ -116,7 +124,7 @@ class WhalleyWilmottBand:
 
     def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
         center, decoded = DeltaHedge(self.problem).hedge_shares(obs, book_delta)
-        half_width = self.half_width_shares(decoded.spot, decoded.t_days)
+        half_width = self.half_width_shares(decoded.spot, decoded.t_days, decoded.volatility)
         return _to_band(decoded.holding_shares, center, half_width) / self.problem.notional_shares
 
     act_with_delta = act

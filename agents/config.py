@@ -19,6 +19,7 @@ that starts with the TOML key path, e.g.
 from __future__ import annotations
 
 import copy
+import datetime
 import difflib
 import hashlib
 import itertools
@@ -38,6 +39,7 @@ from pydantic import (
     ConfigDict,
     Field,
     ValidationError,
+    ValidationInfo,
     field_validator,
     model_validator,
 )
@@ -50,6 +52,7 @@ __all__ = [
     "config_hash",
     "Config",
     "GBMMarket",
+    "HistoricalMarket",
     "MarketSpec",
     "OptionSpec",
     "BookSpec",
@@ -209,9 +212,78 @@ class GBMMarket(_Spec):
     dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
 
 
-# Later models (heston, merton, historical) become members of a discriminated union:
-#   MarketSpec = Annotated[Union[GBMMarket, HestonMarket, ...], Field(discriminator="model")]
-MarketSpec = GBMMarket
+def _to_date(value: Any) -> Any:
+    """A TOML date, or an ISO date string (as config.json writes it), as a datetime.date."""
+    if isinstance(value, datetime.datetime):
+        return value.date()
+    if isinstance(value, str):
+        try:
+            return datetime.date.fromisoformat(value)
+        except ValueError:
+            raise _rule(f"must be a date like 2024-01-31, got {_show(value)}") from None
+    return value
+
+
+class HistoricalMarket(_Spec):
+    """Daily closes from a CSV (one row per trading day): training paths from the early part,
+    held-out paths from the rolling windows of the later part (see hedge_env.history)."""
+
+    model: Literal["historical"] = Field(description="Price model of the underlying: paths from a price history.")
+    csv: str = Field(description="CSV file of dates and closes; a relative path is relative to the config file.")
+    date_column: str = Field("date", description="Column of the trading dates.")
+    close_column: str = Field("close", description="Column of the closes, currency per share.")
+    date_format: str | None = Field(None, description="strftime format of the dates; default ISO 8601 (2024-01-31).")
+    implied_volatility_column: str | None = Field(
+        None, description="Column of the implied volatility per date, if any.")
+    implied_volatility_unit: Literal["decimal", "percent"] = Field(
+        "decimal", description="Unit of that column: 'decimal' (0.2 = 20%) or 'percent' (20).")
+    marks: Literal["implied", "realised", "configured"] | None = Field(
+        None, description="Mark and premium volatility: 'implied' (the column, per path and date), 'realised' "
+                          "(of the training period) or 'configured' (pricing.volatility); default 'implied' "
+                          "with an implied-volatility column, else 'realised'.")
+    spot: float = Field(gt=0, description="Spot every path is rescaled to start at, currency per share.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+    split_date: Annotated[datetime.date | None, BeforeValidator(_to_date)] = Field(
+        None, description="First date of the held-out part (training: the dates before it).")
+    split_fraction: Annotated[float | None, AfterValidator(lambda v: v if v is None else _check_open_unit(v))] = Field(
+        None, description="Share of the rows in the training part, if no split_date; default 0.7.")
+    gap_days: int | None = Field(None, ge=0, description="Trading days (rows) skipped between the training and "
+                                                         "the held-out part; default one horizon.")
+    training: Literal["windows", "bootstrap"] = Field(
+        "windows", description="Training paths: rolling windows of the training part, or its stationary "
+                               "block bootstrap (data.train_paths paths).")
+    stride_days: int = Field(1, ge=1, description="Trading days between the starts of training windows.")
+    heldout_stride_days: int | None = Field(
+        None, ge=1, description="Trading days between the starts of held-out windows; default one horizon "
+                                "(windows that do not overlap, so confidence intervals over paths hold).")
+    bootstrap_mean_block_days: float = Field(
+        10.0, ge=1, description="Mean block length of the stationary bootstrap, trading days.")
+
+    @field_validator("csv")
+    @classmethod
+    def _relative_to_config(cls, value: str, info: ValidationInfo) -> str:
+        base = (info.context or {}).get("base_dir")
+        if not value:
+            raise _rule("must name a CSV file")
+        if base is not None and not Path(value).is_absolute():
+            return str((Path(base) / value).resolve())
+        return value
+
+    @model_validator(mode="after")
+    def _resolve_history(self) -> HistoricalMarket:
+        if self.split_date is not None and self.split_fraction is not None:
+            raise _rule("give split_date or split_fraction, not both", "split_fraction")
+        if self.split_date is None and self.split_fraction is None:
+            self.split_fraction = 0.7
+        if self.marks is None:
+            self.marks = "implied" if self.implied_volatility_column else "realised"
+        if self.marks == "implied" and not self.implied_volatility_column:
+            raise _rule("'implied' needs market.implied_volatility_column", "marks")
+        return self
+
+
+MarketSpec = Annotated[Union[GBMMarket, HistoricalMarket], Field(discriminator="model")]
 
 
 class OptionSpec(_Spec):
@@ -551,8 +623,10 @@ class Config(_Spec):
     @model_validator(mode="after")
     def _resolve(self) -> Config:
         # Cross-section defaults, so the validated config is fully resolved.
+        if isinstance(self.market, HistoricalMarket):
+            self._resolve_historical()
         if self.pricing.volatility is None:
-            self.pricing.volatility = self.market.volatility
+            self.pricing.volatility = getattr(self.market, "volatility", None)
         for baseline in self.baselines:
             if isinstance(baseline, (DeltaBaseline, LelandBaseline)) and baseline.volatility is None:
                 baseline.volatility = self.pricing.volatility
@@ -593,6 +667,24 @@ class Config(_Spec):
             raise _rule(f"unknown policy {self.export.policy!r}; policies: {known}", "export", "policy")
         return self
 
+    def _resolve_historical(self) -> None:
+        """Rules and defaults of a historical market that involve other sections."""
+        market, step_days = self.market, self.schedule.step_days
+        if not float(step_days).is_integer():
+            raise _rule("must be a whole number of trading days (CSV rows) with market.model = 'historical', "
+                        f"got {_show(_num(step_days))}", "schedule", "step_days")
+        self.schedule.step_days = float(step_days)
+        horizon_rows = self.schedule.steps * int(step_days)
+        if market.marks == "configured" and self.pricing.volatility is None:
+            raise _rule("required with market.marks = 'configured'", "pricing", "volatility")
+        if market.marks != "configured" and self.pricing.volatility is not None:
+            raise _rule(f"set only with market.marks = 'configured' (marks are {market.marks!r})",
+                        "pricing", "volatility")
+        if market.gap_days is None:
+            market.gap_days = horizon_rows
+        if market.heldout_stride_days is None:
+            market.heldout_stride_days = horizon_rows
+
 
 # ---------------------------------------------------------------------------
 # Loading, error formatting, hashing
@@ -621,7 +713,7 @@ def load_config(path: str | Path) -> Config:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: {_toml_error(exc, text)}", source=source) from None
-    return parse_config(data, source=source)
+    return parse_config(data, source=source, base_dir=path.parent)
 
 
 def load_variants(path: str | Path) -> list[Config]:
@@ -647,20 +739,23 @@ def load_variants(path: str | Path) -> list[Config]:
             label.append(f"{leaf}{value:g}" if isinstance(value, float) else f"{leaf}{value}")
         variant["name"] = "-".join([data["name"], *label]).replace("_", "")
         try:
-            variants.append(parse_config(variant, source=str(path)))
+            variants.append(parse_config(variant, source=str(path), base_dir=Path(path).parent))
         except ConfigError as error:
             raise ConfigError(f"sweep {dict(zip(sweep, values))}: {error}", source=str(path), key="sweep") from None
     return variants
 
 
-def parse_config(data: dict, source: str = "<config>") -> Config:
-    """Validate and resolve an already-parsed config mapping; raises ConfigError."""
+def parse_config(data: dict, source: str = "<config>", base_dir: str | Path | None = None) -> Config:
+    """Validate and resolve an already-parsed config mapping; raises ConfigError.
+
+    ``base_dir`` is the folder relative file names in the config (``market.csv``) are read from;
+    default the working directory."""
     if not isinstance(data, dict):
         raise ConfigError(
             f"config must be a table of settings, got {_show(data)}", source=source
         )
     try:
-        return Config.model_validate(data)
+        return Config.model_validate(data, context={"base_dir": base_dir})
     except ValidationError as exc:
         errors = exc.errors()
         problems = tuple(_format_error(err) for err in errors)

@@ -22,7 +22,7 @@ import numpy as np
 from agents.features import hedge_move
 from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
-from hedge_env.rollout import MARK_VOLATILITY_FACTOR, as_market
+from hedge_env.rollout import MARK_VOLATILITY_FACTOR, as_market, check_observed_marks
 from hedge_env.step import HedgeState, hedge_step, initial_state, observe
 
 
@@ -123,6 +123,7 @@ def _first_rows(state: HedgeState, n: int) -> HedgeState:
 def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploration, seed: int,
             observed: tuple[str, ...] = ()) -> Transitions:
     """Transitions of ``paths`` under the behaviour policy (random draws from ``seed``)."""
+    check_observed_marks(problem, observed)
     rng = np.random.default_rng(seed)
     move = hedge_move(problem)
     n, steps, m = paths.n_paths, problem.schedule.steps, exploration.actions_per_state

@@ -83,8 +83,9 @@ def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple
     decoded = decode(problem, obs)
     notional = problem.notional_shares
     book, marks = problem.book, problem.marks
-    _, book_delta = book.value_and_delta(decoded.spot, decoded.t_days, marks)
-    gamma = book.gamma(decoded.spot, decoded.t_days, marks)
+    volatility = decoded.volatility  # per row when the market supplies the mark volatility, else None
+    _, book_delta = book.value_and_delta(decoded.spot, decoded.t_days, marks, volatility)
+    gamma = book.gamma(decoded.spot, decoded.t_days, marks, volatility)
     values = {
         "moneyness": np.log(obs[:, 0]),
         "years_left": np.asarray(obs[:, 1], dtype=float),
@@ -92,7 +93,7 @@ def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple
         "hedge": -book_delta / notional,
         "gamma": gamma * decoded.spot / notional,
     }
-    scale = marks.volatility * np.sqrt(values["years_left"] + problem.dt_years)
+    scale = (marks.volatility if volatility is None else volatility) * np.sqrt(values["years_left"] + problem.dt_years)
     values.update(zip(HATS, _tents(values["moneyness"] / scale, HAT_KNOTS)))
     for j, name in enumerate(factor_names):
         values[name] = np.asarray(obs[:, 3 + j], dtype=float)

@@ -37,15 +37,19 @@ class DecodedObservation:
 
     ``t_days`` is a float when every row is at the same time (the usual case
     in a rollout, and the fast path of pricing), else an array.
+    ``volatility`` is the mark volatility per row when the market supplies it
+    (``problem.mark_volatility_observed``), else None (``problem.marks.volatility``).
     """
 
     spot: np.ndarray
     t_days: float | np.ndarray
     holding_shares: np.ndarray
+    volatility: np.ndarray | None = None
 
 
 def decode(problem: HedgingProblem, obs: np.ndarray) -> DecodedObservation:
-    """Spot (currency), time elapsed (days) and holding (shares) of observation rows."""
+    """Spot (currency), time elapsed (days), holding (shares) and, when observed, the mark
+    volatility (annual decimal) of observation rows."""
     obs = np.asarray(obs)
     years_left = obs[:, 1]
     if years_left.size and (years_left == years_left[0]).all():
@@ -53,7 +57,9 @@ def decode(problem: HedgingProblem, obs: np.ndarray) -> DecodedObservation:
     else:
         t_days = problem.days_from_years_to_horizon(years_left)
     spot = obs[:, 0] * problem.reference_spot
-    return DecodedObservation(spot.astype(float, copy=False), t_days, obs[:, 2] * problem.notional_shares)
+    volatility = np.asarray(obs[:, 3], dtype=float) if problem.mark_volatility_observed else None
+    return DecodedObservation(spot.astype(float, copy=False), t_days, obs[:, 2] * problem.notional_shares,
+                              volatility)
 
 
 @dataclass(frozen=True)

@@ -274,7 +274,9 @@ def policy_map(problem, agent, spot: np.ndarray, k: int, factors: Sequence[float
     """
     notional = problem.notional_shares
     t_days = problem.schedule.time_days(k)
-    hedge = -problem.book.value_and_delta(spot, t_days, problem.marks)[1] / notional
+    # A mark volatility the market supplies is the first observed factor (HedgingProblem).
+    volatility = float(factors[0]) if problem.mark_volatility_observed and len(factors) else None
+    hedge = -problem.book.value_and_delta(spot, t_days, problem.marks, volatility)[1] / notional
     target = np.asarray(agent.act(_observations(problem, spot, k, hedge, factors)), dtype=float)
     offsets = _holding_offsets()
     holdings = hedge[:, None] + offsets[None, :]
@@ -308,7 +310,8 @@ def _map_figures(scored: _Scored, sample_factors: dict[str, np.ndarray]) -> list
             decisions = policy_map(problem, agent, spot, k, factors)
             t_days = problem.schedule.time_days(k)
             hedge = decisions["hedge"]
-            half_width = None if band is None else band[1].half_width_shares(spot, t_days) / notional
+            volatility = factors[0] if problem.mark_volatility_observed and factors else None
+            half_width = None if band is None else band[1].half_width_shares(spot, t_days, volatility) / notional
             # Top: holdings themselves; bottom: their gap from the hedge, where the bands are readable.
             for ax, center in ((axes[0, column], hedge), (axes[1, column], 0.0 * hedge)):
                 shift = hedge - center

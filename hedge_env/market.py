@@ -68,6 +68,12 @@ class PathGenerator(ABC):
 
     factor_names: tuple[str, ...] = ()
     observed_factors: tuple[str, ...] = ()
+    # Paths the source can give (None: as many as asked, e.g. a simulated model).
+    max_paths: int | None = None
+
+    def describe(self) -> dict:
+        """Facts about the source for run manifests and reports (dates of a history); {} for a model."""
+        return {}
 
     @abstractmethod
     def generate(self, n_paths: int, n_steps: int, dt_years: float, seed: int, start: int = 0) -> MarketPaths:
@@ -156,6 +162,10 @@ class GivenPaths(PathGenerator):
     @property
     def factor_names(self) -> tuple[str, ...]:  # type: ignore[override]
         return tuple(self.paths.factors)
+
+    @property
+    def max_paths(self) -> int:  # type: ignore[override]
+        return self.paths.n_paths
 
     def generate(self, n_paths: int, n_steps: int, dt_years: float, seed: int, start: int = 0) -> MarketPaths:
         if n_steps != self.paths.n_steps:

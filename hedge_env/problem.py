@@ -58,6 +58,12 @@ class HedgingProblem:
         Rehedge interval, number of rehedges, settlement at the horizon.
     reference_spot : float
         Spot that observations are scaled by (the starting spot).
+    mark_volatility_observed : bool
+        The market supplies the mark volatility per path and time (factor
+        ``mark_volatility``, e.g. an implied volatility) and lists it first
+        among its observed factors, so observation column 3 carries it and
+        policies price their Greeks at it; ``marks.volatility`` is then only
+        a typical level (scales and quotes).
     """
 
     book: Book
@@ -66,6 +72,7 @@ class HedgingProblem:
     objective: Objective = field(default_factory=Objective)
     schedule: Schedule = field(default_factory=Schedule)
     reference_spot: float = 100.0
+    mark_volatility_observed: bool = False
 
     @cached_property
     def dt_years(self) -> float:

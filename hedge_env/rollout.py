@@ -144,6 +144,7 @@ def rollout_many(
     faster); a policy maps each row on its own, so no result depends on it.
     """
     market = as_market(source)
+    check_observed_marks(problem, market.observed_factors)
     if n_paths is None:
         if not isinstance(source, MarketPaths):
             raise ValueError("n_paths is required when paths are simulated")
@@ -158,6 +159,14 @@ def rollout_many(
         if progress is not None:
             progress(chunk.n_paths)
     return {name: HedgeResult.concat(chunks) for name, chunks in parts.items()}
+
+
+def check_observed_marks(problem: HedgingProblem, observed: tuple[str, ...]) -> None:
+    """A problem that observes its mark volatility needs a market that lists it first among the
+    observed factors (observation column 3); raises ValueError otherwise."""
+    if problem.mark_volatility_observed and observed[:1] != (MARK_VOLATILITY_FACTOR,):
+        raise ValueError(f"the problem observes its mark volatility, but the market's observed factors are "
+                         f"{observed}; {MARK_VOLATILITY_FACTOR!r} must come first")
 
 
 def _policy_name(policy) -> str:
