@@ -16,7 +16,7 @@ from rich.table import Table
 from agents.config import ConfigError, load_config, load_variants
 from agents.evaluate import evaluate_with_quotes, write_metrics
 from agents.report import build_report, format_money
-from agents.scenario import build_market, build_problem, prepare_baselines
+from agents.scenario import build_markets, build_problem, describe_markets, path_count, prepare_baselines
 from agents.training import load_run, train, write_run
 
 CAUTION = (
@@ -119,6 +119,15 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
         + (f", {len(variants)} sweep variants" if len(variants) > 1 else ""),
         highlight=False,
     )
+    if cfg.market.model == "historical":
+        try:
+            markets = describe_markets(*build_markets(cfg))
+        except ConfigError as error:
+            fail(str(error))
+        for role, facts in markets.items():
+            count = f"{facts['windows']} windows" if "windows" in facts else f"{cfg.data.train_paths} bootstrap paths"
+            console.print(f"  {role}: {facts['first_date']} .. {facts['last_date']} ({facts['rows']} trading days, "
+                          f"rows {facts['first_row']}-{facts['last_row']}), {count}", highlight=False)
 
 
 def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json: bool, run_dir=None) -> None:
@@ -159,8 +168,9 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
     console.print(CAUTION, style="dim", highlight=False)
 
 
-def _heldout(cfg, paths: int | None, seed: int | None) -> tuple[int, int]:
-    return paths or cfg.data.heldout_paths, cfg.data.heldout_seed if seed is None else seed
+def _heldout(cfg, market, paths: int | None, seed: int | None) -> tuple[int, int]:
+    """Held-out path count (a history's windows cap it) and seed."""
+    return path_count(market, paths or cfg.data.heldout_paths), cfg.data.heldout_seed if seed is None else seed
 
 
 @app.command()
@@ -180,7 +190,7 @@ def _score(source: Path, paths: int | None, seed: int | None, quiet: bool):
     """Policies of a config or run folder on its held-out paths, with CIs and quotes."""
     with _progress(quiet) as start:
         cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
-        n_paths, seed = _heldout(cfg, paths, seed)
+        n_paths, seed = _heldout(cfg, market, paths, seed)
         evaluation = evaluate_with_quotes(
             problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
             progress=start("hedging held-out paths (both sides of the book)", n_paths),
@@ -233,10 +243,10 @@ def run(
     for cfg in variants:
         training, run_dir = _train(cfg, config, runs_dir, quiet)
         run_dirs.append(run_dir)
-        n_paths, seed = _heldout(cfg, paths, None)
+        n_paths, seed = _heldout(cfg, training.heldout_market, paths, None)
         with _progress(quiet) as start:
             evaluation = evaluate_with_quotes(
-                training.problem, training.policies, training.market, n_paths, seed, kinds=training.kinds,
+                training.problem, training.policies, training.heldout_market, n_paths, seed, kinds=training.kinds,
                 chunk_paths=cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
                 reference=_reference(cfg, training.policies), bootstrap_samples=cfg.report.bootstrap_samples,
             )
@@ -302,19 +312,23 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehe
 
 
 def _policies_of(source: Path, start):
-    """Config or run folder -> (config, problem, market, policies, tuning, kinds)."""
+    """Config or run folder -> (config, problem, held-out market, policies, tuning, kinds)."""
     if source.is_dir():
         try:
             run = load_run(source)
         except ConfigError as error:
             fail(str(error))
         kinds = {s.name: s.kind for s in [*run.config.baselines, *run.config.agents]}
-        return run.config, run.problem, run.market, {**run.baselines, **run.agents}, {}, kinds
+        return run.config, run.problem, run.heldout_market, {**run.baselines, **run.agents}, {}, kinds
     cfg = _load(source)
-    problem, market = build_problem(cfg), build_market(cfg)
+    try:
+        problem = build_problem(cfg)
+        market, heldout_market = build_markets(cfg)
+    except ConfigError as error:
+        fail(str(error))
     start("tuning baselines on training paths", 1)
     policies, tuning = prepare_baselines(cfg, problem, market)
-    return cfg, problem, market, policies, tuning, {spec.name: spec.kind for spec in cfg.baselines}
+    return cfg, problem, heldout_market, policies, tuning, {spec.name: spec.kind for spec in cfg.baselines}
 
 
 def main() -> None:

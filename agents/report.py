@@ -369,7 +369,7 @@ def _sample_path(scored: _Scored):
     run, problem = scored.run, scored.run.problem
     steps = problem.schedule.steps
     seed = scored.metrics.get("heldout_seed", run.config.data.heldout_seed)
-    paths = run.market.generate(1, steps, problem.dt_years, seed)
+    paths = (run.heldout_market or run.market).generate(1, steps, problem.dt_years, seed)
     return paths, seed
 
 
@@ -542,11 +542,8 @@ def _scenario_html(scored: _Scored) -> str:
     facts = [
         ("config", config.name),
         ("description", config.description or "(none)"),
-        ("market", f"{market.model.upper()}: spot {market.spot:g}, drift {_percent(market.drift)}, "
-                   f"volatility {_percent(market.volatility)}, rate {_percent(market.rate)}, "
-                   f"dividend yield {_percent(market.dividend_yield)} (annual)"),
-        ("pricing", f"Black-Scholes marks at volatility {_percent(run.problem.marks.volatility)}, "
-                    f"{config.pricing.days_per_year:g} days per year"),
+        ("market", _market_text(market)),
+        ("pricing", _pricing_text(config, run.problem)),
         ("schedule", f"{schedule.steps} rehedges every {_days(schedule.step_days)} "
                      f"(horizon {_days(config.horizon_days)}), settlement: {schedule.settlement}"),
         ("frictions", f"proportional cost {frictions.cost_rate * 1e4:g} bps of traded notional; fixed cost "
@@ -558,8 +555,10 @@ def _scenario_html(scored: _Scored) -> str:
         ("objective", f"mean over paths of the summed step rewards dW - {objective.risk_aversion:g} / 2 dW^2 "
                       f"(risk aversion per currency unit); VaR/CVaR levels "
                       f"{', '.join(_percent(v) for v in objective.var_levels)}"),
-        ("held-out paths", f"{paths:,} paths, seed {metrics.get('heldout_seed')}"),
-        ("training paths", f"{config.data.train_paths:,} paths, seed {config.data.train_seed}"),
+        ("held-out paths", f"{paths:,} paths, seed {metrics.get('heldout_seed')}"
+                           + _dates_text(manifest, "heldout", config.horizon_days)),
+        ("training paths", f"{manifest.get('sizes', {}).get('train_paths', config.data.train_paths):,} paths, "
+                           f"seed {config.data.train_seed}" + _dates_text(manifest, "train", config.horizon_days)),
         ("bootstrap", f"{metrics.get('bootstrap_samples')} paired resamples over paths, "
                       f"seed {metrics.get('bootstrap_seed')}; reference policy: {metrics.get('reference_policy')}"),
         ("run folder", f"{run.path.name}, created {manifest.get('created', 'n/a')}"),
@@ -576,6 +575,44 @@ def _scenario_html(scored: _Scored) -> str:
         facts.append(("Black-Scholes mark of the book", f"{format_money(records[0]['mark'])} (currency)"))
     return (f"<h2>Scenario</h2>{_facts_table(facts[:2])}<h3>Book</h3>{book}"
             f"<h3>Market, frictions, objective and data</h3>{_facts_table(facts[2:])}")
+
+
+def _market_text(market) -> str:
+    if market.model == "historical":
+        return (f"HISTORICAL: closes of {market.csv} (one row per trading day), every path rescaled to start at "
+                f"spot {market.spot:g}; training paths: {market.training}; rate {_percent(market.rate)}, "
+                f"dividend yield {_percent(market.dividend_yield)} (annual)")
+    return (f"{market.model.upper()}: spot {market.spot:g}, drift {_percent(market.drift)}, "
+            f"volatility {_percent(market.volatility)}, rate {_percent(market.rate)}, "
+            f"dividend yield {_percent(market.dividend_yield)} (annual)")
+
+
+def _pricing_text(config, problem) -> str:
+    basis = f"{config.pricing.days_per_year:g} days per year"
+    marks = getattr(config.market, "marks", "configured")
+    if marks == "implied":
+        return (f"Black-Scholes marks and premium at the implied volatility of each date (column "
+                f"{config.market.implied_volatility_column}), per path; its training mean "
+                f"{_percent(problem.marks.volatility)} is the typical level (quotes); {basis}")
+    if marks == "realised":
+        return (f"Black-Scholes marks at the realised volatility of the training period, "
+                f"{_percent(problem.marks.volatility)}; {basis}")
+    return f"Black-Scholes marks at volatility {_percent(problem.marks.volatility)}, {basis}"
+
+
+def _dates_text(manifest: dict, role: str, horizon_days: float) -> str:
+    """Dates a historical run's paths come from ('' for a simulated market)."""
+    facts = manifest.get("history", {}).get(role)
+    if not facts:
+        return ""
+    text = f"; {facts['source']} of {facts['first_date']} to {facts['last_date']} ({facts['rows']:,} trading days"
+    if "windows" in facts:
+        text += f", a window every {facts['stride_days']} trading days"
+        if role == "heldout" and facts["stride_days"] < horizon_days:
+            text += "; windows overlap, so the paired intervals over paths are too narrow"
+    else:
+        text += f", mean block {facts['mean_block_days']:g} trading days"
+    return text + ")"
 
 
 def _summary_columns(records: list[dict]) -> list[tuple[str, str, object]]:

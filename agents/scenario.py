@@ -5,11 +5,21 @@ from __future__ import annotations
 import math
 from dataclasses import replace
 
+import numpy as np
+
 from agents import baselines
-from agents.config import Config
+from agents.config import Config, ConfigError
 from agents.tuning import tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
+from hedge_env.history import (
+    History,
+    HistoricalWindows,
+    HistoryError,
+    StationaryBootstrap,
+    load_history,
+    split_history,
+)
 from hedge_env.market import GBMMarket, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
@@ -18,6 +28,14 @@ from hedge_env.problem import HedgingProblem, Schedule
 def build_problem(config: Config) -> HedgingProblem:
     """The hedging problem a config describes."""
     market, frictions = config.market, config.frictions
+    volatility, observed = config.pricing.volatility, False
+    if market.model == "historical" and market.marks != "configured":
+        # Realised: of the training part. Implied: per path and date from the market; the mean over
+        # the training part is the typical level (scales, quotes).
+        train = historical_parts(config)[0]
+        observed = market.marks == "implied"
+        volatility = (float(np.mean(train.implied_volatility)) if observed
+                      else train.realised_volatility(config.pricing.days_per_year))
     legs = tuple(
         OptionLeg(o.kind, o.strike, o.expiry_days, o.quantity, o.multiplier) for o in config.book.options
     )
@@ -25,7 +43,7 @@ def build_problem(config: Config) -> HedgingProblem:
     return HedgingProblem(
         book=Book(legs),
         marks=MarkParameters(
-            volatility=config.pricing.volatility,
+            volatility=volatility,
             rate=market.rate,
             dividend_yield=market.dividend_yield,
             days_per_year=config.pricing.days_per_year,
@@ -53,6 +71,7 @@ def build_problem(config: Config) -> HedgingProblem:
             settlement=config.schedule.settlement,
         ),
         reference_spot=market.spot,
+        mark_volatility_observed=observed,
     )
 
 
@@ -62,6 +81,61 @@ def build_market(config: Config) -> PathGenerator:
     if market.model == "gbm":
         return GBMMarket(spot=market.spot, drift=market.drift, volatility=market.volatility)
     raise ValueError(f"market.model: no generator for {market.model!r}")  # the schema admits no other yet
+
+
+def build_markets(config: Config) -> tuple[PathGenerator, PathGenerator]:
+    """``(training source, held-out source)`` of ``config.market``.
+
+    A simulated model is one generator for both (training paths from
+    ``data.train_seed``, held-out ones from ``data.heldout_seed``). A history
+    gives the rolling windows or the bootstrap of its early part for training
+    and the rolling windows of its later part for held-out testing; see
+    :func:`path_count` for how many paths each gives.
+    """
+    market = config.market
+    if market.model != "historical":
+        source = build_market(config)
+        return source, source
+    train, heldout = historical_parts(config)
+    steps, step_rows = config.schedule.steps, int(config.schedule.step_days)
+    implied = market.marks == "implied"
+    if market.training == "bootstrap":
+        train_source = StationaryBootstrap(history=train, spot=market.spot, step_rows=step_rows,
+                                           mean_block_rows=market.bootstrap_mean_block_days, implied_marks=implied)
+    else:
+        train_source = HistoricalWindows.build(train, steps, step_rows, market.stride_days, market.spot,
+                                               implied, role="training")
+    heldout_source = HistoricalWindows.build(heldout, steps, step_rows, market.heldout_stride_days, market.spot,
+                                             implied, role="held-out")
+    return train_source, heldout_source
+
+
+def historical_parts(config: Config) -> tuple[History, History]:
+    """The training and held-out parts of ``config.market``'s history; CSV problems are ConfigErrors
+    naming ``market.csv`` (and the row), split problems the split key."""
+    market = config.market
+    try:
+        history = load_history(market.csv, market.date_column, market.close_column,
+                               market.implied_volatility_column, market.implied_volatility_unit, market.date_format)
+    except HistoryError as error:
+        raise ConfigError(f"market.csv: {error}", key="market.csv") from None
+    key = "market.split_date" if market.split_date is not None else "market.split_fraction"
+    try:
+        return split_history(history, config.schedule.steps * int(config.schedule.step_days),
+                             market.split_date, market.split_fraction, market.gap_days)
+    except HistoryError as error:
+        raise ConfigError(f"{key}: {error}", key=key) from None
+
+
+def path_count(source: PathGenerator, requested: int) -> int:
+    """Paths to draw from ``source``: ``requested``, capped by what a history's windows give."""
+    return requested if source.max_paths is None else min(requested, source.max_paths)
+
+
+def describe_markets(train: PathGenerator, heldout: PathGenerator) -> dict:
+    """Date ranges and counts of the training and held-out sources ({} for a simulated model)."""
+    facts = {"train": train.describe(), "heldout": heldout.describe()}
+    return facts if any(facts.values()) else {}
 
 
 def build_baseline(spec, problem: HedgingProblem):
@@ -96,8 +170,10 @@ def _fixed_or(value, placeholder: float) -> float:
 
 
 def training_paths(config: Config, market: PathGenerator, problem: HedgingProblem):
-    """The training paths of ``config.data`` (the only paths tuning and fitting may see)."""
-    return market.generate(config.data.train_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
+    """The training paths of ``config.data`` from the training source (the only paths tuning and
+    fitting may see); a history's windows cap their number."""
+    n_paths = path_count(market, config.data.train_paths)
+    return market.generate(n_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
 
 
 def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGenerator, train=None):

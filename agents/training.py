@@ -28,7 +28,14 @@ from agents.dataset import Exploration, Transitions, collect
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
-from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines, training_paths
+from agents.scenario import (
+    build_baseline,
+    build_markets,
+    build_problem,
+    describe_markets,
+    prepare_baselines,
+    training_paths,
+)
 from hedge_env.market import GBMMarket, PathGenerator
 from hedge_env.problem import HedgingProblem
 
@@ -100,6 +107,8 @@ class Training:
     timings: dict[str, float] = field(default_factory=dict)
     sizes: dict[str, int] = field(default_factory=dict)
     log: list[str] = field(default_factory=list)
+    # The held-out source: the training one for a simulated model, a history's later windows otherwise.
+    heldout_market: PathGenerator | None = None
 
     @property
     def policies(self) -> dict[str, object]:
@@ -117,17 +126,22 @@ class Training:
 
 def train(config: Config, start: ProgressStart = _no_progress) -> Training:
     """Tune the baselines and fit every agent of ``config`` on its training paths."""
-    problem, market = build_problem(config), build_market(config)
+    problem = build_problem(config)
+    market, heldout_market = build_markets(config)
     agents = {spec.name: build_agent(spec, i, problem, market) for i, spec in enumerate(config.agents)}
-    outcome = Training(config, problem, market, {}, {}, {})
+    outcome = Training(config, problem, market, {}, {}, {}, heldout_market=heldout_market)
     data = config.data
     clock = time.perf_counter()
     advance = start("simulating training paths", data.train_paths)
     paths = training_paths(config, market, problem)
+    n_train = paths.n_paths
     advance(data.train_paths)
     outcome.timings["simulate_s"] = time.perf_counter() - clock
-    outcome.sizes.update(train_paths=data.train_paths, steps=problem.schedule.steps)
-    outcome.note(f"simulated {data.train_paths} training paths x {problem.schedule.steps} steps, seed {data.train_seed}")
+    outcome.sizes.update(train_paths=n_train, steps=problem.schedule.steps)
+    outcome.note(f"simulated {n_train} training paths x {problem.schedule.steps} steps, seed {data.train_seed}")
+    for role, facts in describe_markets(market, heldout_market).items():
+        outcome.note(f"{role} paths: {facts['source']} of {facts['first_date']} .. {facts['last_date']} "
+                     f"({facts['rows']} trading days)")
 
     clock = time.perf_counter()
     start("tuning baselines", 1)
@@ -145,10 +159,10 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
         else:
             exploration = _exploration(spec)
             if exploration not in transitions:
-                advance = start(f"collecting transitions ({spec.name})", data.train_paths)
+                advance = start(f"collecting transitions ({spec.name})", n_train)
                 parts = []
-                for i, begin in enumerate(range(0, data.train_paths, data.chunk_paths)):
-                    chunk = paths.rows(begin, min(begin + data.chunk_paths, data.train_paths))
+                for i, begin in enumerate(range(0, n_train, data.chunk_paths)):
+                    chunk = paths.rows(begin, min(begin + data.chunk_paths, n_train))
                     seed = np.random.SeedSequence(data.train_seed, spawn_key=(1, i))
                     parts.append(collect(problem, chunk, exploration, seed, market.observed_factors))
                     advance(chunk.n_paths)
@@ -193,12 +207,23 @@ def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict 
         "tuned": {name: {r.parameter: r.value, "train_objective": r.objective}
                   for name, r in training.tuning.items()},
         "agents": {spec.name: spec.kind for spec in config.agents},
+        **_history_facts(training),
         **(extra or {}),
     }
     (staging / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
     (staging / "training.log").write_text("\n".join(training.log) + "\n")
     staging.rename(final)
     return final
+
+
+def _history_facts(training: Training) -> dict:
+    """For a historical market: the CSV, its sha256 and the training and held-out date ranges."""
+    heldout = training.heldout_market or training.market
+    markets = describe_markets(training.market, heldout)
+    if not markets:
+        return {}
+    history = heldout.history
+    return {"history": {"csv": history.source, "csv_sha256": history.sha256, **markets}}
 
 
 @dataclass
@@ -212,6 +237,7 @@ class Run:
     market: PathGenerator
     agents: dict[str, object]
     baselines: dict[str, object]
+    heldout_market: PathGenerator | None = None
 
 
 def load_run(path: str | Path) -> Run:
@@ -222,7 +248,12 @@ def load_run(path: str | Path) -> Run:
         raise ConfigError(f"{path}: not a run folder (no manifest.json)")
     manifest = json.loads(manifest_file.read_text())
     config = parse_config(json.loads((path / "config.json").read_text()), source=str(path / "config.json"))
-    problem, market = build_problem(config), build_market(config)
+    problem = build_problem(config)
+    market, heldout_market = build_markets(config)
+    recorded = manifest.get("history", {}).get("csv_sha256")
+    if recorded and recorded != heldout_market.history.sha256:
+        raise ConfigError(f"market.csv: {config.market.csv} changed since the run was written "
+                          "(sha256 differs from the manifest's); its held-out windows would not be the run's")
     baselines = {}
     for spec in config.baselines:
         policy = build_baseline(spec, problem)
@@ -233,4 +264,4 @@ def load_run(path: str | Path) -> Run:
             policy = replace(policy, **{parameter: tuned[parameter]})
         baselines[spec.name] = policy
     agents = {spec.name: joblib.load(path / "agents" / f"{spec.name}.joblib") for spec in config.agents}
-    return Run(path, config, manifest, problem, market, agents, baselines)
+    return Run(path, config, manifest, problem, market, agents, baselines, heldout_market)
