@@ -160,7 +160,7 @@ def collect_chunks(problem: HedgingProblem, source: PathGenerator | MarketPaths,
 
     Paths come from ``seed``; the behaviour's draws from a child of it per chunk.
     """
-    market = as_market(source)
+    market = as_market(source, problem)
     for index, chunk in enumerate(market.iter_chunks(n_paths, problem.schedule.steps, problem.dt_years, seed,
                                                      chunk_paths)):
         behaviour_seed = np.random.SeedSequence(seed, spawn_key=(1, index))

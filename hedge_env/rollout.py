@@ -83,8 +83,13 @@ class HedgeResult:
                            step_cost=step_cost, **arrays)
 
 
-def as_market(source: PathGenerator | MarketPaths) -> PathGenerator:
-    return GivenPaths(source) if isinstance(source, MarketPaths) else source
+def as_market(source: PathGenerator | MarketPaths, problem: HedgingProblem | None = None) -> PathGenerator:
+    """A path generator of ``source``; given paths observe the mark volatility they carry when
+    the problem observes it (other factors of given paths are not observed)."""
+    if not isinstance(source, MarketPaths):
+        return source
+    observes = problem is not None and problem.mark_volatility_observed and MARK_VOLATILITY_FACTOR in source.factors
+    return GivenPaths(source, (MARK_VOLATILITY_FACTOR,) if observes else ())
 
 
 def rollout(
@@ -143,7 +148,7 @@ def rollout_many(
     Within a chunk, rows reach a policy sorted by spot level (it makes pricing
     faster); a policy maps each row on its own, so no result depends on it.
     """
-    market = as_market(source)
+    market = as_market(source, problem)
     check_observed_marks(problem, market.observed_factors)
     if n_paths is None:
         if not isinstance(source, MarketPaths):
