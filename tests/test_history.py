@@ -385,3 +385,27 @@ def test_a_split_leaving_too_few_heldout_rows_is_a_config_error(tmp_path):
     data["market"]["split_date"] = "2024-12-02"
     with pytest.raises(ConfigError, match=r"^market.split_date: .*held-out rows; one horizon of 21 trading days"):
         build_markets(parse_config(data))
+
+
+@pytest.mark.parametrize("change, expected", [
+    ({"market": {"implied_volatility_column": None, "marks": "implied"}},
+     "market.marks: 'implied' needs market.implied_volatility_column"),
+    ({"market": {"split_fraction": 0.5}}, "market.split_fraction: give split_date or split_fraction, not both"),
+    ({"market": {"split_date": "2021-02-30"}}, "market.split_date: must be a date like 2024-01-31, got '2021-02-30'"),
+    ({"market": {"marks": "configured"}}, "pricing.volatility: required with market.marks = 'configured'"),
+    ({"pricing": {"volatility": 0.2}}, "pricing.volatility: set only with market.marks = 'configured'"),
+    ({"schedule": {"step_days": 1.5}}, "schedule.step_days: must be a whole number of trading days"),
+    ({"market": {"stride_days": 0}}, "market.stride_days: must be >= 1, got 0"),
+    ({"market": {"implied_volatility_unit": "basis_points"}}, "market.implied_volatility_unit: must be one of"),
+])
+def test_historical_config_errors_name_the_key(change, expected):
+    data = tomllib.loads((ROOT / "configs" / "historical.toml").read_text())
+    for section, values in change.items():
+        for key, value in values.items():
+            if value is None:
+                data[section].pop(key)
+            else:
+                data[section][key] = value
+    with pytest.raises(ConfigError) as caught:
+        parse_config(data)
+    assert str(caught.value).startswith(expected)
