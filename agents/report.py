@@ -310,8 +310,9 @@ def _map_figures(scored: _Scored, sample_factors: dict[str, np.ndarray]) -> list
             decisions = policy_map(problem, agent, spot, k, factors)
             t_days = problem.schedule.time_days(k)
             hedge = decisions["hedge"]
-            volatility = factors[0] if problem.mark_volatility_observed and factors else None
-            half_width = None if band is None else band[1].half_width_shares(spot, t_days, volatility) / notional
+            mark_volatility = factors[0] if problem.mark_volatility_observed and factors else None
+            half_width = (None if band is None
+                          else band[1].half_width_shares(spot, t_days, mark_volatility) / notional)
             # Top: holdings themselves; bottom: their gap from the hedge, where the bands are readable.
             for ax, center in ((axes[0, column], hedge), (axes[1, column], 0.0 * hedge)):
                 shift = hedge - center
