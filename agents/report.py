@@ -331,8 +331,10 @@ def _map_figures(scored: _Scored, sample_factors: dict[str, np.ndarray]) -> list
         axes[1, 0].set_ylabel("holding - hedge (per share of notional)")
         _legend_below(figure, *axes[0, 0].get_legend_handles_labels())
         low, high = _MAP_OFFSET_RANGE
+        at = (f"{100 * volatility:g}% volatility" if not problem.mark_volatility_observed
+              else "the mark volatility of the first held-out path at each time")
         caption = (f"{name}: target holding against spot when the current holding is the Black-Scholes "
-                   f"hedge (minus the book's delta at {100 * volatility:g}% volatility, per share of the "
+                   f"hedge (minus the book's delta at {at}, per share of the "
                    f"{notional:,.0f}-share notional), over the spots within 2.5 standard deviations of "
                    "log spot at each time (about 99% of paths); below, the same as gaps from the hedge. The shaded "
                    f"region is where {name} does not trade: the holdings it keeps (target equal to the "
