@@ -56,7 +56,8 @@ def main() -> None:
         train_s = time.perf_counter() - started
         problem, market = training.problem, training.market
         policies = training.policies
-        results = rollout_many(problem, policies, market, config.data.heldout_paths, config.data.heldout_seed)
+        heldout = training.heldout_market
+        results = rollout_many(problem, policies, heldout, config.data.heldout_paths, config.data.heldout_seed)
         delta, optimum = results["delta"].reward, results["grid_dp"].reward
         band = results["whalley_wilmott"].reward
         print(f"\n{config.name}: cost {config.frictions.cost_rate * 1e4:g} bps, "
@@ -80,7 +81,7 @@ def main() -> None:
         base = training.agents[spec.name]
         for smoothing in [float(x) for x in args.smoothing.split(",")]:
             agent = LinearBasisAgent(**{**base.get_params(), "smoothing": smoothing}).fit(transitions)
-            reward = rollout_many(problem, {"a": agent}, market, config.data.heldout_paths,
+            reward = rollout_many(problem, {"a": agent}, heldout, config.data.heldout_paths,
                                   config.data.heldout_seed)["a"].reward
             share, low, high = share_with_ci(reward, delta, optimum, rng)
             figure_rows.append((config.frictions.cost_rate, smoothing, share, low, high))

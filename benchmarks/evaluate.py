@@ -31,12 +31,12 @@ def main() -> None:
     common = dict(kinds=training.kinds, reference="delta", bootstrap_samples=config.report.bootstrap_samples)
 
     start = time.perf_counter()
-    evaluation = evaluate_policies(training.problem, policies, training.market, args.paths, 99, **common)
+    evaluation = evaluate_policies(training.problem, policies, training.heldout_market, args.paths, 99, **common)
     evaluation.table  # noqa: B018 - the summary and the bootstrap are part of the timed work
     plain_s = time.perf_counter() - start
 
     start = time.perf_counter()
-    evaluation = evaluate_with_quotes(training.problem, policies, training.market, args.paths, 99, **common)
+    evaluation = evaluate_with_quotes(training.problem, policies, training.heldout_market, args.paths, 99, **common)
     evaluation.table  # noqa: B018
     quotes_s = time.perf_counter() - start
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
