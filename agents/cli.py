@@ -15,7 +15,7 @@ from rich.table import Table
 
 from agents.config import ConfigError, load_config, load_variants
 from agents.evaluate import evaluate_with_quotes, write_metrics
-from agents.report import build_report, format_money
+from agents.report import build_report, format_count, format_money
 from agents.scenario import build_markets, build_problem, describe_markets, path_count, prepare_baselines
 from agents.training import load_run, train, write_run
 
@@ -286,7 +286,7 @@ def quote(
         table.add_column(header, justify="left" if header == "policy" else "right", no_wrap=True)
     for r in rows:
         table.add_row(r["name"], _money(r["quote_bid"]), _money(r["quote_ask"]),
-                      f"{r['spread_bid_vol_points']:.2f} / {r['spread_ask_vol_points']:.2f}",
+                      f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}",
                       _money(r["cvar_bid"]), _money(r["cvar_ask"]))
     console.print(table)
     console.print("bid and ask: mean-variance indifference premiums (mark -/+ the risk-adjusted cost of hedging); "

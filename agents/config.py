@@ -648,6 +648,13 @@ class Config(_Spec):
                 heldout = train + 1
         data.train_seed, data.heldout_seed = train, heldout
 
+        last_expiry = max(option.expiry_days for option in self.book.options)
+        if self.horizon_days > last_expiry * (1 + 1e-9):
+            raise _rule(
+                f"the horizon (steps x step_days = {self.horizon_days:g} days) must not run past the last "
+                f"option expiry ({last_expiry:g} days)", "schedule", "steps"
+            )
+
         seen: set[str] = set()
         for section, policies in (("baselines", self.baselines), ("agents", self.agents)):
             for i, policy in enumerate(policies):

@@ -75,12 +75,14 @@ class Evaluation:
         return table.sort_values("objective", ascending=False)
 
     def to_records(self) -> list[dict]:
-        """One dict per policy, best first, with plain Python numbers (for JSON)."""
+        """One dict per policy, best first, with plain Python numbers (for JSON; NaN as None)."""
         records = []
         for name, row in self.table.iterrows():
             record = {"name": name}
             for key, value in row.items():
                 value = value.item() if isinstance(value, np.generic) else value
+                if isinstance(value, float) and not np.isfinite(value):
+                    value = None  # JSON has no NaN: an undefined number is null
                 if key.startswith("vs_reference_"):
                     record.setdefault("vs_reference", {"policy": self.reference})[key[13:]] = value
                 else:
@@ -183,7 +185,11 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
             implied = implied_book_volatility(problem, row[f"quote_{side}"])
             # A book whose value is not monotone in volatility (a spread) has no implied volatility
             # for every premium: then the spread is expressed per vol point of the book's vega.
-            points = abs(100.0 * implied - vol_points) if np.isfinite(implied) else spread / vega_point
+            # With no vega either (deep in or out of the money) vol points mean nothing: NaN, null in JSON.
+            if np.isfinite(implied):
+                points = abs(100.0 * implied - vol_points)
+            else:
+                points = spread / vega_point if vega_point > 0 else float("nan")
             row[f"spread_{side}"] = spread
             row[f"spread_{side}_vol_points"] = float(points)
         out[name] = row
