@@ -625,3 +625,81 @@ def _write_folder(folder: Path, csvs: dict[str, bytes], sidecar: bytes) -> Path:
         shutil.rmtree(staging, ignore_errors=True)
         raise
     return folder
+
+
+# ---------------------------------------------------------------------------------------------
+# From configs and run folders; advice for one state
+# ---------------------------------------------------------------------------------------------
+
+
+def grid_of(export) -> TableGrid:
+    """The table grid of a config's ``[export]`` section (agents.config.ExportSpec)."""
+    return TableGrid(moneyness_points=export.moneyness_points, holding_points=export.holding_points,
+                     moneyness_width=export.moneyness_width)
+
+
+def export_policy(config, problem, policies: dict, name: str, folder: str | Path) -> Path:
+    """Export the policy called ``name`` among ``policies`` (of ``config``) with the grid of
+    ``config.export``; an unknown name is a TableError that lists the known ones."""
+    from agents.config import config_hash
+
+    if name not in policies:
+        known = ", ".join(repr(n) for n in policies) or "none"
+        raise TableError(f"unknown policy {name!r}; policies: {known}")
+    kinds = {spec.name: spec.kind for spec in [*config.baselines, *config.agents]}
+    return export_table(policies[name], problem, folder, grid=grid_of(config.export), kind=kinds.get(name, ""),
+                        config_name=config.name, config_hash=config_hash(config),
+                        currency=config.export.currency, volatility=config.pricing.volatility)
+
+
+def tables_as_policies(paths, problem) -> tuple[dict[str, HedgeTable], dict[str, str]]:
+    """Hedge tables to score next to a problem's policies: name -> table, and name -> kind ``table``.
+
+    Each table must fit the problem (:meth:`HedgeTable.check_problem`); two
+    tables of one name are told apart by a numeric suffix.
+    """
+    tables = {}
+    for path in paths:
+        table = HedgeTable.load(path)
+        table.check_problem(problem)
+        name, n = table.name, 2
+        while name in tables:
+            name, n = f"{table.name}{n}", n + 1
+        table.name = name
+        tables[name] = table
+    return tables, {name: "table" for name in tables}
+
+
+def advice(table: HedgeTable, spot: float, days_left: float, holding: float) -> dict:
+    """One decision of ``table`` as a JSON-ready record: target, trade, band, clamping notes."""
+    decision = table.decide(spot, days_left, holding)
+    domain = table.domain
+    notes = []
+    for axis, value, flag in (("days_left", days_left, decision.clamped_days_left),
+                              ("spot", spot, decision.clamped_moneyness),
+                              ("holding_shares", holding, decision.clamped_holding)):
+        if bool(flag):
+            low, high = domain[axis]
+            edge = low if value < low else high
+            notes.append(f"{axis} {value:g} is outside the table's domain [{low:g}, {high:g}]: "
+                         f"decided at {edge:g}")
+    lower, upper = float(decision.band_lower_shares), float(decision.band_upper_shares)
+    meta = table.meta
+    return {
+        "table": str(table.path),
+        "policy": meta["policy"]["name"],
+        "config": meta.get("config", {}).get("name"),
+        "created": meta.get("created"),
+        "spot": float(spot),
+        "moneyness": float(spot) / table.reference_spot,
+        "days_left": float(days_left),
+        "holding_shares": float(holding),
+        "target_shares": float(decision.target_shares),
+        "trade_shares": float(decision.trade_shares),
+        "band_lower_shares": None if math.isnan(lower) else lower,
+        "band_upper_shares": None if math.isnan(upper) else upper,
+        "inside_band": bool(decision.inside_band),
+        "clamped": bool(decision.clamped),
+        "clamping": notes,
+        "currency": meta.get("units", {}).get("currency"),
+    }
