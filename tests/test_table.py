@@ -7,6 +7,7 @@ import json
 import shutil
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import numpy as np
@@ -15,6 +16,7 @@ from typer.testing import CliRunner
 
 from agents.baselines import DeltaHedge, FixedBand, WhalleyWilmottBand
 from agents.cli import CAUTION, app
+from agents.config import ConfigError, parse_config
 from agents.grid_dp import GridDPAgent
 from agents.policy import Policy
 from agents.table import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, TableGrid, export_table
@@ -296,6 +298,13 @@ moneyness_points = 61
 holding_points = 21
 currency = "EUR"
 """
+
+
+def test_export_grid_settings_are_validated_with_their_key():
+    data = tomllib.loads(CONFIG)
+    data["export"]["holding_points"] = 1
+    with pytest.raises(ConfigError, match=r"^export.holding_points: must be >= 2, got 1$"):
+        parse_config(data)
 
 
 def rehedge(*args: str) -> subprocess.CompletedProcess:
