@@ -60,7 +60,7 @@ NO_TRADE_TOLERANCE = 1e-7
 # Bisection steps that place each band edge between two holding nodes (2^-40 of a node spacing).
 BAND_BISECTIONS = 40
 # Significant digits in the CSVs: grid nodes are rounded to them, so they read back exactly.
-NODE_DIGITS = 7
+NODE_DIGITS = 6
 TARGET_DIGITS = 7
 
 
@@ -91,7 +91,7 @@ class TableGrid:
         Padding of the automatic holding domain on each side, fraction of notional shares.
     """
 
-    moneyness_points: int = 121
+    moneyness_points: int = 101
     holding_points: int = 41
     moneyness_width: float = 4.0
     moneyness_range: tuple[float, float] | None = None

@@ -59,7 +59,7 @@ def exported(tmp_path_factory):
 
 def test_default_grid_table_reaches_the_source_objective_within_one_percent_on_heldout_paths(exported):
     # Issue 5, item 5: the loaded table, scored on held-out paths, within 1% of the source's objective.
-    # Default grid: every rehedge time x 121 moneyness nodes (+-4 sd of log spot) x 41 holding nodes.
+    # Default grid: every rehedge time x 101 moneyness nodes (+-4 sd of log spot) x 41 holding nodes.
     problem, sources, tables, _ = exported
     policies = {**sources, **{f"{name}.table": table for name, table in tables.items()}}
     results = rollout_many(problem, policies, GBMMarket(spot=100.0, drift=0.0, volatility=0.2),
@@ -76,7 +76,7 @@ def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
     meta = table.meta
     assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 1
     n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
-    assert (n_days, n_money, n_hold) == (10, 121, 41)
+    assert (n_days, n_money, n_hold) == (10, 101, 41)
     assert meta["grid"]["days_left"] == [float(d) for d in range(1, 11)]  # days left at each rehedge
     lines = (table.path / "targets.csv").read_text().splitlines()
     assert lines[0] == ",".join(TARGET_COLUMNS) and len(lines) == 1 + n_days * n_money * n_hold
