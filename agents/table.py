@@ -463,9 +463,10 @@ def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
     for edge, side in ((lower, -1), (upper, 1)):
         # The nearest node beyond the edge that trades: the bisection's outer end.
         start = np.where(empty, holds[0], edge)
-        beyond = (holds < start[..., None]) if side < 0 else (holds > start[..., None])
-        outer = np.where(side < 0, np.where(beyond, holds, -inf).max(axis=-1),
-                         np.where(beyond, holds, inf).min(axis=-1))
+        if side < 0:
+            outer = np.where(holds < start[..., None], holds, -inf).max(axis=-1)
+        else:
+            outer = np.where(holds > start[..., None], holds, inf).min(axis=-1)
         at_domain_edge = ~np.isfinite(outer)
         outer = np.where(at_domain_edge, start, outer)
         inner = start.copy()
