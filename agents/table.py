@@ -442,40 +442,42 @@ def _holding_domain(policy, problem, grid: TableGrid, days_nodes, money) -> tupl
 
 
 def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
-    """Lower and upper no-trade edges (shares, NaN where the policy always trades), per (day, moneyness).
+    """Lower and upper no-trade edges (shares) per (day, moneyness); NaN where none is found.
 
-    The no-trade region is read off the grid (and the targets from the ends of the
-    holding domain, which a band policy leaves alone), and each edge placed by
-    bisection on the policy between the last trading node and the first no-trade point.
+    The lower edge is where the policy stops buying as the holding rises, the
+    upper edge where it starts selling (a trade within the tolerance counts as
+    none). Each is bracketed by two holding nodes, or is the end of the holding
+    domain, and placed by bisection on the policy itself, so a band narrower
+    than the node spacing is found too. A policy that sells below where it
+    buys has no band (NaN).
     """
     tolerance = NO_TRADE_TOLERANCE * problem.notional_shares
-    still = np.abs(targets - holds) <= tolerance
-    seeds = [targets[..., 0], targets[..., -1]]
-    seed_still = [np.abs(_targets_at(policy, problem, days_nodes, money, s) - s) <= tolerance for s in seeds]
-    inf = np.inf
-    lower = np.where(still, holds, inf).min(axis=-1)
-    upper = np.where(still, holds, -inf).max(axis=-1)
-    for seed, ok in zip(seeds, seed_still):
-        lower = np.where(ok, np.minimum(lower, seed), lower)
-        upper = np.where(ok, np.maximum(upper, seed), upper)
-    empty = ~np.isfinite(lower)
+    trade = targets - holds
+    n_hold = holds.size
     edges = []
-    for edge, side in ((lower, -1), (upper, 1)):
-        # The nearest node beyond the edge that trades: the bisection's outer end.
-        start = np.where(empty, holds[0], edge)
-        if side < 0:
-            outer = np.where(holds < start[..., None], holds, -inf).max(axis=-1)
+    for stops, inner_is_upper in ((lambda t: t <= tolerance, True), (lambda t: t >= -tolerance, False)):
+        # Lower edge: first node that does not buy, searched upward; upper edge: last node that
+        # does not sell, searched downward. The node before it (which trades) brackets the edge.
+        ok = stops(trade)
+        if inner_is_upper:
+            found = ok.any(axis=-1)
+            index = ok.argmax(axis=-1)
+            neighbour = index - 1
         else:
-            outer = np.where(holds > start[..., None], holds, inf).min(axis=-1)
-        at_domain_edge = ~np.isfinite(outer)
-        outer = np.where(at_domain_edge, start, outer)
-        inner = start.copy()
+            found = ok.any(axis=-1)
+            index = n_hold - 1 - ok[..., ::-1].argmax(axis=-1)
+            neighbour = index + 1
+        inner = holds[index]
+        at_domain_end = (neighbour < 0) | (neighbour >= n_hold)
+        outer = np.where(at_domain_end, inner, holds[np.clip(neighbour, 0, n_hold - 1)])
         for _ in range(BAND_BISECTIONS):
             middle = 0.5 * (inner + outer)
-            moved = np.abs(_targets_at(policy, problem, days_nodes, money, middle) - middle) > tolerance
-            outer, inner = np.where(moved, middle, outer), np.where(moved, inner, middle)
-        edges.append(np.where(empty, np.nan, inner))
-    return np.stack(edges)
+            holds_still = stops(_targets_at(policy, problem, days_nodes, money, middle) - middle)
+            inner, outer = np.where(holds_still, middle, inner), np.where(holds_still, outer, middle)
+        edges.append(np.where(found, inner, np.nan))
+    lower, upper = edges
+    crossed = lower > upper
+    return np.stack([np.where(crossed, np.nan, lower), np.where(crossed, np.nan, upper)])
 
 
 def _format_rows(columns: list[np.ndarray], digits: list[int]) -> bytes:
