@@ -175,7 +175,7 @@ def _read_csv(folder: Path, entry: dict, columns: tuple[str, ...], what: str) ->
     return values
 
 
-def _axis(values: np.ndarray, nodes: np.ndarray, name: str, path: Path) -> None:
+def _check_axis_column(values: np.ndarray, nodes: np.ndarray, name: str, path: Path) -> None:
     if not np.allclose(values, nodes, rtol=1e-9, atol=0.0):
         raise TableError(f"{path}: column {name} does not follow the sidecar's grid in row order "
                          "(days_left slowest, then moneyness, holding_shares fastest)")
@@ -247,11 +247,11 @@ class HedgeTable:
         if targets.shape[0] != n_days * n_money * n_hold or band.shape[0] != n_days * n_money:
             raise TableError(f"{sidecar}: the CSV row counts do not match the grid sizes")
         t_path, b_path = folder / files["targets"]["name"], folder / files["band"]["name"]
-        _axis(targets[:, 0], np.repeat(days, n_money * n_hold), "days_left", t_path)
-        _axis(targets[:, 1], np.tile(np.repeat(money, n_hold), n_days), "moneyness", t_path)
-        _axis(targets[:, 2], np.tile(hold, n_days * n_money), "holding_shares", t_path)
-        _axis(band[:, 0], np.repeat(days, n_money), "days_left", b_path)
-        _axis(band[:, 1], np.tile(money, n_days), "moneyness", b_path)
+        _check_axis_column(targets[:, 0], np.repeat(days, n_money * n_hold), "days_left", t_path)
+        _check_axis_column(targets[:, 1], np.tile(np.repeat(money, n_hold), n_days), "moneyness", t_path)
+        _check_axis_column(targets[:, 2], np.tile(hold, n_days * n_money), "holding_shares", t_path)
+        _check_axis_column(band[:, 0], np.repeat(days, n_money), "days_left", b_path)
+        _check_axis_column(band[:, 1], np.tile(money, n_days), "moneyness", b_path)
         if not np.isfinite(targets[:, 3]).all():
             raise TableError(f"{t_path}: target_shares must be finite numbers")
         return cls(meta, folder, targets[:, 3].copy(), band[:, 2:].T.copy())
@@ -285,21 +285,21 @@ class HedgeTable:
         days, money, held = days.ravel(), spot.ravel() / self.reference_spot, held.ravel()
         (i, wi, ci), (j, wj, cj), (k, wk, ck) = (
             _locate(self.days_left, days), _locate(self.moneyness, money), _locate(self.holding_shares, held))
-        n_m, n_h = self.moneyness.size, self.holding_shares.size
+        n_money, n_hold = self.moneyness.size, self.holding_shares.size
+        # Flat-index steps to the upper neighbour on each axis (0 on an axis of one node).
+        next_day = n_money * n_hold if self.days_left.size > 1 else 0
+        next_money = n_hold if n_money > 1 else 0
+        next_hold = 1 if n_hold > 1 else 0
         flat = self.targets.ravel()
-        di = n_m * n_h if self.days_left.size > 1 else 0
-        dj = n_h if n_m > 1 else 0
-        dk = 1 if n_h > 1 else 0
-        base = (i * n_m + j) * n_h + k
+        base = (i * n_money + j) * n_hold + k
         target = np.zeros(days.size)
-        for offset_i, weight_i in ((0, 1.0 - wi), (di, wi)):
-            for offset_j, weight_j in ((0, 1.0 - wj), (dj, wj)):
-                weight_ij = weight_i * weight_j
-                corner = base + offset_i + offset_j
-                target += weight_ij * ((1.0 - wk) * flat[corner] + wk * flat[corner + dk])
-        base_2d = i * n_m + j
-        lower, upper = (_bilinear_corners(edge.ravel(), base_2d, wi, wj, n_m if di else 0, 1 if dj else 0)
-                        for edge in (self.band_lower, self.band_upper))
+        for day_step, day_weight in ((0, 1.0 - wi), (next_day, wi)):
+            for money_step, money_weight in ((0, 1.0 - wj), (next_money, wj)):
+                corner = base + day_step + money_step
+                target += day_weight * money_weight * ((1.0 - wk) * flat[corner] + wk * flat[corner + next_hold])
+        lower, upper = (
+            _bilinear_corners(edge.ravel(), i * n_money + j, wi, wj, next_day // n_hold, next_money // n_hold)
+            for edge in (self.band_lower, self.band_upper))
         inside = (held >= lower) & (held <= upper)  # NaN edges (no band) compare False
         target = np.where(inside, held, target)
         return TableDecision(
@@ -455,16 +455,15 @@ def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
     trade = targets - holds
     n_hold = holds.size
     edges = []
-    for stops, inner_is_upper in ((lambda t: t <= tolerance, True), (lambda t: t >= -tolerance, False)):
+    for not_trading, searching_up in ((lambda t: t <= tolerance, True), (lambda t: t >= -tolerance, False)):
         # Lower edge: first node that does not buy, searched upward; upper edge: last node that
         # does not sell, searched downward. The node before it (which trades) brackets the edge.
-        ok = stops(trade)
-        if inner_is_upper:
-            found = ok.any(axis=-1)
+        ok = not_trading(trade)
+        found = ok.any(axis=-1)
+        if searching_up:
             index = ok.argmax(axis=-1)
             neighbour = index - 1
         else:
-            found = ok.any(axis=-1)
             index = n_hold - 1 - ok[..., ::-1].argmax(axis=-1)
             neighbour = index + 1
         inner = holds[index]
@@ -472,8 +471,8 @@ def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
         outer = np.where(at_domain_end, inner, holds[np.clip(neighbour, 0, n_hold - 1)])
         for _ in range(BAND_BISECTIONS):
             middle = 0.5 * (inner + outer)
-            holds_still = stops(_targets_at(policy, problem, days_nodes, money, middle) - middle)
-            inner, outer = np.where(holds_still, middle, inner), np.where(holds_still, outer, middle)
+            inside = not_trading(_targets_at(policy, problem, days_nodes, money, middle) - middle)
+            inner, outer = np.where(inside, middle, inner), np.where(inside, outer, middle)
         edges.append(np.where(found, inner, np.nan))
     lower, upper = edges
     crossed = lower > upper
