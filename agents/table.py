@@ -455,10 +455,11 @@ def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
     trade = targets - holds
     n_hold = holds.size
     edges = []
-    for not_trading, searching_up in ((lambda t: t <= tolerance, True), (lambda t: t >= -tolerance, False)):
-        # Lower edge: first node that does not buy, searched upward; upper edge: last node that
-        # does not sell, searched downward. The node before it (which trades) brackets the edge.
-        ok = not_trading(trade)
+    for no_trade_side, searching_up in ((lambda t: t <= tolerance, True), (lambda t: t >= -tolerance, False)):
+        # no_trade_side: not buying (lower edge) or not selling (upper edge). Lower edge: first node
+        # that does not buy, searched upward; upper edge: last node that does not sell, searched
+        # downward. The node before it (which trades) brackets the edge.
+        ok = no_trade_side(trade)
         found = ok.any(axis=-1)
         if searching_up:
             index = ok.argmax(axis=-1)
@@ -471,7 +472,7 @@ def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
         outer = np.where(at_domain_end, inner, holds[np.clip(neighbour, 0, n_hold - 1)])
         for _ in range(BAND_BISECTIONS):
             middle = 0.5 * (inner + outer)
-            inside = not_trading(_targets_at(policy, problem, days_nodes, money, middle) - middle)
+            inside = no_trade_side(_targets_at(policy, problem, days_nodes, money, middle) - middle)
             inner, outer = np.where(inside, middle, inner), np.where(inside, outer, middle)
         edges.append(np.where(found, inner, np.nan))
     lower, upper = edges
