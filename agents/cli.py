@@ -13,11 +13,8 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from agents.config import ConfigError, load_config, load_variants
-from agents.evaluate import evaluate_with_quotes, write_metrics
-from agents.report import build_report, format_count, format_money
-from agents.scenario import build_markets, build_problem, describe_markets, path_count, prepare_baselines
-from agents.training import load_run, train, write_run
+# Library modules are imported inside the commands that use them: `rehedge advise` answers from a
+# hedge table with numpy alone, without starting scikit-learn, pandas, matplotlib or gymnasium.
 
 CAUTION = (
     "Decision support, not advice: a policy is only as good as the market model and data it was "
@@ -44,6 +41,8 @@ def fail(message: str, code: int = 2) -> None:
 
 
 def _load(path: Path):
+    from agents.config import ConfigError, load_config
+
     try:
         return load_config(path)
     except ConfigError as error:
@@ -51,6 +50,8 @@ def _load(path: Path):
 
 
 def _load_variants(path: Path):
+    from agents.config import ConfigError, load_variants
+
     try:
         return load_variants(path)
     except ConfigError as error:
@@ -75,7 +76,10 @@ def _progress(quiet: bool):
         yield start
 
 
-_money = format_money
+def _money(value: float) -> str:
+    from agents.report import format_money
+
+    return format_money(value)
 
 
 def _count(value: float) -> str:
@@ -120,6 +124,9 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
         highlight=False,
     )
     if cfg.market.model == "historical":
+        from agents.config import ConfigError
+        from agents.scenario import build_markets, describe_markets
+
         try:
             markets = describe_markets(*build_markets(cfg))
         except ConfigError as error:
@@ -170,6 +177,8 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
 
 def _heldout(cfg, market, paths: int | None, seed: int | None) -> tuple[int, int]:
     """Held-out path count (a history's windows cap it) and seed."""
+    from agents.scenario import path_count
+
     return path_count(market, paths or cfg.data.heldout_paths), cfg.data.heldout_seed if seed is None else seed
 
 
@@ -180,16 +189,27 @@ def evaluate(
     seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+    tables: list[Path] = typer.Option(
+        None, "--table", help="Also score this hedge table (folder or table.json; repeatable); it must be "
+                              "exported for the same book, reference spot and schedule."),
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
-    cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet)
+    cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet, tables or ())
     _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
 
 
-def _score(source: Path, paths: int | None, seed: int | None, quiet: bool):
-    """Policies of a config or run folder on its held-out paths, with CIs and quotes."""
+def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=()):
+    """Policies of a config or run folder (and hedge tables) on its held-out paths, with CIs and quotes."""
+    from agents.evaluate import evaluate_with_quotes
+    from agents.table import TableError, tables_as_policies
+
     with _progress(quiet) as start:
         cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
+        try:
+            loaded, table_kinds = tables_as_policies(tables, problem)
+        except TableError as error:
+            fail(str(error))
+        policies, kinds = {**policies, **loaded}, {**kinds, **table_kinds}
         n_paths, seed = _heldout(cfg, market, paths, seed)
         evaluation = evaluate_with_quotes(
             problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
@@ -204,6 +224,9 @@ def _reference(cfg, policies) -> str | None:
 
 
 def _train(cfg, config: Path, runs_dir: Path, quiet: bool):
+    from agents.config import ConfigError
+    from agents.training import train, write_run
+
     try:
         with _progress(quiet) as start:
             training = train(cfg, start)
@@ -237,6 +260,9 @@ def run(
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
+    from agents.evaluate import evaluate_with_quotes, write_metrics
+    from agents.report import build_report
+
     run_dirs = []
     variants = _load_variants(config)
     sweep = len(variants) > 1
@@ -251,6 +277,8 @@ def run(
                 reference=_reference(cfg, training.policies), bootstrap_samples=cfg.report.bootstrap_samples,
             )
         write_metrics(evaluation, run_dir)
+        if cfg.export.policy is not None:
+            _export(cfg, training.problem, training.policies, cfg.export.policy, run_dir / "tables" / cfg.export.policy)
         if not sweep:
             build_report(run_dir)
         _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
@@ -271,6 +299,8 @@ def quote(
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
     cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet)
+    from agents.report import format_count
+
     rows = evaluation.to_records()
     if as_json:
         keys = ("mark", "quote_bid", "quote_ask", "cvar_bid", "cvar_ask", "spread_bid", "spread_ask",
@@ -297,6 +327,9 @@ def quote(
 @app.command()
 def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run`.")) -> None:
     """Rebuild report.html of a run folder from its saved results."""
+    from agents.config import ConfigError
+    from agents.report import build_report
+
     if not (run_dir / "metrics.json").is_file():
         fail(f"{run_dir}: no metrics.json (a folder written by `rehedge run` has one)")
     sweep = run_dir / "sweep.json"
@@ -311,8 +344,85 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehe
     console.print(f"report: {path} ({path.stat().st_size / 1e6:.2f} MB)", highlight=False)
 
 
+def _export(cfg, problem, policies, name: str, folder: Path) -> Path:
+    from agents.table import TableError, export_policy
+
+    try:
+        folder = export_policy(cfg, problem, policies, name, folder)
+    except TableError as error:
+        fail(str(error))
+    size = sum(f.stat().st_size for f in folder.iterdir())
+    errors.print(f"hedge table of {name}: {folder} ({size / 1e6:.2f} MB)", markup=False, highlight=False)
+    return folder
+
+
+@app.command()
+def export(
+    run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run` or `rehedge train`."),
+    policy: str = typer.Option(None, "--policy", help="Policy to export (default: export.policy of the config)."),
+    out: Path = typer.Option(None, "--out", help="Table folder to write (default: RUN_DIR/tables/POLICY)."),
+) -> None:
+    """Write a policy of a run as a hedge table: targets.csv, band.csv and table.json (see README)."""
+    from agents.config import ConfigError
+    from agents.training import load_run
+
+    try:
+        run = load_run(run_dir)
+    except ConfigError as error:
+        fail(str(error))
+    policies = {**run.baselines, **run.agents}
+    name = policy or run.config.export.policy
+    if name is None:
+        fail(f"no policy chosen: give --policy NAME or set export.policy; policies: {', '.join(policies)}")
+    folder = _export(run.config, run.problem, policies, name, out or run_dir / "tables" / name)
+    console.print(f"hedge table: {folder}", highlight=False)
+
+
+@app.command()
+def advise(
+    table: Path = typer.Argument(..., help="Hedge table folder (or its table.json)."),
+    spot: float = typer.Option(..., "--spot", help="Spot price of the underlying, currency per share."),
+    days_left: float = typer.Option(..., "--days-left", help="Days left to the hedging horizon."),
+    holding: float = typer.Option(..., "--holding", help="Current holding of the underlying, shares (- short)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of text."),
+) -> None:
+    """One decision from a hedge table: target holding, trade, no-trade band, clamping, cautions."""
+    from agents.table import HedgeTable, TableError, advice
+
+    try:
+        record = advice(HedgeTable.load(table), spot, days_left, holding)
+    except TableError as error:
+        fail(str(error))
+    if as_json:
+        sys.stdout.write(json.dumps({**record, "caution": CAUTION}, indent=2) + "\n")
+        return
+    trade = record["trade_shares"]
+    action = "no trade" if trade == 0 else f"{'buy' if trade > 0 else 'sell'} {abs(trade):,.6g} shares"
+    lines = [
+        f"hedge table {record['table']} (policy {record['policy']}, config {record['config']}, "
+        f"created {record['created']})",
+        f"at spot {spot:g} (moneyness {record['moneyness']:.4f}), {days_left:g} days left, holding {holding:,.6g} shares:",
+        f"  target holding  {record['target_shares']:,.6g} shares",
+        f"  trade           {action}",
+    ]
+    if record["band_lower_shares"] is None:
+        lines.append("  no-trade band   none at this point (the policy trades to its target from any holding)")
+    else:
+        where = "inside" if record["inside_band"] else "outside"
+        lines.append(f"  no-trade band   [{record['band_lower_shares']:,.6g}, {record['band_upper_shares']:,.6g}] "
+                     f"shares; the holding is {where} it")
+    for note in record["clamping"]:
+        lines.append(f"  CLAMPED: {note}")
+    console.print("\n".join(lines), highlight=False, markup=False)
+    console.print(CAUTION, style="dim", highlight=False)
+
+
 def _policies_of(source: Path, start):
     """Config or run folder -> (config, problem, held-out market, policies, tuning, kinds)."""
+    from agents.config import ConfigError
+    from agents.scenario import build_markets, build_problem, prepare_baselines
+    from agents.training import load_run
+
     if source.is_dir():
         try:
             run = load_run(source)

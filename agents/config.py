@@ -574,6 +574,12 @@ class ExportSpec(_Spec):
     """Policy export settings."""
 
     policy: PolicyName | None = Field(None, description="Name of the policy to export; None = none chosen.")
+    moneyness_points: int = Field(101, ge=2, description="Hedge table nodes in moneyness (spot / reference spot).")
+    holding_points: int = Field(41, ge=2, description="Hedge table nodes in the current holding, shares.")
+    moneyness_width: float = Field(
+        4.0, gt=0, description="Half-width of the table's moneyness domain, in standard deviations of log spot "
+                               "over the horizon (pricing volatility).")
+    currency: str | None = Field(None, description="Currency label written into the hedge table's sidecar.")
 
 
 # ---------------------------------------------------------------------------

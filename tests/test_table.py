@@ -1,0 +1,341 @@
+"""Hedge tables: round trip to the source policy's objective, refusal of tampered or foreign tables,
+clamping, the Policy protocol, and the export / advise / evaluate commands."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+import sys
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from agents.baselines import DeltaHedge, FixedBand, WhalleyWilmottBand
+from agents.cli import CAUTION, app
+from agents.config import ConfigError, parse_config
+from agents.grid_dp import GridDPAgent
+from agents.policy import Policy
+from agents.table import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, TableGrid, export_table
+from hedge_env.book import Book, MarkParameters, OptionLeg
+from hedge_env.frictions import Frictions
+from hedge_env.market import GBMMarket
+from hedge_env.objective import Objective
+from hedge_env.problem import HedgingProblem, Schedule
+from hedge_env.rollout import rollout_many
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def reference_like(cost_rate: float = 0.005) -> HedgingProblem:
+    """The reference GBM case made small: short one ATM 10-day call, 10 daily rehedges, kappa 1."""
+    return HedgingProblem(
+        book=Book((OptionLeg("call", 100.0, 10.0, -1.0),)),
+        marks=MarkParameters(volatility=0.2),
+        frictions=Frictions(cost_rate=cost_rate),
+        objective=Objective(risk_aversion=1.0),
+        schedule=Schedule(steps=10, step_days=1.0),
+        reference_spot=100.0,
+    )
+
+
+@pytest.fixture(scope="module")
+def exported(tmp_path_factory):
+    """Grid DP and two band baselines on the small reference case, each exported on the default grid."""
+    folder = tmp_path_factory.mktemp("tables")
+    problem = reference_like()
+    sources = {
+        "grid_dp": GridDPAgent(problem, drift=0.0, volatility=0.2, spot_points=61, holding_points=81).fit(),
+        "whalley_wilmott": WhalleyWilmottBand(problem, risk_aversion=5.0),
+        "fixed_band": FixedBand(problem, half_width=0.05),
+    }
+    tables = {name: HedgeTable.load(export_table(policy, problem, folder / name, kind=name))
+              for name, policy in sources.items()}
+    return problem, sources, tables, folder
+
+
+def test_default_grid_table_reaches_the_source_objective_within_one_percent_on_heldout_paths(exported):
+    # Issue 5, item 5: the loaded table, scored on held-out paths, within 1% of the source's objective.
+    # Default grid: every rehedge time x 101 moneyness nodes (+-4 sd of log spot) x 41 holding nodes.
+    problem, sources, tables, _ = exported
+    policies = {**sources, **{f"{name}.table": table for name, table in tables.items()}}
+    results = rollout_many(problem, policies, GBMMarket(spot=100.0, drift=0.0, volatility=0.2),
+                           n_paths=6000, seed=12345)
+    for name in sources:
+        source, table = results[name].reward, results[f"{name}.table"].reward
+        gap = table.mean() - source.mean()
+        assert abs(gap) <= 0.01 * abs(source.mean()), (name, source.mean(), table.mean())
+
+
+def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
+    problem, _, tables, _ = exported
+    table = tables["grid_dp"]
+    meta = table.meta
+    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 1
+    n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
+    assert (n_days, n_money, n_hold) == (10, 101, 41)
+    assert meta["grid"]["days_left"] == [float(d) for d in range(1, 11)]  # days left at each rehedge
+    lines = (table.path / "targets.csv").read_text().splitlines()
+    assert lines[0] == ",".join(TARGET_COLUMNS) and len(lines) == 1 + n_days * n_money * n_hold
+    band = (table.path / "band.csv").read_text().splitlines()
+    assert band[0] == ",".join(BAND_COLUMNS) and len(band) == 1 + n_days * n_money
+    assert meta["book"]["notional_shares"] == 1.0 and meta["book"]["reference_spot"] == 100.0
+    assert meta["frictions"]["cost_rate"] == 0.005 and meta["objective"]["risk_aversion"] == 1.0
+    assert meta["policy"]["parameters"]["holding_points"] == 81
+    assert meta["units"]["holding_shares"].startswith("shares")
+    assert meta["domain"]["holding_shares"] == [meta["grid"]["holding_shares"][0], meta["grid"]["holding_shares"][-1]]
+
+
+def test_decide_at_grid_nodes_returns_the_csv_targets_and_keeps_holdings_inside_the_band(exported):
+    _, _, tables, _ = exported
+    table = tables["whalley_wilmott"]
+    rows = np.loadtxt(table.path / "targets.csv", delimiter=",", skiprows=1)
+    decision = table.decide(rows[:, 1] * table.reference_spot, rows[:, 0], rows[:, 2])
+    inside = decision.inside_band
+    assert np.allclose(decision.target_shares[~inside], rows[~inside, 3], rtol=0, atol=1e-12)
+    assert np.array_equal(decision.trade_shares[inside], np.zeros(inside.sum()))
+    assert 0 < inside.mean() < 1 and not decision.clamped.any()
+    # The band's edges hold the policy's own no-trade region: Whalley-Wilmott's band around delta.
+    source = WhalleyWilmottBand(table_problem := reference_like(), risk_aversion=5.0)
+    spot, days = np.array([97.0, 100.0, 104.0]), np.array([3.0, 3.0, 3.0])
+    centre = -table_problem.book.value_and_delta(spot, 7.0, table_problem.marks)[1]
+    half = source.half_width_shares(spot, 7.0)
+    at = table.decide(spot, days, centre)
+    assert np.allclose(at.band_lower_shares, centre - half, atol=2e-3)
+    assert np.allclose(at.band_upper_shares, centre + half, atol=2e-3)
+
+
+def test_points_outside_the_domain_are_clamped_to_its_edge_and_flagged(exported):
+    _, _, tables, _ = exported
+    table = tables["fixed_band"]
+    (d_low, d_high), (s_low, s_high), (h_low, h_high) = (table.domain[k] for k in ("days_left", "spot", "holding_shares"))
+    spot = np.array([100.0, s_high * 1.2, s_low * 0.8, 100.0, 100.0, 100.0])
+    days = np.array([5.0, 5.0, 5.0, d_high + 3.0, d_low / 2.0, 5.0])
+    held = np.array([0.2, 0.2, 0.2, 0.2, 0.2, h_high + 1.0])
+    decision = table.decide(spot, days, held)
+    assert decision.clamped.tolist() == [False, True, True, True, True, True]
+    assert decision.clamped_moneyness.tolist() == [False, True, True, False, False, False]
+    assert decision.clamped_days_left.tolist() == [False, False, False, True, True, False]
+    assert decision.clamped_holding.tolist() == [False] * 5 + [True]
+    edges = table.decide(np.array([s_high, s_low, 100.0, 100.0, 100.0]), np.array([5.0, 5.0, d_high, d_low, 5.0]),
+                         np.array([0.2, 0.2, 0.2, 0.2, h_high]))
+    assert np.array_equal(decision.target_shares[1:], edges.target_shares)
+    with pytest.raises(TableError, match="spot must be a positive finite number"):
+        table.decide(-1.0, 5.0, 0.0)
+
+
+def test_table_is_a_policy_and_acts_per_share_of_notional(exported):
+    problem, _, tables, _ = exported
+    table = tables["grid_dp"]
+    assert isinstance(table, Policy) and table.name == "grid_dp.table"
+    obs = np.column_stack([np.linspace(0.95, 1.05, 5), np.full(5, 4 / 365), np.linspace(0.1, 0.9, 5)])
+    assert np.array_equal(table.act(obs), table.decide(obs[:, 0] * 100.0, np.full(5, 4.0), obs[:, 2]).target_shares)
+    table.check_problem(problem)
+    other = HedgingProblem(book=Book((OptionLeg("call", 105.0, 10.0, -1.0),)), schedule=Schedule(steps=10))
+    with pytest.raises(TableError, match="exported for another book"):
+        table.check_problem(other)
+
+
+def _copy(table: HedgeTable, tmp_path: Path) -> Path:
+    copy = tmp_path / "copy"
+    shutil.copytree(table.path, copy)
+    return copy
+
+
+def test_a_changed_csv_byte_is_refused_by_its_checksum(exported, tmp_path):
+    _, _, tables, _ = exported
+    copy = _copy(tables["fixed_band"], tmp_path)
+    data = bytearray((copy / "targets.csv").read_bytes())
+    position = data.index(b"\n", 200) - 1  # the last digit of a target
+    data[position] = ord("1") if data[position] != ord("1") else ord("2")
+    (copy / "targets.csv").write_bytes(bytes(data))
+    with pytest.raises(TableError, match=r"targets.csv: SHA-256 .* does not match the sidecar"):
+        HedgeTable.load(copy)
+    (copy / "targets.csv").unlink()
+    with pytest.raises(TableError, match="targets.csv: cannot read"):
+        HedgeTable.load(copy)
+
+
+def test_another_format_version_is_refused(exported, tmp_path):
+    _, _, tables, _ = exported
+    copy = _copy(tables["fixed_band"], tmp_path)
+    meta = json.loads((copy / "table.json").read_text())
+    meta["format_version"] = 2
+    (copy / "table.json").write_text(json.dumps(meta))
+    with pytest.raises(TableError, match="format_version 2 is not supported by this reader"):
+        HedgeTable.load(copy / "table.json")
+
+
+def test_a_failed_export_writes_nothing(tmp_path):
+    problem = reference_like()
+
+    class Broken:
+        name = "broken"
+
+        def act(self, obs):
+            return np.where(obs[:, 0] > 1.1, np.nan, 0.5)
+
+    with pytest.raises(TableError, match="non-finite targets"):
+        export_table(Broken(), problem, tmp_path / "broken", grid=TableGrid(moneyness_points=11, holding_points=5))
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_export_replaces_an_older_table_whole(tmp_path):
+    problem = reference_like()
+    folder = tmp_path / "t"
+    small = TableGrid(moneyness_points=11, holding_points=5)
+    export_table(DeltaHedge(problem), problem, folder, grid=small)
+    export_table(FixedBand(problem, half_width=0.1), problem, folder, grid=small)
+    assert HedgeTable.load(folder).meta["policy"]["name"] == "fixed_band"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["t"]
+
+
+runner = CliRunner()
+
+
+def test_advise_prints_target_trade_band_and_cautions_with_exit_code_0(exported):
+    _, _, tables, _ = exported
+    path = str(tables["whalley_wilmott"].path)
+    done = runner.invoke(app, ["advise", path, "--spot", "101.5", "--days-left", "4", "--holding", "0.1", "--json"])
+    assert done.exit_code == 0, done.stderr
+    out = json.loads(done.stdout)
+    expected = tables["whalley_wilmott"].decide(101.5, 4.0, 0.1)
+    assert out["target_shares"] == float(expected.target_shares)
+    assert out["trade_shares"] == pytest.approx(out["target_shares"] - 0.1, abs=1e-12)
+    assert out["band_lower_shares"] == float(expected.band_lower_shares) and not out["inside_band"]
+    assert out["clamped"] is False and out["caution"] == CAUTION
+    text = runner.invoke(app, ["advise", path, "--spot", "101.5", "--days-left", "4", "--holding", "0.1"])
+    assert text.exit_code == 0
+    assert f"target holding  {out['target_shares']:,.6g} shares" in text.stdout and "buy" in text.stdout
+    assert "no-trade band" in text.stdout and "Decision support, not advice" in text.stdout
+
+
+def test_advise_says_when_it_clamped(exported):
+    _, _, tables, _ = exported
+    path = str(tables["whalley_wilmott"].path)
+    done = runner.invoke(app, ["advise", path, "--spot", "500", "--days-left", "4", "--holding", "-48"])
+    assert done.exit_code == 0
+    assert "CLAMPED: spot 500 is outside the table's domain" in done.stdout
+    assert "CLAMPED: holding_shares -48 is outside" in done.stdout
+
+
+@pytest.mark.parametrize("edit, args, message", [
+    (None, ("--spot", "0", "--days-left", "4", "--holding", "0"), "error: spot must be a positive finite number"),
+    ("tamper", ("--spot", "100", "--days-left", "4", "--holding", "0"), "band.csv: SHA-256"),
+    ("missing", ("--spot", "100", "--days-left", "4", "--holding", "0"), "no hedge table here"),
+])
+def test_advise_errors_are_one_line_with_exit_code_2(exported, tmp_path, edit, args, message):
+    _, _, tables, _ = exported
+    copy = _copy(tables["fixed_band"], tmp_path)
+    if edit == "tamper":
+        with open(copy / "band.csv", "a") as handle:
+            handle.write("1,1,0,0,0,0\n")
+    if edit == "missing":
+        (copy / "table.json").unlink()
+    done = runner.invoke(app, ["advise", str(copy), *args])
+    assert done.exit_code == 2
+    assert done.stderr.count("\n") == 1 and message in done.stderr and done.stdout == ""
+
+
+def test_advise_imports_neither_scikit_learn_nor_pandas_matplotlib_gymnasium(exported):
+    _, _, tables, _ = exported
+    script = (
+        "import sys\nfrom agents.cli import main\n"
+        f"sys.argv = ['rehedge', 'advise', {str(tables['fixed_band'].path)!r}, '--spot', '100', "
+        "'--days-left', '3', '--holding', '0.5', '--json']\n"
+        "try:\n    main()\nexcept SystemExit as exit:\n    assert exit.code in (0, None), exit.code\n"
+        "heavy = ('sklearn', 'pandas', 'matplotlib', 'gymnasium', 'scipy', 'joblib', 'hedge_env')\n"
+        "print(sorted({m.split('.')[0] for m in sys.modules} & set(heavy)))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=ROOT)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip().splitlines()[-1] == "[]"
+
+
+CONFIG = """
+name = "table-test"
+seed = 5
+
+[market]
+model = "gbm"
+spot = 100.0
+volatility = 0.2
+
+[[book.options]]
+kind = "call"
+strike = 100.0
+expiry_days = 8
+quantity = -2
+multiplier = 50
+
+[schedule]
+steps = 8
+
+[frictions]
+cost_rate = 0.002
+
+[objective]
+risk_aversion = 0.01
+
+[data]
+train_paths = 400
+heldout_paths = 1000
+chunk_paths = 500
+
+[[baselines]]
+kind = "delta"
+
+[[baselines]]
+kind = "whalley_wilmott"
+risk_aversion = "tune"
+
+[export]
+policy = "whalley_wilmott"
+moneyness_points = 61
+holding_points = 21
+currency = "EUR"
+"""
+
+
+def test_export_grid_settings_are_validated_with_their_key():
+    data = tomllib.loads(CONFIG)
+    data["export"]["holding_points"] = 1
+    with pytest.raises(ConfigError, match=r"^export.holding_points: must be >= 2, got 1$"):
+        parse_config(data)
+
+
+def rehedge(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", *args],
+                          capture_output=True, text=True, cwd=ROOT)
+
+
+def test_run_writes_the_table_of_export_policy_and_evaluate_scores_tables_beside_the_run(tmp_path):
+    config = tmp_path / "c.toml"
+    config.write_text(CONFIG)
+    done = rehedge("run", str(config), "--runs-dir", str(tmp_path / "runs"), "--json", "--quiet")
+    assert done.returncode == 0, done.stderr
+    run_dir = Path(json.loads(done.stdout)["run"])
+    table = HedgeTable.load(run_dir / "tables" / "whalley_wilmott")
+    meta = table.meta
+    assert meta["units"]["currency"] == "EUR" and meta["config"]["name"] == "table-test"
+    assert meta["book"]["notional_shares"] == 100.0
+    manifest = json.loads((run_dir / "manifest.json").read_text())
+    assert meta["config"]["hash"] == manifest["config_hash"]
+    assert meta["policy"]["parameters"]["risk_aversion"] == manifest["tuned"]["whalley_wilmott"]["risk_aversion"]
+
+    out = tmp_path / "delta-table"
+    done = runner.invoke(app, ["export", str(run_dir), "--policy", "delta", "--out", str(out)])
+    assert done.exit_code == 0, done.stderr
+    done = runner.invoke(app, ["evaluate", str(run_dir), "--table", str(out), "--table", str(table.path),
+                               "--json", "--quiet"])
+    assert done.exit_code == 0, done.stderr
+    scored = {p["name"]: p for p in json.loads(done.stdout)["policies"]}
+    assert scored["delta.table"]["kind"] == "table"
+    for name in ("delta", "whalley_wilmott"):  # a coarse 61 x 21 grid, still within 1% here
+        assert scored[f"{name}.table"]["objective"] == pytest.approx(scored[name]["objective"], rel=0.01)
+
+    done = runner.invoke(app, ["export", str(run_dir), "--policy", "nope"])
+    assert done.exit_code == 2 and done.stderr.strip().startswith("error: unknown policy 'nope'; policies: ")
