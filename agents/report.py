@@ -539,9 +539,7 @@ def _scenario_html(scored: _Scored) -> str:
     facts = [
         ("config", config.name),
         ("description", config.description or "(none)"),
-        ("market", f"{market.model.upper()}: spot {market.spot:g}, drift {_percent(market.drift)}, "
-                   f"volatility {_percent(market.volatility)}, rate {_percent(market.rate)}, "
-                   f"dividend yield {_percent(market.dividend_yield)} (annual)"),
+        ("market", market.describe()),
         ("pricing", f"Black-Scholes marks at volatility {_percent(run.problem.marks.volatility)}, "
                     f"{config.pricing.days_per_year:g} days per year"),
         ("schedule", f"{schedule.steps} rehedges every {_days(schedule.step_days)} "

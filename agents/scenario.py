@@ -10,7 +10,7 @@ from agents.config import Config
 from agents.tuning import tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
-from hedge_env.market import GBMMarket, PathGenerator
+from hedge_env.market import GBMMarket, HestonMarket, MertonMarket, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 
@@ -61,7 +61,16 @@ def build_market(config: Config) -> PathGenerator:
     market = config.market
     if market.model == "gbm":
         return GBMMarket(spot=market.spot, drift=market.drift, volatility=market.volatility)
-    raise ValueError(f"market.model: no generator for {market.model!r}")  # the schema admits no other yet
+    if market.model == "heston":
+        return HestonMarket(spot=market.spot, drift=market.drift, initial_variance=market.initial_variance,
+                            mean_reversion=market.mean_reversion, long_run_variance=market.long_run_variance,
+                            vol_of_vol=market.vol_of_vol, correlation=market.correlation,
+                            variance_observed=market.variance_observed)
+    if market.model == "merton":
+        return MertonMarket(spot=market.spot, drift=market.drift, volatility=market.volatility,
+                            jump_intensity=market.jump_intensity, jump_mean=market.jump_mean,
+                            jump_std=market.jump_std)
+    raise ValueError(f"market.model: no generator for {market.model!r}")  # the schema admits no other
 
 
 def build_baseline(spec, problem: HedgingProblem):
