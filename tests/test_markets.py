@@ -313,33 +313,32 @@ def test_default_pricing_volatility_is_the_expected_mean_variance_for_heston_and
 # ---------------------------------------------------------------------------
 
 
+FAST_TREES = {"max_iter": 10, "max_leaf_nodes": 7}
+
+
 def small_config(name: str, **market) -> dict:
-    """A shipped config at small sizes: delta, no hedge and a fixed band; linear and fitted-Q agents."""
+    """A shipped config at small sizes (10 daily rehedges of its book): delta, no hedge and a fixed
+    band; linear and fitted-Q agents."""
     data = config_data(name)
     data.pop("sweep", None)
     data["market"].update(market)
-    data["data"] = {"train_paths": 3_000, "heldout_paths": 4_000, "chunk_paths": 2_048}
+    data["schedule"]["steps"] = 10
+    data["data"] = {"train_paths": 1_500, "heldout_paths": 2_000, "chunk_paths": 2_048}
     data["baselines"] = [{"kind": "no_hedge"}, {"kind": "delta"}, {"kind": "fixed_band", "half_width": 0.05}]
-    data["agents"] = [{"kind": "linear"},
-                      {"kind": "fitted_q", "regressor_params": {"max_iter": 20, "max_leaf_nodes": 7}}]
+    data["agents"] = [{"kind": "linear"}, {"kind": "fitted_q", "regressor_params": FAST_TREES}]
     data["report"] = {"reference_policy": "delta", "bootstrap_samples": 200}
     return data
 
 
-@pytest.mark.parametrize("name, market", [
-    ("demo.toml", {}),
-    ("heston.toml", {"variance_observed": False}),
-    ("heston.toml", {"variance_observed": True}),
-    ("merton.toml", {}),
-], ids=["gbm", "heston", "heston-variance-observed", "merton"])
-def test_agents_train_and_evaluate_unchanged_on_every_market_model(name, market):
-    config = parse_config(small_config(name, **market))
+def trained_and_evaluated(data: dict):
+    config = parse_config(data)
     training = train(config)
-    observed = training.market.observed_factors
-    assert observed == (("variance",) if market.get("variance_observed") else ())
     evaluation = evaluate_policies(training.problem, training.policies, training.market, config.data.heldout_paths,
                                    config.data.heldout_seed, training.kinds, config.data.chunk_paths)
-    table = evaluation.table
+    return config, training, evaluation.table
+
+
+def check_agents_learned_to_hedge(table) -> None:
     assert set(table.index) == {"no_hedge", "delta", "fixed_band", "linear", "fitted_q"}
     assert np.all(np.isfinite(table["objective"])) and np.all(np.isfinite(table["vs_reference_mean"]))
     # Hedging at all beats not hedging by far on these books: the agents learned something of the hedge.
@@ -348,23 +347,30 @@ def test_agents_train_and_evaluate_unchanged_on_every_market_model(name, market)
         assert 0.0 < table.loc[agent, "turnover"] < 2.0 * table.loc["delta", "turnover"]
 
 
-def test_agents_can_use_the_observed_variance_in_their_basis():
+@pytest.mark.parametrize("name", ["demo.toml", "heston.toml", "merton.toml"], ids=["gbm", "heston", "merton"])
+def test_agents_train_and_evaluate_unchanged_on_every_market_model(name):
+    config, training, table = trained_and_evaluated(small_config(name, **(
+        {"variance_observed": False} if name == "heston.toml" else {})))
+    assert training.market.observed_factors == ()
+    check_agents_learned_to_hedge(table)
+
+
+def test_agents_observe_the_heston_variance_and_can_use_it_in_their_basis():
     data = small_config("heston.toml", variance_observed=True)
     data["agents"] = [{"kind": "linear", "basis": ["gap", "gap^2", "gap^2*variance", "abs_gap", "abs_gap*variance"]},
                       {"kind": "fitted_q", "basis": ["moneyness", "hedge", "gap", "abs_gap", "variance"],
-                       "regressor_params": {"max_iter": 20, "max_leaf_nodes": 7}}]
-    config = parse_config(data)
-    training = train(config)
-    paths = training.market.generate(500, config.schedule.steps, training.problem.dt_years, seed=5)
+                       "regressor_params": FAST_TREES}]
+    config, training, table = trained_and_evaluated(data)
+    check_agents_learned_to_hedge(table)
     for agent in training.agents.values():
         assert agent.factor_names == ("variance",)
-    obs = np.column_stack([paths.spot[:, 10] / config.market.spot,
-                           np.full(500, training.problem.years_to_horizon(10)),
-                           np.full(500, 0.5), paths.factors["variance"][:, 10]])
+    k, n = 5, 500
+    paths = training.market.generate(n, config.schedule.steps, training.problem.dt_years, seed=5)
+    obs = np.column_stack([paths.spot[:, k] / config.market.spot, np.full(n, training.problem.years_to_horizon(k)),
+                           np.full(n, 0.5), paths.factors["variance"][:, k]])
     low_variance, high_variance = obs.copy(), obs.copy()
     low_variance[:, 3], high_variance[:, 3] = 0.01, 0.16
     linear = training.agents["linear"]
-    assert np.all(np.isfinite(linear.act(obs)))
     # The variance enters the fitted value: the same states at other variances can get other targets.
-    assert linear.coef_[10, 2] != 0.0 and not np.array_equal(linear.act(low_variance), linear.act(high_variance))
-    assert np.all(np.isfinite(training.agents["fitted_q"].act(obs)))
+    assert linear.coef_[k, 2] != 0.0 and not np.array_equal(linear.act(low_variance), linear.act(high_variance))
+    assert np.all(np.isfinite(linear.act(obs))) and np.all(np.isfinite(training.agents["fitted_q"].act(obs)))
