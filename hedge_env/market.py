@@ -235,6 +235,12 @@ class HestonMarket(SimulatedMarket):
         a_coef = k2 + 0.5 * k4  # E[exp(a_coef v')] is what the martingale correction divides out
         drift_step = self.drift * dt_years
 
+        # k3 = k4, so sqrt(k3 v + k4 v') Z = sqrt(v + v') (sqrt(k3) Z): scale the spot shocks once.
+        shocks[:, 1] *= math.sqrt(k3)
+        guard_mean = mean_const <= 0.0      # only then can m be 0 (and s^2 with it)
+        guard_spread = spread_const <= 0.0  # only then can psi be 0
+        may_fail = a_coef > 0.0             # A <= 0: E[exp(A v')] <= 1 always exists, nothing to check
+
         n = n_paths
         m, psi, t, b2, a, shift, tmp = (np.empty(n) for _ in range(7))
         for k in range(n_steps):
@@ -249,11 +255,14 @@ class HestonMarket(SimulatedMarket):
                 np.multiply(v, spread_slope, out=psi)
                 psi += spread_const
                 np.multiply(m, m, out=tmp)
-                np.maximum(tmp, 1e-300, out=tmp)
+                if guard_mean:
+                    np.maximum(tmp, 1e-300, out=tmp)
                 psi /= tmp
                 exponential = psi > QE_PSI_SWITCH
-                # Quadratic branch on every path (psi clipped into its range), v' = a (b + Z)^2.
-                np.clip(psi, 1e-12, QE_PSI_SWITCH, out=t)
+                # Quadratic branch on every path (psi capped into its range), v' = a (b + Z)^2.
+                np.minimum(psi, QE_PSI_SWITCH, out=t)
+                if guard_spread:
+                    np.maximum(t, 1e-12, out=t)
                 np.divide(2.0, t, out=t)                 # t = 2 / psi
                 np.subtract(t, 1.0, out=b2)
                 b2 *= t
@@ -266,7 +275,7 @@ class HestonMarket(SimulatedMarket):
                 tmp += z_var
                 np.square(tmp, out=v_next)
                 v_next *= a
-                # Martingale correction: shift = -log E[exp(a_coef v')] = A b^2 a / (1 - 2 A a) ... negated.
+                # Martingale correction: shift = -log E[exp(A v')] = log(1 - 2 A a) / 2 - A b^2 a / (1 - 2 A a).
                 np.multiply(a, -2.0 * a_coef, out=tmp)
                 tmp += 1.0                               # 1 - 2 A a (> 0 where the correction exists)
                 with np.errstate(invalid="ignore", divide="ignore"):
@@ -275,19 +284,17 @@ class HestonMarket(SimulatedMarket):
                     np.multiply(b2, a, out=t)
                     t *= a_coef
                     t /= tmp
-                    shift -= t                           # -log M = -A b^2 a / (1 - 2 A a) + log(1 - 2 A a) / 2
-                uncorrected = tmp <= 0.0
+                    shift -= t
+                uncorrected = tmp <= 0.0 if may_fail else None
                 if exponential.any():
                     self._exponential_branch(np.flatnonzero(exponential), m, psi, z_var, v_next, shift,
                                              uncorrected, a_coef)
-                if uncorrected.any():  # no finite E[exp(A v')]: Andersen's fallback, the plain drift term
+                if may_fail and uncorrected.any():  # no finite E[exp(A v')]: Andersen's fallback, the plain term
                     rows = np.flatnonzero(uncorrected)
                     shift[rows] = k0 + (k1 + 0.5 * k3) * v[rows]
-            # log S' = log S + drift dt + shift - k3/2 v + k2 v' + sqrt(k3 v + k4 v') Z_S
-            # (the correction's -(k1 + k3/2) v and the k1 v of the scheme cancel, leaving -k3/2 v)
-            np.multiply(v, k3, out=tmp)
-            np.multiply(v_next, k4, out=t)
-            tmp += t
+            # log step (less drift dt) = shift - k3/2 v + k2 v' + sqrt(k3 v + k4 v') Z_S; the correction's
+            # -(k1 + k3/2) v and the scheme's k1 v cancel, leaving -k3/2 v. The drift is added at the end.
+            np.add(v, v_next, out=tmp)
             np.sqrt(tmp, out=tmp)
             tmp *= z_spot
             np.multiply(v, -0.5 * k3, out=t)
@@ -295,8 +302,8 @@ class HestonMarket(SimulatedMarket):
             np.multiply(v_next, k2, out=t)
             tmp += t
             tmp += shift
-            np.add(log_spot[k], drift_step, out=log_spot[k + 1])
-            log_spot[k + 1] += tmp
+            np.add(log_spot[k], tmp, out=log_spot[k + 1])
+        log_spot += (drift_step * np.arange(n_steps + 1))[:, None]
         np.exp(log_spot, out=log_spot)
         spot = log_spot.T.copy()  # path-major and C-contiguous, like every generator's paths
         spot[:, 0] = self.spot    # exactly the starting spot, not exp(log(spot)) one rounding away
@@ -312,10 +319,10 @@ class HestonMarket(SimulatedMarket):
         tail = ndtr(-z_var[rows])                        # 1 - U, accurate for large Z
         with np.errstate(divide="ignore"):
             v_next[rows] = np.where(tail < 1.0 - p, np.log((1.0 - p) / tail) / beta, 0.0)
-        finite = a_coef < beta
         with np.errstate(invalid="ignore", divide="ignore"):
             shift[rows] = -np.log(p + beta * (1.0 - p) / (beta - a_coef))
-        uncorrected[rows] = ~finite
+        if uncorrected is not None:
+            uncorrected[rows] = a_coef >= beta
 
 
 @dataclass(frozen=True)
