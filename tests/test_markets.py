@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 import tomllib
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -374,3 +375,18 @@ def test_agents_observe_the_heston_variance_and_can_use_it_in_their_basis():
     # The variance enters the fitted value: the same states at other variances can get other targets.
     assert linear.coef_[k, 2] != 0.0 and not np.array_equal(linear.act(low_variance), linear.act(high_variance))
     assert np.all(np.isfinite(linear.act(obs))) and np.all(np.isfinite(training.agents["fitted_q"].act(obs)))
+
+
+def test_the_gymnasium_env_on_heston_paths_shows_the_variance_and_passes_the_env_checker():
+    from gymnasium.utils.env_checker import check_env
+
+    from hedge_env.env import HedgingEnv, default_problem
+
+    problem, _ = default_problem()
+    env = HedgingEnv(problem, HestonMarket(spot=problem.reference_spot, variance_observed=True))
+    assert env.observation_space.shape == (4,)
+    obs, _ = env.reset(seed=3)
+    assert obs[3] == np.float32(0.04)  # the initial variance, appended after spot, time and holding
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        check_env(env)  # reference library: gymnasium.utils.env_checker (warnings allowed, errors not)
