@@ -365,6 +365,7 @@ def test_agents_observe_the_heston_variance_and_can_use_it_in_their_basis():
     check_agents_learned_to_hedge(table)
     for agent in training.agents.values():
         assert agent.factor_names == ("variance",)
+    assert training.agents["fitted_q"].tables_ is None  # a basis with the variance is off the tabulated grid
     k, n = 5, 500
     paths = training.market.generate(n, config.schedule.steps, training.problem.dt_years, seed=5)
     obs = np.column_stack([paths.spot[:, k] / config.market.spot, np.full(n, training.problem.years_to_horizon(k)),
