@@ -166,11 +166,16 @@ class HestonMarket(SimulatedMarket):
     violated or not. The log spot is integrated with the central (trapezoid)
     rule for the variance and the drift term is chosen so that
     ``E[S_{k+1} | S_k, v_k] = S_k exp(drift dt)`` exactly (the martingale
-    correction). Full-truncation Euler was the alternative: about as fast per
-    step, but biased at daily steps for the large vol of vol of equity markets
-    (it needs several sub-steps per day to match QE's accuracy, each costing a
-    whole step); QE costs one normal pair per step and a few array operations
-    more than Euler, so it is the faster way to a given accuracy.
+    correction). Full-truncation Euler was the alternative: about as cheap per
+    step, but biased at daily steps. Measured over 60 daily steps against
+    QuantLib's analytic price (1,000,000 paths each): with v0 = 0.09, kappa 1,
+    theta 0.06, xi 1, rho -0.9, Euler overprices the at-the-money call by
+    0.016 (5 standard errors) and the 110 call by 0.013 (10), QE stays within
+    1.2 standard errors at every strike; with the milder xi = 0.5, rho = -0.7
+    Euler is off by 3 standard errors at 110, QE by 0.3. Euler would need
+    several sub-steps a day, each costing a whole step, so QE is the faster
+    way to a given accuracy; it costs two normals per step and a few more
+    array operations than Euler.
 
     The variance path is the factor ``variance`` (annual variance, decimal^2);
     with ``variance_observed`` it is appended to the hedger's observation.
