@@ -34,6 +34,7 @@ from matplotlib.figure import Figure
 
 from agents.config import ConfigError
 from agents.training import Run, load_run
+from hedge_env.market import GivenPaths
 from hedge_env.rollout import rollout
 
 CAUTION = (
@@ -378,8 +379,10 @@ def _path_figure(scored: _Scored, paths, seed: int, colors: dict[str, str]) -> t
     days = schedule.step_days * np.arange(0, schedule.steps + 1)
     figure, axes = _figure(9.0, 3.6)
     ax = axes[0, 0]
+    # The market's observed factors (e.g. a variance) go with the path into the observations.
+    source = GivenPaths(paths, observed_factors=run.market.observed_factors)
     for name in names:
-        held = rollout(problem, policies[name], paths, keep_holdings=True, name=name).holdings[0]
+        held = rollout(problem, policies[name], source, 1, keep_holdings=True, name=name).holdings[0]
         # Holding over each rehedge interval; repeated at the horizon so the last interval shows.
         ax.plot(days, np.append(held, held[-1]), color=colors[name], drawstyle="steps-post", label=name)
     ax.set_xlabel("time (days from start)")

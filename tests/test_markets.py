@@ -23,8 +23,9 @@ import pytest
 from threadpoolctl import threadpool_limits
 
 from agents.config import ConfigError, parse_config
-from agents.evaluate import evaluate_policies
-from agents.training import train
+from agents.evaluate import evaluate_policies, write_metrics
+from agents.report import build_report
+from agents.training import train, write_run
 from hedge_env import pricing
 from hedge_env.market import BLOCK_PATHS, GBMMarket, HestonMarket, MertonMarket
 
@@ -356,13 +357,19 @@ def test_agents_train_and_evaluate_unchanged_on_every_market_model(name):
     check_agents_learned_to_hedge(table)
 
 
-def test_agents_observe_the_heston_variance_and_can_use_it_in_their_basis():
+def test_agents_observe_the_heston_variance_and_can_use_it_in_their_basis(tmp_path):
     data = small_config("heston.toml", variance_observed=True)
     data["agents"] = [{"kind": "linear", "basis": ["gap", "gap^2", "gap^2*variance", "abs_gap", "abs_gap*variance"]},
                       {"kind": "fitted_q", "basis": ["moneyness", "hedge", "gap", "abs_gap", "variance"],
                        "regressor_params": FAST_TREES}]
     config, training, table = trained_and_evaluated(data)
     check_agents_learned_to_hedge(table)
+    # The run folder and its report work with the extra observed column too.
+    folder = write_run(training, "# heston, variance observed\n", tmp_path)
+    evaluation = evaluate_policies(training.problem, training.policies, training.market, 500,
+                                   config.data.heldout_seed, training.kinds, config.data.chunk_paths)
+    write_metrics(evaluation, folder)
+    assert "Heston (QE scheme)" in build_report(folder).read_text()
     for agent in training.agents.values():
         assert agent.factor_names == ("variance",)
     assert training.agents["fitted_q"].tables_ is None  # a basis with the variance is off the tabulated grid
