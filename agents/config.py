@@ -4,7 +4,7 @@ A desk describes its book, market, frictions and risk appetite in one TOML file
 (see ``configs/demo.toml``).  :func:`load_config` reads and validates it into a
 fully resolved :class:`Config`: every default is filled in, including the ones
 that depend on other sections (``pricing.volatility`` from
-``market.volatility``, the data seeds from ``seed``, baseline volatilities and
+the market model's volatility, the data seeds from ``seed``, baseline volatilities and
 cost rates), so ``config.model_dump()`` is the "resolved config" written into
 run folders and :func:`config_hash` identifies it.
 
@@ -53,6 +53,8 @@ __all__ = [
     "Config",
     "GBMMarket",
     "HistoricalMarket",
+    "HestonMarket",
+    "MertonMarket",
     "MarketSpec",
     "OptionSpec",
     "BookSpec",
@@ -204,12 +206,83 @@ class _Spec(BaseModel):
 class GBMMarket(_Spec):
     """Geometric Brownian motion for the underlying."""
 
-    model: Literal["gbm"] = Field(description="Price model of the underlying; only 'gbm' so far.")
+    model: Literal["gbm"] = Field(description="Price model of the underlying.")
     spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
     drift: float = Field(0.0, description="Real-world drift of the underlying, annual decimal.")
     volatility: float = Field(gt=0, description="Real-world volatility of the underlying, annual decimal.")
     rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
     dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+    def pricing_volatility(self, horizon_years: float) -> float:
+        """Default mark volatility (pricing.volatility when not given): the model's volatility."""
+        return self.volatility
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"GBM: spot {self.spot:g}, drift {_pct(self.drift)}, volatility {_pct(self.volatility)}, "
+                f"rate {_pct(self.rate)}, dividend yield {_pct(self.dividend_yield)} (annual)")
+
+
+def _pct(value: float) -> str:
+    return f"{100 * value:g}%"
+
+
+class HestonMarket(_Spec):
+    """Heston stochastic volatility for the underlying (simulated with Andersen's QE scheme)."""
+
+    model: Literal["heston"] = Field(description="Price model of the underlying.")
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world expected return of the underlying, annual decimal.")
+    initial_variance: float = Field(ge=0, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
+    mean_reversion: float = Field(ge=0, description="Mean-reversion speed kappa of the variance, per year.")
+    long_run_variance: float = Field(ge=0, description="Long-run variance theta, annual decimal^2.")
+    vol_of_vol: float = Field(ge=0, description="Volatility xi of the variance, per sqrt(year).")
+    correlation: float = Field(ge=-1, le=1, description="Correlation rho of price and variance shocks, in [-1, 1].")
+    variance_observed: bool = Field(
+        False, description="Whether the hedger observes the current variance (appended to its observation).")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+    def pricing_volatility(self, horizon_years: float) -> float:
+        """Default mark volatility: the root of the expected mean variance over the horizon,
+        theta + (v0 - theta) (1 - exp(-kappa T)) / (kappa T) (the variance-swap level of the model)."""
+        decay = self.mean_reversion * horizon_years
+        weight = -math.expm1(-decay) / decay if decay > 0 else 1.0
+        return math.sqrt(self.long_run_variance + (self.initial_variance - self.long_run_variance) * weight)
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"Heston (QE scheme): spot {self.spot:g}, drift {_pct(self.drift)}, initial variance "
+                f"{self.initial_variance:g}, mean reversion {self.mean_reversion:g} per year, long-run variance "
+                f"{self.long_run_variance:g}, vol of vol {self.vol_of_vol:g}, correlation {self.correlation:g}, "
+                f"variance {'observed' if self.variance_observed else 'not observed'}, rate {_pct(self.rate)}, "
+                f"dividend yield {_pct(self.dividend_yield)} (annual)")
+
+
+class MertonMarket(_Spec):
+    """Merton jump diffusion for the underlying: GBM plus lognormal jumps at Poisson times."""
+
+    model: Literal["merton"] = Field(description="Price model of the underlying.")
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world expected return, jumps included, annual decimal.")
+    volatility: float = Field(gt=0, description="Volatility of the diffusion part, annual decimal.")
+    jump_intensity: float = Field(ge=0, description="Expected number of jumps per year.")
+    jump_mean: float = Field(description="Mean of the log jump size (-0.05: a typical jump of about -5%).")
+    jump_std: float = Field(ge=0, description="Standard deviation of the log jump size.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+    def pricing_volatility(self, horizon_years: float) -> float:
+        """Default mark volatility: the total volatility of log returns, diffusion and jumps,
+        sqrt(volatility^2 + jump_intensity (jump_mean^2 + jump_std^2))."""
+        return math.sqrt(self.volatility**2 + self.jump_intensity * (self.jump_mean**2 + self.jump_std**2))
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"Merton jump diffusion: spot {self.spot:g}, drift {_pct(self.drift)}, diffusion volatility "
+                f"{_pct(self.volatility)}, {self.jump_intensity:g} jumps a year of log size mean "
+                f"{self.jump_mean:g}, std {self.jump_std:g}, rate {_pct(self.rate)}, dividend yield "
+                f"{_pct(self.dividend_yield)} (annual)")
 
 
 def _to_date(value: Any) -> Any:
@@ -282,8 +355,20 @@ class HistoricalMarket(_Spec):
             raise _rule("'implied' needs market.implied_volatility_column", "marks")
         return self
 
+    def pricing_volatility(self, horizon_years: float) -> None:
+        """None: the mark volatility of a history is known only from its data (the implied column or the
+        realised volatility of the training part, see agents.scenario), or given as pricing.volatility."""
+        return None
 
-MarketSpec = Annotated[Union[GBMMarket, HistoricalMarket], Field(discriminator="model")]
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"Historical: closes of {self.csv} (one row per trading day), every path rescaled to start at "
+                f"spot {self.spot:g}; training paths: {self.training}; rate {_pct(self.rate)}, "
+                f"dividend yield {_pct(self.dividend_yield)} (annual)")
+
+
+# One member per model, discriminated on `model`.
+MarketSpec = Annotated[Union[GBMMarket, HestonMarket, MertonMarket, HistoricalMarket], Field(discriminator="model")]
 
 
 class OptionSpec(_Spec):
@@ -317,7 +402,9 @@ class PricingSpec(_Spec):
     volatility: float | None = Field(
         None,
         gt=0,
-        description="Mark and Greeks volatility, annual decimal; defaults to market.volatility.",
+        description="Mark and Greeks volatility, annual decimal; defaults to the market model's "
+                    "(market.volatility for gbm, the expected mean variance's root for heston, the total "
+                    "volatility for merton).",
     )
     days_per_year: float = Field(365.0, gt=0, description="Days per year for converting days to years.")
 
@@ -632,7 +719,10 @@ class Config(_Spec):
         if isinstance(self.market, HistoricalMarket):
             self._resolve_historical()
         if self.pricing.volatility is None:
-            self.pricing.volatility = getattr(self.market, "volatility", None)
+            volatility = self.market.pricing_volatility(self.horizon_days / self.pricing.days_per_year)
+            if volatility is not None and not volatility > 0:
+                raise _rule("must be given: the market model's default volatility is 0", "pricing", "volatility")
+            self.pricing.volatility = volatility
         for baseline in self.baselines:
             if isinstance(baseline, (DeltaBaseline, LelandBaseline)) and baseline.volatility is None:
                 baseline.volatility = self.pricing.volatility

@@ -90,7 +90,8 @@ class FittedQAgent(BackwardQAgent):
         check_terms(self.terms, tuple(self.factor_names))
         steps = self.problem.schedule.steps
         self.regressors_: list = [None] * steps
-        tabulable = not self.factor_names and all(
+        # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself.
+        tabulable = all(
             factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
         self.tables_: list | None = [None] * steps if tabulable else None
         self._rows: list[tuple[np.ndarray, np.ndarray]] = []

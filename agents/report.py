@@ -34,6 +34,7 @@ from matplotlib.figure import Figure
 
 from agents.config import ConfigError
 from agents.training import Run, load_run
+from hedge_env.market import GivenPaths
 from hedge_env.rollout import rollout
 
 CAUTION = (
@@ -384,8 +385,10 @@ def _path_figure(scored: _Scored, paths, seed: int, colors: dict[str, str]) -> t
     days = schedule.step_days * np.arange(0, schedule.steps + 1)
     figure, axes = _figure(9.0, 3.6)
     ax = axes[0, 0]
+    # The market's observed factors (e.g. a variance) go with the path into the observations.
+    source = GivenPaths(paths, observed_factors=run.market.observed_factors)
     for name in names:
-        held = rollout(problem, policies[name], paths, keep_holdings=True, name=name).holdings[0]
+        held = rollout(problem, policies[name], source, 1, keep_holdings=True, name=name).holdings[0]
         # Holding over each rehedge interval; repeated at the horizon so the last interval shows.
         ax.plot(days, np.append(held, held[-1]), color=colors[name], drawstyle="steps-post", label=name)
     ax.set_xlabel("time (days from start)")
@@ -545,7 +548,7 @@ def _scenario_html(scored: _Scored) -> str:
     facts = [
         ("config", config.name),
         ("description", config.description or "(none)"),
-        ("market", _market_text(market)),
+        ("market", market.describe()),
         ("pricing", _pricing_text(config, run.problem)),
         ("schedule", f"{schedule.steps} rehedges every {_days(schedule.step_days)} "
                      f"(horizon {_days(config.horizon_days)}), settlement: {schedule.settlement}"),
@@ -578,16 +581,6 @@ def _scenario_html(scored: _Scored) -> str:
         facts.append(("Black-Scholes mark of the book", f"{format_money(records[0]['mark'])} (currency)"))
     return (f"<h2>Scenario</h2>{_facts_table(facts[:2])}<h3>Book</h3>{book}"
             f"<h3>Market, frictions, objective and data</h3>{_facts_table(facts[2:])}")
-
-
-def _market_text(market) -> str:
-    if market.model == "historical":
-        return (f"HISTORICAL: closes of {market.csv} (one row per trading day), every path rescaled to start at "
-                f"spot {market.spot:g}; training paths: {market.training}; rate {_percent(market.rate)}, "
-                f"dividend yield {_percent(market.dividend_yield)} (annual)")
-    return (f"{market.model.upper()}: spot {market.spot:g}, drift {_percent(market.drift)}, "
-            f"volatility {_percent(market.volatility)}, rate {_percent(market.rate)}, "
-            f"dividend yield {_percent(market.dividend_yield)} (annual)")
 
 
 def _pricing_text(config, problem) -> str:

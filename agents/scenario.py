@@ -20,7 +20,7 @@ from hedge_env.history import (
     load_history,
     split_history,
 )
-from hedge_env.market import GBMMarket, PathGenerator
+from hedge_env.market import GBMMarket, HestonMarket, MertonMarket, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 
@@ -80,7 +80,16 @@ def build_market(config: Config) -> PathGenerator:
     market = config.market
     if market.model == "gbm":
         return GBMMarket(spot=market.spot, drift=market.drift, volatility=market.volatility)
-    raise ValueError(f"market.model: no generator for {market.model!r}")  # the schema admits no other yet
+    if market.model == "heston":
+        return HestonMarket(spot=market.spot, drift=market.drift, initial_variance=market.initial_variance,
+                            mean_reversion=market.mean_reversion, long_run_variance=market.long_run_variance,
+                            vol_of_vol=market.vol_of_vol, correlation=market.correlation,
+                            variance_observed=market.variance_observed)
+    if market.model == "merton":
+        return MertonMarket(spot=market.spot, drift=market.drift, volatility=market.volatility,
+                            jump_intensity=market.jump_intensity, jump_mean=market.jump_mean,
+                            jump_std=market.jump_std)
+    raise ValueError(f"market.model: no generator for {market.model!r}")  # the schema admits no other
 
 
 def build_markets(config: Config) -> tuple[PathGenerator, PathGenerator]:

@@ -188,7 +188,7 @@ BAD_INPUTS = [
     ),
     pytest.param(
         variant('model = "gbm"', 'model = "gmb"'),
-        "market.model: must be one of 'gbm', 'historical', got 'gmb'",
+        "market.model: must be one of 'gbm', 'heston', 'merton', 'historical', got 'gmb'",
         id="bad-market-model",
     ),
     pytest.param(
