@@ -33,6 +33,9 @@ from hedge_env.step import HedgeState, hedge_step
 _CHUNK_ELEMENTS = 1 << 18
 # Half-width, in standard normal units, of the Gauss-Legendre rule used on steps where options settle.
 _SETTLEMENT_QUADRATURE_HALF_WIDTH = 8.0
+# Grid targets around the four grid states' targets over which act evaluates Q exactly when those
+# states disagree: their targets are usually within a step or two of each other (a band edge).
+_WINDOW_TARGETS = 8
 
 
 class GridDPAgent(BaseEstimator):
@@ -93,10 +96,16 @@ class GridDPAgent(BaseEstimator):
     hedger's wealth were 0 at t_k (it is 0 at t_0). With ``cash_rate = 0``
     this is exact.
 
-    The greedy policy (:meth:`act`) evaluates ``Q_k`` at each row's own spot
-    (cubic spline in log spot) and exact holding (the trade's cost is a
-    formula), over every grid target plus "no trade", and takes the best.
-    With permanent impact it interpolates the stored ``policy_`` table instead.
+    The exact greedy policy (:meth:`act_exact`) evaluates ``Q_k`` at each
+    row's own spot (cubic spline in log spot) and exact holding (the trade's
+    cost is a formula), over every grid target plus "no trade", and takes
+    the best. :meth:`act` gives the same decisions from the ``policy_``
+    table, at a fraction of the cost: where the four grid states around a
+    row agree (all stay, all buy or all sell) it stays or interpolates their
+    targets; elsewhere (the row's cell straddles a no-trade band edge, about
+    a fifth of the rows on a hedged path) it evaluates ``Q_k`` exactly, over
+    the few grid targets near those of the four grid states; off the grid,
+    over all of them. With permanent impact both interpolate ``policy_``.
 
     Examples
     --------
@@ -411,39 +420,118 @@ class GridDPAgent(BaseEstimator):
     # --- the greedy policy ----------------------------------------------------------------------
 
     def act(self, obs) -> np.ndarray:
-        """Target holding per share of notional for observation rows (Policy protocol)."""
+        """Target holding per share of notional for observation rows (Policy protocol).
+
+        The decisions of :meth:`act_exact`, read from the ``policy_`` table
+        where that is exact up to interpolation (see the class notes).
+        """
+        decoded, times = self._decode(obs)
+        targets = np.empty(times.size)
+        for k, rows in _rows_by_time(times):
+            spot, held = decoded.spot[rows], decoded.holding_shares[rows]
+            if self.problem.frictions.permanent_impact:
+                targets[rows] = self._interpolate_tables(k, spot, held)[0]
+            else:
+                targets[rows] = self._tabulated_targets(k, spot, held)
+        return targets / self.problem.notional_shares
+
+    def act_exact(self, obs) -> np.ndarray:
+        """Target holding per share of notional, ``Q_k`` evaluated at every row over every grid target."""
         return self._best(obs)[0] / self.problem.notional_shares
 
     def value(self, obs) -> np.ndarray:
         """``V_k`` at observation rows: the optimal expected sum of rewards from their state on, currency."""
         return self._best(obs)[1]
 
-    def _best(self, obs) -> tuple[np.ndarray, np.ndarray]:
+    def _decode(self, obs):
         check_is_fitted(self, "value_")
         obs = np.asarray(obs, dtype=float)
         if obs.ndim != 2 or obs.shape[1] < 3:
             raise ValueError(f"observations must be an (n, >= 3) array of rows, got shape {obs.shape}")
         decoded = decode(self.problem, obs)
-        n_rows = decoded.spot.size
-        times = self._decision_indices(decoded.t_days, n_rows)
+        return decoded, self._decision_indices(decoded.t_days, decoded.spot.size)
+
+    def _best(self, obs) -> tuple[np.ndarray, np.ndarray]:
+        decoded, times = self._decode(obs)
+        n_rows = times.size
         targets, values = np.empty(n_rows), np.empty(n_rows)
-        rows_per_chunk = max(1, _CHUNK_ELEMENTS // (self.holdings_.size + 1))
+        rows_per_chunk = max(1, _CHUNK_ELEMENTS // (8 * self.holdings_.size))
         exact = not self.problem.frictions.permanent_impact
-        for k in np.unique(times):
-            k = int(k)
-            rows = np.flatnonzero(times == k)
-            if exact:
-                stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
-                spline = CubicSpline(self.log_spots_, stacked, axis=0)
+        for k, rows in _rows_by_time(times):
+            rows = np.arange(n_rows)[rows]
             for start in range(0, rows.size, rows_per_chunk):
                 chunk = rows[start : start + rows_per_chunk]
                 spot, held = decoded.spot[chunk], decoded.holding_shares[chunk]
                 if exact:
-                    targets[chunk], values[chunk] = self._best_exact(spline, spot, held)
+                    targets[chunk], values[chunk] = self._best_exact(self._q_table(k), spot, held)
                 else:
                     targets[chunk], values[chunk] = self._interpolate_tables(k, spot, held)
         return targets, values
 
+    def _q_table(self, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """Cubic spline in log spot of ``no_trade_value_[k]`` and ``cost_weight_[k]``: the knots, and
+        the coefficients as (interval, target, power, 2) so that a row's are read in one piece.
+
+        Kept once built (about 2 MB a time at the default grid; not pickled):
+        a rollout asks for every time once per chunk of paths.
+        """
+        cache = self.__dict__.setdefault("_q_tables", {})
+        if k not in cache:
+            stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
+            spline = CubicSpline(self.log_spots_, stacked, axis=0)
+            cache[k] = (spline.x, np.ascontiguousarray(spline.c.transpose(1, 2, 0, 3)))
+        return cache[k]
+
+    def __getstate__(self):
+        state = dict(super().__getstate__())
+        state.pop("_q_tables", None)  # a cache, rebuilt on use
+        return state
+
+    def _tabulated_targets(self, k: int, spot, held) -> np.ndarray:
+        """Targets in shares: from the table where the cell's four grid states agree, else exact.
+
+        In a cell whose corners all stay, the row stays (its holding is inside
+        the no-trade region); where all buy or all sell, the target is the
+        bilinear interpolation of their targets (a band edge, or with impact a
+        partial move, both smooth in spot and holding). Other rows get the
+        exact maximisation of :meth:`_best_exact` over the grid targets near
+        the corners' targets, or over all of them when those are far apart or
+        the row is off the grid.
+        """
+        x, h, policy = self.log_spots_, self.holdings_, self.policy_[k]
+        log_spot = np.log(spot)
+        dx, dh = x[1] - x[0], h[1] - h[0]
+        # Uniform grids: the cell by arithmetic, not a search.
+        fx, fh = (log_spot - x[0]) / dx, (held - h[0]) / dh
+        on_grid = (fx >= 0) & (fx <= x.size - 1) & (fh >= 0) & (fh <= h.size - 1)
+        i = np.clip(fx.astype(int), 0, x.size - 2)
+        j = np.clip(fh.astype(int), 0, h.size - 2)
+        u, v = np.clip(fx - i, 0.0, 1.0), np.clip(fh - j, 0.0, 1.0)
+        corners = policy[i, j], policy[i, j + 1], policy[i + 1, j], policy[i + 1, j + 1]
+        first = np.sign(corners[0] - h[j])
+        agree = on_grid & (first == np.sign(corners[1] - h[j + 1]))
+        agree &= first == np.sign(corners[2] - h[j])
+        agree &= first == np.sign(corners[3] - h[j + 1])
+        interpolated = ((1 - u) * ((1 - v) * corners[0] + v * corners[1])
+                        + u * ((1 - v) * corners[2] + v * corners[3]))
+        targets = np.where(first == 0, held, interpolated)
+        disputed = np.flatnonzero(~agree)
+        if disputed.size:
+            index = np.rint((np.stack([c[disputed] for c in corners]) - h[0]) / dh).astype(int)
+            low, high = index.min(axis=0) - 1, index.max(axis=0) + 1
+            near = on_grid[disputed] & (high - low < _WINDOW_TARGETS)
+            table = self._q_table(k)
+            rows = disputed[near]
+            if rows.size:
+                start = np.clip(low[near], 0, h.size - _WINDOW_TARGETS)
+                columns = start[:, None] + np.arange(_WINDOW_TARGETS)
+                targets[rows] = self._best_exact(table, spot[rows], held[rows], columns)[0]
+            rows = disputed[~near]
+            per_block = max(1, _CHUNK_ELEMENTS // (8 * h.size))
+            for chunk in range(0, rows.size, per_block):
+                block = rows[chunk : chunk + per_block]
+                targets[block] = self._best_exact(table, spot[block], held[block])[0]
+        return targets
     def _decision_indices(self, t_days, n: int) -> np.ndarray:
         schedule = self.problem.schedule
         days = np.broadcast_to(np.asarray(t_days, dtype=float), (n,))
@@ -457,32 +545,38 @@ class GridDPAgent(BaseEstimator):
             )
         return k.astype(int)
 
-    def _best_exact(self, spline: CubicSpline, spot, held) -> tuple[np.ndarray, np.ndarray]:
-        """Best of every grid target and "no trade", with Q at the rows' own spot and holding.
+    def _best_exact(self, table, spot, held, columns=None) -> tuple[np.ndarray, np.ndarray]:
+        """Best of the grid targets and "no trade", with Q at the rows' own spot and holding.
 
-        ``spline`` interpolates the stacked ``no_trade_value_`` and ``cost_weight_``
-        of the rows' time in log spot.
+        ``table`` is :meth:`_q_table` of the rows' time (``no_trade_value_`` and
+        ``cost_weight_`` in log spot). ``columns`` (rows, m), optional: the
+        indices of the grid targets each row chooses among (default: all).
         """
         c2 = self.reward_coefficients_[1]
         actions = self.holdings_
-        coefficients = _evaluate_spline(spline, np.log(spot))
-        level, slope = coefficients[..., 0], coefficients[..., 1]
-        charge = self._trade_charge(spot[:, None], np.abs(actions[None, :] - held[:, None]))
+        log_spot = np.log(spot)
+        level, slope = _q_columns(table, log_spot, columns)
+        choices = np.broadcast_to(actions, level.shape) if columns is None else actions[columns]
+        charge = self._trade_charge(spot[:, None], np.abs(choices - held[:, None]))
         q = level - charge * slope
         if c2:
             q += c2 * (charge * charge)
+        rows = np.arange(spot.size)
         best = q.argmax(axis=1)
-        best_q = q[np.arange(spot.size), best]
+        best_q = q[rows, best]
         # Not trading: Q(S, h, h) is the no-trade value at a = h, quadratic through the three nearest
         # targets (linear would be biased low, the value being concave in a, and narrow the band).
         step = actions[1] - actions[0]
         middle = np.clip(np.rint((held - actions[0]) / step).astype(int), 1, actions.size - 2)
         t = (held - actions[middle]) / step
-        rows = np.arange(spot.size)
-        below, centre, above = level[rows, middle - 1], level[rows, middle], level[rows, middle + 1]
+        if columns is None:
+            below, centre, above = level[rows, middle - 1], level[rows, middle], level[rows, middle + 1]
+        else:
+            nearest = _q_columns(table, log_spot, middle[:, None] + np.arange(-1, 2))[0]
+            below, centre, above = nearest[:, 0], nearest[:, 1], nearest[:, 2]
         stay_q = centre + 0.5 * t * (above - below) + 0.5 * t * t * (above - 2.0 * centre + below)
         stay = stay_q >= best_q
-        return np.where(stay, held, actions[best]), np.where(stay, stay_q, best_q)
+        return np.where(stay, held, choices[rows, best]), np.where(stay, stay_q, best_q)
 
     def _interpolate_tables(self, k: int, spot, held) -> tuple[np.ndarray, np.ndarray]:
         """Bilinear interpolation of ``policy_`` and ``value_`` in (log spot, holding), clamped at the edges."""
@@ -510,6 +604,30 @@ def _reward_coefficients(problem: HedgingProblem) -> tuple[float, float]:
         if not math.isclose(float(reward(x)), c1 * x + c2 * x * x, rel_tol=1e-12, abs_tol=1e-12):
             raise ValueError("GridDPAgent needs a per-step reward quadratic in the step P&L (mean-variance)")
     return c1, c2
+
+
+def _rows_by_time(times: np.ndarray):
+    """(k, rows) per decision time present; rows is a slice when all rows share one time (a rollout)."""
+    if times.size and (times == times[0]).all():
+        return [(int(times[0]), slice(None))]
+    return [(int(k), np.flatnonzero(times == k)) for k in np.unique(times)]
+
+
+def _q_columns(table, points: np.ndarray, columns: np.ndarray | None = None):
+    """Level and slope of the Q spline ``table`` (see ``GridDPAgent._q_table``) at ``points`` (rows,),
+    continued linearly beyond the grid ends: two arrays (rows, targets), of every target or of
+    ``columns`` (rows, m) only."""
+    knots, coef = table
+    inside = np.clip(points, knots[0], knots[-1])
+    beyond = (points - inside)[:, None, None]
+    interval = np.clip(np.searchsorted(knots, inside, side="right") - 1, 0, knots.size - 2)
+    c = coef[interval] if columns is None else coef[interval[:, None], columns]  # (rows, m, power, 2)
+    t = (inside - knots[interval])[:, None, None]
+    c0, c1, c2, c3 = c[:, :, 0], c[:, :, 1], c[:, :, 2], c[:, :, 3]
+    value = ((c0 * t + c1) * t + c2) * t + c3
+    if beyond.any():
+        value += ((3.0 * c0 * t + 2.0 * c1) * t + c2) * beyond
+    return value[..., 0], value[..., 1]
 
 
 def _evaluate_spline(spline: CubicSpline, points: np.ndarray, columns: np.ndarray | None = None) -> np.ndarray:
