@@ -78,6 +78,11 @@ class StateFeatures:
     def __len__(self) -> int:
         return self.spot.shape[0]
 
+    def rows(self, selection: slice) -> StateFeatures:
+        """The features of a block of rows (views, no copies)."""
+        return StateFeatures({name: value[selection] for name, value in self.values.items()},
+                             self.spot[selection], self.holding_shares[selection])
+
 
 def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple[str, ...] = ()) -> StateFeatures:
     """State features of observation rows ``[spot/ref, years left, holding/notional, *factors]``."""
