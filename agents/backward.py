@@ -31,6 +31,7 @@ partial moves toward it.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Iterable
 
 import numpy as np
@@ -53,7 +54,10 @@ def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: f
     widths = np.asarray(band_widths, dtype=float) * move
     moves = np.asarray(partial_moves, dtype=float)
     columns = [h, hedge, hedge - widths, hedge + widths, h + moves * (hedge - h)]
-    return np.clip(np.concatenate(columns, axis=1), -limit, limit)
+    targets = np.concatenate(columns, axis=1)
+    if math.isfinite(limit):  # no limit, no pass
+        np.clip(targets, -limit, limit, out=targets)
+    return targets
 
 
 def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray,
