@@ -33,9 +33,10 @@ from hedge_env.step import HedgeState, hedge_step
 _CHUNK_ELEMENTS = 1 << 18
 # Half-width, in standard normal units, of the Gauss-Legendre rule used on steps where options settle.
 _SETTLEMENT_QUADRATURE_HALF_WIDTH = 8.0
-# Grid targets around the four grid states' targets over which act evaluates Q exactly when those
-# states disagree: their targets are usually within a step or two of each other (a band edge).
-_WINDOW_TARGETS = 8
+# Widths of the windows of grid targets, around the targets of a row's four grid states, over which
+# act evaluates Q exactly: within a cell the best target moves by a few grid steps (a band edge
+# moving with spot), more near expiry where gamma is high. Each row gets the narrowest that fits.
+_WINDOW_TARGETS = (8, 16, 32, 64)
 
 
 class GridDPAgent(BaseEstimator):
@@ -470,7 +471,7 @@ class GridDPAgent(BaseEstimator):
 
     def _q_table(self, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Cubic spline in log spot of ``no_trade_value_[k]`` and ``cost_weight_[k]``: the knots, and
-        the coefficients as (interval, target, power, 2) so that a row's are read in one piece.
+        the coefficients as (interval, target, 2, power) so that a row's are read in one piece.
 
         Kept once built (about 2 MB a time at the default grid; not pickled):
         a rollout asks for every time once per chunk of paths.
@@ -479,7 +480,7 @@ class GridDPAgent(BaseEstimator):
         if k not in cache:
             stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
             spline = CubicSpline(self.log_spots_, stacked, axis=0)
-            cache[k] = (spline.x, np.ascontiguousarray(spline.c.transpose(1, 2, 0, 3)))
+            cache[k] = (spline.x, np.ascontiguousarray(spline.c.transpose(1, 2, 3, 0)))
         return cache[k]
 
     def __getstate__(self):
@@ -488,50 +489,51 @@ class GridDPAgent(BaseEstimator):
         return state
 
     def _tabulated_targets(self, k: int, spot, held) -> np.ndarray:
-        """Targets in shares: from the table where the cell's four grid states agree, else exact.
+        """The targets of :meth:`_best_exact`, in shares, at a fraction of its cost.
 
-        In a cell whose corners all stay, the row stays (its holding is inside
-        the no-trade region); where all buy or all sell, the target is the
-        bilinear interpolation of their targets (a band edge, or with impact a
-        partial move, both smooth in spot and holding). Other rows get the
-        exact maximisation of :meth:`_best_exact` over the grid targets near
-        the corners' targets, or over all of them when those are far apart or
-        the row is off the grid.
+        A row whose cell of the (log spot, holding) grid has four corners that
+        all stay in ``policy_`` is inside the no-trade region: it stays, with
+        no evaluation. Every other row gets the exact maximisation over the
+        few grid targets around its corners' targets (the optimum moves
+        little within a cell), or over all of them when those are far apart
+        or the row is off the grid.
         """
         x, h, policy = self.log_spots_, self.holdings_, self.policy_[k]
-        log_spot = np.log(spot)
         dx, dh = x[1] - x[0], h[1] - h[0]
         # Uniform grids: the cell by arithmetic, not a search.
-        fx, fh = (log_spot - x[0]) / dx, (held - h[0]) / dh
+        fx, fh = (np.log(spot) - x[0]) / dx, (held - h[0]) / dh
         on_grid = (fx >= 0) & (fx <= x.size - 1) & (fh >= 0) & (fh <= h.size - 1)
         i = np.clip(fx.astype(int), 0, x.size - 2)
         j = np.clip(fh.astype(int), 0, h.size - 2)
-        u, v = np.clip(fx - i, 0.0, 1.0), np.clip(fh - j, 0.0, 1.0)
         corners = policy[i, j], policy[i, j + 1], policy[i + 1, j], policy[i + 1, j + 1]
-        first = np.sign(corners[0] - h[j])
-        agree = on_grid & (first == np.sign(corners[1] - h[j + 1]))
-        agree &= first == np.sign(corners[2] - h[j])
-        agree &= first == np.sign(corners[3] - h[j + 1])
-        interpolated = ((1 - u) * ((1 - v) * corners[0] + v * corners[1])
-                        + u * ((1 - v) * corners[2] + v * corners[3]))
-        targets = np.where(first == 0, held, interpolated)
-        disputed = np.flatnonzero(~agree)
-        if disputed.size:
-            index = np.rint((np.stack([c[disputed] for c in corners]) - h[0]) / dh).astype(int)
-            low, high = index.min(axis=0) - 1, index.max(axis=0) + 1
-            near = on_grid[disputed] & (high - low < _WINDOW_TARGETS)
-            table = self._q_table(k)
-            rows = disputed[near]
+        inside = on_grid & (corners[0] == h[j]) & (corners[1] == h[j + 1])
+        inside &= (corners[2] == h[j]) & (corners[3] == h[j + 1])
+        targets = held.copy()
+        evaluate = np.flatnonzero(~inside)
+        if not evaluate.size:
+            return targets
+        index = np.rint((np.stack([c[evaluate] for c in corners]) - h[0]) / dh).astype(int)
+        low, high = index.min(axis=0) - 1, index.max(axis=0) + 1
+        width = np.where(on_grid[evaluate], high - low + 1, h.size)
+        table = self._q_table(k)
+        done = 0
+        for window in _WINDOW_TARGETS:
+            if window >= h.size:
+                break
+            fits = (width <= window) & (width > done)
+            rows = evaluate[fits]
             if rows.size:
-                start = np.clip(low[near], 0, h.size - _WINDOW_TARGETS)
-                columns = start[:, None] + np.arange(_WINDOW_TARGETS)
+                start = np.clip(low[fits], 0, h.size - window)
+                columns = start[:, None] + np.arange(window)
                 targets[rows] = self._best_exact(table, spot[rows], held[rows], columns)[0]
-            rows = disputed[~near]
-            per_block = max(1, _CHUNK_ELEMENTS // (8 * h.size))
-            for chunk in range(0, rows.size, per_block):
-                block = rows[chunk : chunk + per_block]
-                targets[block] = self._best_exact(table, spot[block], held[block])[0]
+            done = window
+        rows = evaluate[width > done]
+        per_block = max(1, _CHUNK_ELEMENTS // (8 * h.size))
+        for chunk in range(0, rows.size, per_block):
+            block = rows[chunk : chunk + per_block]
+            targets[block] = self._best_exact(table, spot[block], held[block])[0]
         return targets
+
     def _decision_indices(self, t_days, n: int) -> np.ndarray:
         schedule = self.problem.schedule
         days = np.broadcast_to(np.asarray(t_days, dtype=float), (n,))
@@ -554,9 +556,16 @@ class GridDPAgent(BaseEstimator):
         """
         c2 = self.reward_coefficients_[1]
         actions = self.holdings_
-        log_spot = np.log(spot)
-        level, slope = _q_columns(table, log_spot, columns)
-        choices = np.broadcast_to(actions, level.shape) if columns is None else actions[columns]
+        step = actions[1] - actions[0]
+        middle = np.clip(np.rint((held - actions[0]) / step).astype(int), 1, actions.size - 2)
+        if columns is None:
+            level, slope = _q_columns(table, np.log(spot))
+            choices = np.broadcast_to(actions, level.shape)
+        else:
+            # The three targets nearest the holding (for "no trade") in the same read, at the end.
+            level, slope = _q_columns(table, np.log(spot), np.hstack([columns, middle[:, None] + np.arange(-1, 2)]))
+            nearest, level, slope = level[:, -3:], level[:, :-3], slope[:, :-3]
+            choices = actions[columns]
         charge = self._trade_charge(spot[:, None], np.abs(choices - held[:, None]))
         q = level - charge * slope
         if c2:
@@ -566,13 +575,10 @@ class GridDPAgent(BaseEstimator):
         best_q = q[rows, best]
         # Not trading: Q(S, h, h) is the no-trade value at a = h, quadratic through the three nearest
         # targets (linear would be biased low, the value being concave in a, and narrow the band).
-        step = actions[1] - actions[0]
-        middle = np.clip(np.rint((held - actions[0]) / step).astype(int), 1, actions.size - 2)
         t = (held - actions[middle]) / step
         if columns is None:
             below, centre, above = level[rows, middle - 1], level[rows, middle], level[rows, middle + 1]
         else:
-            nearest = _q_columns(table, log_spot, middle[:, None] + np.arange(-1, 2))[0]
             below, centre, above = nearest[:, 0], nearest[:, 1], nearest[:, 2]
         stay_q = centre + 0.5 * t * (above - below) + 0.5 * t * t * (above - 2.0 * centre + below)
         stay = stay_q >= best_q
@@ -618,15 +624,24 @@ def _q_columns(table, points: np.ndarray, columns: np.ndarray | None = None):
     continued linearly beyond the grid ends: two arrays (rows, targets), of every target or of
     ``columns`` (rows, m) only."""
     knots, coef = table
+    n_targets = coef.shape[1]
     inside = np.clip(points, knots[0], knots[-1])
-    beyond = (points - inside)[:, None, None]
     interval = np.clip(np.searchsorted(knots, inside, side="right") - 1, 0, knots.size - 2)
-    c = coef[interval] if columns is None else coef[interval[:, None], columns]  # (rows, m, power, 2)
-    t = (inside - knots[interval])[:, None, None]
-    c0, c1, c2, c3 = c[:, :, 0], c[:, :, 1], c[:, :, 2], c[:, :, 3]
-    value = ((c0 * t + c1) * t + c2) * t + c3
+    t = inside - knots[interval]
+    # Each (row, target) reads its 8 coefficients in one piece; the cubic is a batched product
+    # with (t^3, t^2, t, 1), plus (3 t^2, 2 t, 1, 0) times the distance beyond the grid.
+    powers = np.stack([t * t * t, t * t, t, np.ones_like(t)], axis=1)
+    beyond = points - inside
     if beyond.any():
-        value += ((3.0 * c0 * t + 2.0 * c1) * t + c2) * beyond
+        powers += beyond[:, None] * np.stack([3.0 * t * t, 2.0 * t, np.ones_like(t), np.zeros_like(t)], axis=1)
+    flat = coef.reshape(-1, 8)
+    if columns is None:
+        gathered = flat.reshape(-1, n_targets * 8)[interval]
+        m = n_targets
+    else:
+        gathered = flat[(interval * n_targets)[:, None] + columns]
+        m = columns.shape[1]
+    value = np.matmul(gathered.reshape(points.size, 2 * m, 4), powers[:, :, None]).reshape(points.size, m, 2)
     return value[..., 0], value[..., 1]
 
 
