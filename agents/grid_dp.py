@@ -97,16 +97,18 @@ class GridDPAgent(BaseEstimator):
     hedger's wealth were 0 at t_k (it is 0 at t_0). With ``cash_rate = 0``
     this is exact.
 
-    The exact greedy policy (:meth:`act_exact`) evaluates ``Q_k`` at each
-    row's own spot (cubic spline in log spot) and exact holding (the trade's
-    cost is a formula), over every grid target plus "no trade", and takes
-    the best. :meth:`act` gives the same decisions from the ``policy_``
-    table, at a fraction of the cost: where the four grid states around a
-    row agree (all stay, all buy or all sell) it stays or interpolates their
-    targets; elsewhere (the row's cell straddles a no-trade band edge, about
-    a fifth of the rows on a hedged path) it evaluates ``Q_k`` exactly, over
-    the few grid targets near those of the four grid states; off the grid,
-    over all of them. With permanent impact both interpolate ``policy_``.
+    The greedy policy (:meth:`act_exact`) evaluates ``Q_k`` at each row's own
+    spot (cubic spline in log spot) and exact holding (the trade's cost is a
+    formula), over every grid target plus "no trade", and takes the best.
+    :meth:`act` takes the same decisions at a tenth of the cost: a row whose
+    four surrounding grid states all stay in ``policy_`` stays (it is inside
+    the no-trade region); every other row maximises the same ``Q_k`` over a
+    window of grid targets around those of its four grid states (8 to 64
+    wide, all of them off the grid). On the reference case the two agreed on
+    every decision of 20,000 held-out paths at 10 and 50 bps; a fixed cost,
+    which makes the best target jump, could put it outside the window (the
+    tests bound such rows to 1%). With permanent impact both interpolate
+    ``policy_``.
 
     Examples
     --------
