@@ -28,6 +28,7 @@ or powers ``"gap^2"`` (any names above, joined by ``*``; a power by ``^``).
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -76,6 +77,11 @@ class StateFeatures:
 
     def __len__(self) -> int:
         return self.spot.shape[0]
+
+    def rows(self, selection: slice) -> StateFeatures:
+        """The features of a block of rows (views, no copies)."""
+        return StateFeatures({name: value[selection] for name, value in self.values.items()},
+                             self.spot[selection], self.holding_shares[selection])
 
 
 def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple[str, ...] = ()) -> StateFeatures:
@@ -179,15 +185,92 @@ def basis(terms: tuple[str, ...], state: StateFeatures, targets: np.ndarray) -> 
 
 
 def combination(terms: tuple[str, ...], coef: np.ndarray, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-    """``basis(...) @ coef`` without building the design array: shape (n, C)."""
+    """``basis(...) @ coef`` without building the design array: shape (n, C).
+
+    A term is a product of target factors (``TARGET_FACTORS``) and state
+    factors. Terms with the same target part are grouped: their weighted state
+    parts add up to one coefficient per row, worked out on (n,) arrays, so the
+    (n, C) work is one pass per distinct target part, and powers of one target
+    factor (``gap``, ``gap^2``, ...) are summed by Horner's rule. Equal to the
+    term-by-term sum up to rounding.
+    """
     targets = np.asarray(targets, dtype=float)
-    cache: dict[str, np.ndarray] = {}
-    total = np.zeros(targets.shape)
-    scratch = np.empty(targets.shape)
+    groups: dict[tuple, np.ndarray | float] = {}
+    state_cache: dict[str, np.ndarray] = {}
     for term, weight in zip(terms, coef):
-        if weight:
-            total += weight * _term(term, state, targets, cache, scratch)
+        if not weight:
+            continue
+        target_part, state_part = _split_term(term)
+        row: np.ndarray | float = float(weight)
+        for factor in state_part:
+            row = row * _state_factor(factor, state, state_cache)
+        groups[target_part] = groups.get(target_part, 0.0) + row
+    polynomials: dict[str, dict[int, np.ndarray | float]] = {}
+    total = np.zeros(targets.shape)
+    cache: dict[str, np.ndarray] = {}
+    for target_part, row in groups.items():
+        if len(target_part) == 1:
+            name, power = target_part[0]
+            polynomials.setdefault(name, {})[power] = row
+            continue
+        # A product of several target factors, or none (a term of the state alone).
+        value = np.ones(targets.shape) if not target_part else _factor(_power_name(*target_part[0]), state,
+                                                                        targets, cache).copy()
+        for name, power in target_part[1:]:
+            value *= _factor(_power_name(name, power), state, targets, cache)
+        value *= _column(row)
+        total += value
+    for name, powers in polynomials.items():
+        x = _factor(name, state, targets, cache)
+        top = max(powers)
+        value = x * _column(powers[top])
+        for power in range(top - 1, 0, -1):
+            if power in powers:
+                value += _column(powers[power])
+            value *= x
+        total += value
     return total
+
+
+# Factors that depend on the candidate target (the rest depend on the state alone).
+TARGET_FACTORS = frozenset({"target", "abs_target", "gap", "abs_gap", "trade", "abs_trade"})
+
+
+@functools.lru_cache(maxsize=1024)
+def _split_term(term: str) -> tuple[tuple[tuple[str, int], ...], tuple[str, ...]]:
+    """``"gap^2*moneyness*gap"`` -> (((gap, 3),), ("moneyness",)): target factors with their total
+    powers, sorted, and the state factors as written."""
+    powers: dict[str, int] = {}
+    state_part = []
+    for factor in term.split("*"):
+        name, _, power = factor.partition("^")
+        if name in TARGET_FACTORS:
+            powers[name] = powers.get(name, 0) + (int(power) if power else 1)
+        else:
+            state_part.append(factor)
+    return tuple(sorted(powers.items())), tuple(state_part)
+
+
+def _power_name(name: str, power: int) -> str:
+    return name if power == 1 else f"{name}^{power}"
+
+
+def _state_factor(factor: str, state: StateFeatures, cache: dict) -> np.ndarray | float:
+    """A state feature or its power, per row (n,)."""
+    if factor not in cache:
+        name, _, power = factor.partition("^")
+        if name == "1":
+            cache[factor] = 1.0
+        elif name not in state.values:
+            raise ValueError(f"unknown feature {name!r}; known: {', '.join(FEATURES)} and market factors")
+        else:
+            cache[factor] = state.values[name] ** (int(power) if power else 1)
+    return cache[factor]
+
+
+def _column(row: np.ndarray | float) -> np.ndarray | float:
+    """A per-row coefficient as a column that broadcasts over candidates."""
+    return row[:, None] if isinstance(row, np.ndarray) else row
 
 
 def check_terms(terms, factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:

@@ -39,15 +39,38 @@ def default_regressor() -> HistGradientBoostingRegressor:
                                          early_stopping=False, random_state=0)
 
 
-def _bilinear(table: np.ndarray, x_grid: np.ndarray, y_grid: np.ndarray, x: np.ndarray, y: np.ndarray):
-    """Interpolate ``table[x_grid, y_grid]`` (uniform grids) at x (n,) and y (n, C), clamped to the grid."""
-    fx = np.clip((x - x_grid[0]) / (x_grid[1] - x_grid[0]), 0.0, len(x_grid) - 1.000001)[:, None]
-    fy = np.clip((y - y_grid[0]) / (y_grid[1] - y_grid[0]), 0.0, len(y_grid) - 1.000001)
-    ix, iy = fx.astype(int), fy.astype(int)
-    wx, wy = fx - ix, fy - iy
-    low = table[ix, iy] * (1.0 - wy) + table[ix, iy + 1] * wy
-    high = table[ix + 1, iy] * (1.0 - wy) + table[ix + 1, iy + 1] * wy
-    return low * (1.0 - wx) + high * wx
+def _bilinear(table: np.ndarray, x_grid: np.ndarray, y_grid: np.ndarray, x: np.ndarray, y: np.ndarray,
+              cells: np.ndarray | None = None):
+    """Interpolate ``table[x_grid, y_grid]`` (uniform grids) at x (n,) and y (n, C), clamped to the grid.
+
+    ``cells`` is :func:`_cell_coefficients` of ``table`` when the caller keeps it.
+    """
+    nx, ny = table.shape
+    if cells is None:
+        cells = _cell_coefficients(table)
+    fx = np.clip((x - x_grid[0]) / (x_grid[1] - x_grid[0]), 0.0, nx - 1.000001)
+    fy = (y - y_grid[0]) / (y_grid[1] - y_grid[0])
+    np.clip(fy, 0.0, ny - 1.000001, out=fy)
+    ix, iy = fx.astype(np.intp), fy.astype(np.intp)
+    wx = (fx - ix)[:, None]
+    fy -= iy  # the weight in y
+    iy += (ix * (ny - 1))[:, None]  # the cell's flat index
+    c = cells[iy]  # (n, C, 4): one read per candidate
+    value = c[..., 3] * fy
+    value += c[..., 2]
+    value *= wx
+    value += c[..., 0]
+    value += c[..., 1] * fy
+    return value
+
+
+def _cell_coefficients(table: np.ndarray) -> np.ndarray:
+    """Per grid cell, flat (cells, 4): ``a, b, c, d`` with the bilinear value ``a + b wy + wx (c + d wy)``."""
+    a = table[:-1, :-1]
+    along_y = table[:-1, 1:] - a
+    along_x = table[1:, :-1] - a
+    twist = table[1:, 1:] - table[1:, :-1] - along_y
+    return np.ascontiguousarray(np.stack([a, along_y, along_x, twist], axis=-1).reshape(-1, 4))
 
 
 class FittedQAgent(BackwardQAgent):
@@ -147,4 +170,16 @@ class FittedQAgent(BackwardQAgent):
             return self._regress(k, state, targets)
         moneyness, table = self.tables_[k]
         gaps = (targets - state.hedge[:, None]) / self.move_
-        return _bilinear(table, moneyness, TABLE_GAPS, state.values["moneyness"], gaps)
+        return _bilinear(table, moneyness, TABLE_GAPS, state.values["moneyness"], gaps, self._cells(k))
+
+    def _cells(self, k: int) -> np.ndarray:
+        """Cell coefficients of ``tables_[k]``, kept once built (a cache, not pickled)."""
+        cache = self.__dict__.setdefault("_table_cells", {})
+        if k not in cache:
+            cache[k] = _cell_coefficients(self.tables_[k][1])
+        return cache[k]
+
+    def __getstate__(self):
+        state = dict(super().__getstate__())
+        state.pop("_table_cells", None)
+        return state

@@ -23,6 +23,7 @@ from functools import lru_cache
 import joblib
 import numpy as np
 import pytest
+from scipy.interpolate import RegularGridInterpolator
 from sklearn.base import clone
 from sklearn.linear_model import Ridge
 from sklearn.neighbors import KNeighborsRegressor
@@ -31,8 +32,9 @@ from threadpoolctl import threadpool_limits
 from agents.backward import DEFAULT_BAND_WIDTHS, candidate_targets
 from agents.baselines import DeltaHedge
 from agents.dataset import Exploration, Transitions, collect_chunks
-from agents.features import combination, hedge_move, state_features
+from agents.features import POLYNOMIAL_BASIS, basis_columns, combination, hedge_move, state_features
 from agents.fitted_q import FittedQAgent
+from agents.fitted_q import _bilinear as table_bilinear
 from agents.linear import LinearBasisAgent
 from hedge_env.env import default_problem
 from hedge_env.frictions import Frictions
@@ -284,6 +286,41 @@ def test_candidate_set_always_holds_no_trade_the_hedge_and_every_band_edge():
                                                    for width in DEFAULT_BAND_WIDTHS for sign in (-1.0, 1.0)]
         for value in required:
             assert (candidates == value[:, None]).any(axis=1).all()
+
+
+def test_grouped_combination_equals_the_design_times_the_coefficients_for_any_terms():
+    # Identity (distributivity): combination groups terms by their target factors, sums the state
+    # factors per row and powers by Horner's rule; only rounding may differ from design @ coefficients.
+    problem, _ = reference(0.001)
+    rng = np.random.default_rng(8)
+    terms = POLYNOMIAL_BASIS + ("1", "moneyness", "hat4", "trade*abs_trade", "gap*target^2*gamma",
+                                "abs_trade^3*hat4", "target", "years_left*gap^2", "gap*gap")
+    coef = rng.normal(size=len(terms))
+    for k in (0, 17, problem.schedule.steps - 1):
+        rows = mixed_batch(problem, n=400, seed=k)
+        rows[:, 1] = problem.years_to_horizon(k)
+        state = state_features(problem, rows)
+        targets = candidate_targets(state, DEFAULT_BAND_WIDTHS, (0.25, 0.5, 0.75), np.inf, hedge_move(problem))
+        expected = np.tensordot(coef, basis_columns(terms, state, targets), axes=1)
+        scale = np.abs(basis_columns(terms, state, targets) * coef[:, None, None]).sum(axis=0).max()
+        assert np.max(np.abs(combination(terms, coef, state, targets) - expected)) <= 1e-13 * scale
+
+
+def test_fitted_q_table_reading_is_bilinear_interpolation_clamped_at_the_grid_edges():
+    # scipy.interpolate.RegularGridInterpolator (method "linear"), a reference library, at points
+    # clipped to the grid. The reader clamps 1e-6 of a cell inside the upper edges, which moves a value
+    # there by at most 1e-6 of the largest difference between neighbouring table entries.
+    rng = np.random.default_rng(9)
+    x_grid, y_grid = np.linspace(-0.3, 0.25, 31), np.linspace(-6.0, 6.0, 41)
+    table = rng.normal(size=(31, 41)).cumsum(axis=0).cumsum(axis=1)
+    x = rng.uniform(-0.4, 0.35, 500)
+    y = rng.uniform(-7.0, 7.0, (500, 9))
+    reference_reader = RegularGridInterpolator((x_grid, y_grid), table, method="linear")
+    points = np.stack(np.broadcast_arrays(np.clip(x, x_grid[0], x_grid[-1])[:, None],
+                                          np.clip(y, y_grid[0], y_grid[-1])), axis=-1)
+    expected = reference_reader(points.reshape(-1, 2)).reshape(y.shape)
+    step = max(np.abs(np.diff(table, axis=0)).max(), np.abs(np.diff(table, axis=1)).max())
+    assert np.max(np.abs(table_bilinear(table, x_grid, y_grid, x, y) - expected)) <= 2e-6 * step + 1e-12
 
 
 # --- the dataset ----------------------------------------------------------------------------------

@@ -307,6 +307,50 @@ def test_permanent_impact_falls_back_to_direct_evaluation_that_agrees_in_the_no_
     assert np.allclose(direct.act(rows), direct.policy_[2, np.arange(10, 20), np.arange(5, 15)])
 
 
+# --- the greedy policy: table-assisted act against the exact maximisation ---------------------------
+
+
+@pytest.mark.parametrize("case", ["50bps", "fixed_cost_and_impact"])
+def test_act_takes_the_decisions_of_the_exact_maximisation(case):
+    # Identity: act reads policy_ only where a row's four grid states all stay and maximises the same Q
+    # elsewhere, over a window of targets around theirs; act_exact maximises over every grid target. On
+    # states the policy visits and on random states the targets must agree (a fixed cost makes the best
+    # target jump, which a window could miss: at most 1% of rows), and the paired objective difference
+    # on paths must be within 3 of its own standard errors (zero when every decision agrees).
+    if case == "50bps":
+        agent, _ = fitted_reference(0.005)
+        problem, market = reference(0.005)
+    else:
+        frictions = Frictions(cost_rate=0.001, fixed_cost=0.01, impact_coefficient=0.05, impact_exponent=1.0,
+                              adv_shares=1.0)
+        problem, market = replace(reference()[0], frictions=frictions), reference()[1]
+        agent = GridDPAgent(problem, spot_points=61, holding_points=81, quadrature_nodes=8).fit()
+
+    class Exact:
+        name = "exact"
+        act = staticmethod(agent.act_exact)
+
+    results = rollout_many(problem, {"fast": agent, "exact": Exact()}, market, 2000, HELD_OUT_SEED,
+                           keep_holdings=True)
+    same_path = (results["fast"].holdings == results["exact"].holdings).all(axis=1)
+    mean, error = paired(results["fast"].reward, results["exact"].reward)
+    print(f"{case}: identical holdings on {same_path.mean():.2%} of paths; fast - exact {mean:.2e} +- {error:.2e}")
+    assert same_path.mean() >= 0.99
+    assert abs(mean) <= 3 * error
+
+    rng = np.random.default_rng(11)
+    n = 20_000
+    k = rng.integers(0, problem.schedule.steps, n)
+    spots = problem.reference_spot * np.exp(rng.normal(0.0, 0.06, n))
+    hedge = -problem.book.value_and_delta(spots, k * problem.schedule.step_days, problem.marks)[1]
+    holdings = hedge + rng.normal(0.0, 0.1, n) * problem.notional_shares
+    rows = np.column_stack([spots / problem.reference_spot, problem.years_to_horizon(k),
+                            holdings / problem.notional_shares])
+    agreement = np.mean(agent.act(rows) == agent.act_exact(rows))
+    print(f"{case}: same target on {agreement:.3%} of random states")
+    assert agreement >= 0.99
+
+
 # --- estimator habits -----------------------------------------------------------------------------
 
 
@@ -331,6 +375,8 @@ def test_get_params_clone_and_joblib_round_trip_act_identically(tmp_path):
                             rng.uniform(-0.1, 1.1, n)]).astype(np.float32)
     assert np.array_equal(loaded.act(rows), agent.act(rows))
     assert np.array_equal(loaded.value(rows), agent.value(rows))
+    # What act keeps to run faster is a cache, not fitted state: it is not saved.
+    assert "_q_tables" in agent.__dict__ and "_q_tables" not in joblib.load(path).__dict__
 
 
 def test_act_rejects_rows_between_rehedge_times():
