@@ -31,7 +31,9 @@ row instead of giving marks 100 times off.
 
 from __future__ import annotations
 
+import csv
 import hashlib
+import io
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -115,6 +117,16 @@ class History:
 # ---------------------------------------------------------------------------------------------
 
 
+def _check_field_counts(path: Path, text: str) -> None:
+    """Every non-blank row has as many fields as the header (else pandas would shift columns)."""
+    reader = csv.reader(io.StringIO(text))
+    header = next(reader, [])
+    for row in reader:
+        if row and len(row) != len(header):
+            raise HistoryError(f"{path}: row {reader.line_num}: {len(row)} fields, the header (row 1) has "
+                               f"{len(header)}")
+
+
 def load_history(
     path: str | Path,
     date_column: str = "date",
@@ -165,19 +177,26 @@ def load_history(
     if not raw.strip():
         raise HistoryError(f"{path}: empty file (expected a header row and one row per trading day)")
     try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        row = raw[: exc.start].count(b"\n") + 1
+        raise HistoryError(f"{path}: row {row}: not UTF-8 text (bad byte at offset {exc.start})") from None
+    _check_field_counts(path, text)
+    try:
         # Every cell as text: the rules below parse it and name the row of any bad one. Blank
         # lines are kept as rows so that row numbers stay those of the file.
-        table = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=False,
-                            skipinitialspace=True, encoding="utf-8")
-    except UnicodeDecodeError as exc:
-        raise HistoryError(f"{path}: not UTF-8 text (bad byte at offset {exc.start})") from None
+        table = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False, skip_blank_lines=False,
+                            skipinitialspace=True)
     except (pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
         raise HistoryError(f"{path}: not a readable CSV ({' '.join(str(exc).split())})") from None
     table.columns = [str(c).strip() for c in table.columns]
     wanted = [date_column, close_column] + ([implied_volatility_column] if implied_volatility_column else [])
     for column in wanted:
         if column not in table.columns:
-            raise HistoryError(f"{path}: column {column!r} not found; columns: {', '.join(table.columns)}")
+            hint = " (fields must be separated by ',')" if len(table.columns) == 1 and any(
+                mark in table.columns[0] for mark in ";\t|") else ""
+            raise HistoryError(f"{path}: row 1 (header): column {column!r} not found; "
+                               f"columns: {', '.join(table.columns)}{hint}")
     if len(table) == 0:
         raise HistoryError(f"{path}: no rows after the header")
     rows = np.arange(len(table)) + _FIRST_ROW

@@ -71,11 +71,21 @@ GOOD = "date,close,iv\n2024-01-02,10.0,0.2\n2024-01-03,10.5,0.21\n2024-01-04,10.
     ("date,price\n2024-01-02,10\n", {}, "column 'close' not found; columns: date, price"),
     ("date,close\n2024-01-02,10\n", {"implied_volatility_column": "vol"}, "column 'vol' not found"),
     ("", {}, "empty file"),
+    ("date;close\n2024-01-02;10\n", {}, "row 1 (header): column 'date' not found; columns: date;close "
+                                        "(fields must be separated by ',')"),
+    ("date\tclose\n2024-01-02\t10\n", {}, "row 1 (header): column 'date' not found"),
+    ("date,close\n2024-01-02,10\n2024-01-03,11,5\n", {}, "row 3: 3 fields, the header (row 1) has 2"),
+    ("date,close,iv\n2024-01-02,10,0.2\n2024-01-03,11\n", {"implied_volatility_column": "iv"},
+     "row 3: 2 fields, the header (row 1) has 3"),
+    ("date,close\n2024-01-02,10\n2024-01-03,nan\n", {}, "row 3: close 'nan' is not a number"),
+    ("date,close,iv\n2024-01-02,10,NaN\n", {"implied_volatility_column": "iv"}, "row 2: iv 'NaN' is not a number"),
+    ("date,close\n2024-01-02,10\n2024-01-03,1\udce90\n", {}, "row 3: not UTF-8 text"),
+    ("\x00\x01\udcff\udcfe\udc89PNG\r\n\x1a\n", {}, "row 1: not UTF-8 text"),
     ("date,close\n", {}, "no rows after the header"),
 ])
 def test_malformed_csv_is_one_line_naming_the_row_and_the_rule(tmp_path, text, options, expected):
     path = tmp_path / "history.csv"
-    path.write_text(text)
+    path.write_bytes(text.encode("utf-8", "surrogateescape"))  # \udcXX: raw bytes that are not UTF-8
     with pytest.raises(HistoryError) as caught:
         load_history(path, **options)
     message = str(caught.value)
