@@ -431,6 +431,23 @@ _MARKERS = "osD^v<>ph*"
 
 def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
                      colors: dict[str, str]) -> tuple[str, str]:
+    figure, caption = _frontier_plot(scored, siblings, colors)
+    return _png_data_uri(figure), caption
+
+
+def write_frontier(run_dirs: Sequence[Path], target: Path) -> Path:
+    """The cost-risk frontier across scored run folders (the cells of a sweep) as a PNG file."""
+    scored = _load_scored(Path(run_dirs[0]))
+    others = [_read_sibling(path) for path in run_dirs[1:]]
+    config_order = [spec.name for spec in [*scored.run.config.baselines, *scored.run.config.agents]]
+    colors = _colors([*config_order, *(r["name"] for r in scored.records if r["name"] not in config_order)])
+    with matplotlib.rc_context(_STYLE):
+        figure, _ = _frontier_plot(scored, others, colors)
+        figure.savefig(target, format="png", dpi=_DPI, metadata={"Software": None})
+    return Path(target)
+
+
+def _frontier_plot(scored: _Scored, siblings: list[tuple[Path, dict, dict]], colors: dict[str, str]):
     here = (scored.run.path, scored.metrics, scored.run.config.model_dump(mode="json"))
     variants, labels = _order_variants([here, *siblings])
     names = [r["name"] for r in scored.records]
@@ -472,7 +489,7 @@ def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
     if skipped:
         caption += (f" Not shown: {', '.join(skipped)} (its P&L spread is over {_OUTLIER_SPREAD:g} times the "
                     "median policy's).")
-    return _png_data_uri(figure), caption
+    return figure, caption
 
 
 # ---------------------------------------------------------------------------------------------

@@ -24,12 +24,12 @@ from sklearn import ensemble, linear_model, neighbors, neural_network
 
 import hedge_env
 from agents.config import Config, ConfigError, config_hash, parse_config
-from agents.dataset import Exploration, Transitions, collect
+from agents.dataset import Exploration, TransitionStore, Transitions, collect
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
-from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines, training_paths
-from hedge_env.market import GBMMarket, PathGenerator
+from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines
+from hedge_env.market import GBMMarket, PathGenerator, PathSet
 from hedge_env.problem import HedgingProblem
 
 REGRESSOR_CLASSES = {
@@ -121,13 +121,10 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
     agents = {spec.name: build_agent(spec, i, problem, market) for i, spec in enumerate(config.agents)}
     outcome = Training(config, problem, market, {}, {}, {})
     data = config.data
-    clock = time.perf_counter()
-    advance = start("simulating training paths", data.train_paths)
-    paths = training_paths(config, market, problem)
-    advance(data.train_paths)
-    outcome.timings["simulate_s"] = time.perf_counter() - clock
+    # Drawn a chunk at a time whenever needed, never held whole: memory stays bounded at any path count.
+    paths = PathSet(market, data.train_paths, problem.schedule.steps, problem.dt_years, data.train_seed)
     outcome.sizes.update(train_paths=data.train_paths, steps=problem.schedule.steps)
-    outcome.note(f"simulated {data.train_paths} training paths x {problem.schedule.steps} steps, seed {data.train_seed}")
+    outcome.note(f"training paths: {data.train_paths} x {problem.schedule.steps} steps, seed {data.train_seed}")
 
     clock = time.perf_counter()
     start("tuning baselines", 1)
@@ -136,7 +133,7 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
     for name, result in outcome.tuning.items():
         outcome.note(f"tuned {name}.{result.parameter} = {result.value:.6g} (train objective {result.objective:.6g})")
 
-    transitions: dict[Exploration, Transitions] = {}
+    transitions: dict[Exploration, TransitionStore] = {}
     for index, spec in enumerate(config.agents):
         agent = agents[spec.name]
         clock = time.perf_counter()
@@ -146,21 +143,39 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
             exploration = _exploration(spec)
             if exploration not in transitions:
                 advance = start(f"collecting transitions ({spec.name})", data.train_paths)
-                parts = []
-                for i, begin in enumerate(range(0, data.train_paths, data.chunk_paths)):
-                    chunk = paths.rows(begin, min(begin + data.chunk_paths, data.train_paths))
-                    seed = np.random.SeedSequence(data.train_seed, spawn_key=(1, i))
-                    parts.append(collect(problem, chunk, exploration, seed, market.observed_factors))
-                    advance(chunk.n_paths)
-                transitions[exploration] = Transitions.concat(parts)
-                rows = transitions[exploration].actions.size
+                transitions[exploration] = store = TransitionStore()
+                for chunk in collect_training_chunks(problem, paths, exploration, data.train_seed,
+                                                     data.chunk_paths):
+                    store.add(chunk)
+                    advance(chunk.n_states)
+                rows = store.n_states * exploration.actions_per_state * problem.schedule.steps
                 outcome.sizes[f"transitions_{spec.name}"] = rows
-                outcome.note(f"collected {rows} transitions for {spec.name}")
+                outcome.note(f"collected {rows} transitions for {spec.name}"
+                             + (f" ({store.spilled} of {len(store)} chunks on disk)" if store.spilled else ""))
             agent.fit(transitions[exploration], progress=start(f"fitting {spec.name}", problem.schedule.steps))
         outcome.timings[f"fit_{spec.name}_s"] = time.perf_counter() - clock
         outcome.note(f"fitted {spec.name} ({spec.kind}) in {outcome.timings[f'fit_{spec.name}_s']:.2f} s")
         outcome.agents[spec.name] = agent
+    for store in transitions.values():
+        store.close()  # removes its files (also done when a failed fit drops it)
     return outcome
+
+
+def collect_training_chunks(problem: HedgingProblem, paths: PathSet, exploration: Exploration, train_seed: int,
+                            chunk_paths: int):
+    """Transitions of the training paths, ``chunk_paths`` paths at a time; chunk i's behaviour draws
+    come from ``SeedSequence(train_seed, spawn_key=(1, i))``."""
+    for i, begin in enumerate(range(0, paths.n_paths, chunk_paths)):
+        yield collect_training_chunk(problem, paths, exploration, train_seed, chunk_paths, i)
+
+
+def collect_training_chunk(problem: HedgingProblem, paths: PathSet, exploration: Exploration, train_seed: int,
+                           chunk_paths: int, index: int) -> Transitions:
+    """Chunk ``index`` of :func:`collect_training_chunks` alone (what a worker collects)."""
+    begin = index * chunk_paths
+    chunk = paths.rows(begin, min(begin + chunk_paths, paths.n_paths))
+    seed = np.random.SeedSequence(train_seed, spawn_key=(1, index))
+    return collect(problem, chunk, exploration, seed, paths.observed_factors)
 
 
 def _timestamp() -> str:
