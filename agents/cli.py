@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import subprocess
 import sys
 from contextlib import contextmanager
 from pathlib import Path
@@ -17,6 +18,7 @@ from agents.config import ConfigError, load_config, load_variants
 from agents.evaluate import evaluate_with_quotes, write_metrics
 from agents.report import build_report, format_money
 from agents.scenario import build_market, build_problem, prepare_baselines
+from agents.sweep import run_sweep, sweep_cells
 from agents.training import load_run, train, write_run
 
 CAUTION = (
@@ -299,6 +301,69 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehe
     except ConfigError as error:
         fail(str(error))
     console.print(f"report: {path} ({path.stat().st_size / 1e6:.2f} MB)", highlight=False)
+
+
+@app.command("sweep")
+def sweep_command(
+    config: Path = typer.Argument(..., help="TOML config file with a [sweep] table."),
+    workers: int = typer.Option(1, "--workers", min=1, help="Local worker processes (1: one cell after another)."),
+    scheduler: str = typer.Option(None, "--scheduler", help="dask.distributed scheduler, e.g. tcp://HOST:8786."),
+    resume: bool = typer.Option(False, "--resume", help="Keep finished cells of the sweep folder; run the rest."),
+    runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where the sweep folder goes."),
+    sweep_dir: Path = typer.Option(None, "--sweep-dir", help="The sweep folder (default RUNS_DIR/NAME-sweep)."),
+    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths per cell (default: data.heldout_paths)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
+) -> None:
+    """Run every cell of CONFIG's sweep (each a run folder of its own) locally or on a dask cluster;
+    write the combined table (sweep.csv, sweep.json) and the cost-risk frontier (frontier.png)."""
+    try:
+        _, cells = sweep_cells(config)
+        with _progress(quiet) as start:
+            result = run_sweep(config, runs_dir=runs_dir, sweep_dir=sweep_dir, workers=workers,
+                               scheduler=scheduler, resume=resume, heldout_paths=paths,
+                               progress=start(f"sweep: {len(cells)} cells", len(cells)))
+    except ConfigError as error:
+        fail(str(error))
+    except ConnectionError as error:
+        fail(f"--scheduler {scheduler}: {error}")
+    if as_json:
+        sys.stdout.write((result.folder / "sweep.json").read_text())
+    else:
+        _print_sweep(result)
+    if result.failed:
+        errors.print(f"error: {len(result.failed)} of {len(result.cells)} cells failed; see "
+                     f"{result.folder / 'failures.json'}", markup=False, highlight=False)
+        raise typer.Exit(1)
+
+
+def _print_sweep(result) -> None:
+    keys = [key for key in result.table.columns if key in result.cells[0].overrides]
+    table = Table(title=f"sweep {result.folder}: {len(result.cells)} cells in {result.seconds:.0f} s; money in "
+                        "currency units, costs per path", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    for header in [*(k.rsplit(".", 1)[-1] for k in keys), "status", "policy", "objective", "std P&L", "CVaR 95",
+                   "cost"]:
+        table.add_column(header, justify="left" if header in ("status", "policy") else "right", no_wrap=True)
+    for row in result.table.to_dict("records"):
+        numbers = [_money(row[k]) if row.get(k) == row.get(k) and row.get(k) is not None else "-"
+                   for k in ("objective", "std_pnl", "cvar_95", "mean_cost")]
+        table.add_row(*(f"{row[k]:g}" if isinstance(row[k], float) else str(row[k]) for k in keys),
+                      row["status"], row["policy"] or row["error"][:60], *numbers)
+    console.print(table)
+    if (result.folder / "frontier.png").is_file():
+        console.print(f"cost-risk frontier: {result.folder / 'frontier.png'}", highlight=False)
+    console.print(f"combined table: {result.folder / 'sweep.csv'} (and sweep.json)", highlight=False)
+    console.print(CAUTION, style="dim", highlight=False)
+
+
+@app.command("bench")
+def bench_command(quick: bool = typer.Option(False, "--quick", help="Small sizes: a minute or two.")) -> None:
+    """Print the benchmark table (speed, scaling, memory, sweep speed-up): `python -m benchmarks`."""
+    root = Path(__file__).resolve().parents[1]
+    if not (root / "benchmarks" / "__main__.py").is_file():
+        fail("the benchmarks live in the source tree: run `rehedge bench` from a checkout (pip install -e .)")
+    code = subprocess.call([sys.executable, "-m", "benchmarks", *(["--quick"] if quick else [])], cwd=root)
+    raise typer.Exit(code)
 
 
 def _policies_of(source: Path, start):

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import math
 import shutil
 import tempfile
 import time
@@ -104,8 +105,8 @@ def sweep_cells(config_path: str | Path) -> tuple[Config, list[Cell]]:
     return base, cells
 
 
-def run_cell(cell: Cell, config_text: str = "", heldout_paths: int | None = None) -> CellOutcome:
-    """Train, score and report one cell in a temporary folder; return the folder's files.
+def run_cell(cell: Cell, config_text: str = "", heldout_paths: int | None = None, report: bool = True) -> CellOutcome:
+    """Train, score and (with ``report``) report one cell in a temporary folder; return the folder's files.
 
     Any error is caught and returned: a failed cell is reported, it does not stop a sweep.
     """
@@ -128,7 +129,8 @@ def run_cell(cell: Cell, config_text: str = "", heldout_paths: int | None = None
                 reference=reference if reference in training.policies else None,
                 bootstrap_samples=config.report.bootstrap_samples)
             write_metrics(evaluation, run_dir)
-            build_report(run_dir)
+            if report:
+                build_report(run_dir)
             files = {path.relative_to(run_dir).as_posix(): path.read_bytes()
                      for path in sorted(run_dir.rglob("*")) if path.is_file()}
     except Exception as error:  # noqa: BLE001 - recorded in the sweep's table and failures.json
@@ -175,7 +177,7 @@ def default_sweep_dir(base: Config, runs_dir: Path) -> Path:
 
 def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_dir: str | Path | None = None,
               workers: int = 1, scheduler=None, resume: bool = False, heldout_paths: int | None = None,
-              threads: int = THREADS_PER_TASK,
+              threads: int = THREADS_PER_TASK, report: bool = True,
               progress: Callable[[int], None] | None = None) -> SweepResult:
     """Run every cell of the sweep in ``config_path`` and write the combined table and frontier.
 
@@ -197,6 +199,8 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
         Held-out paths per cell (default each cell's ``data.heldout_paths``).
     threads : int
         BLAS/OpenMP threads per cell.
+    report : bool
+        Write each cell's report.html (most of a small cell's time goes into its figures).
     progress : callable, optional
         Called with 1 as each cell ends.
     """
@@ -223,7 +227,7 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
         else:
             todo.append(cell)
     failures = []
-    items = [(cell, config_text, heldout_paths) for cell in todo]
+    items = [(cell, config_text, heldout_paths, report) for cell in todo]
     for index, outcome, lost in run_each(_run_item, items, workers=workers, scheduler=scheduler, threads=threads):
         cell = todo[index]
         if lost is not None:
@@ -252,7 +256,7 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
         timespec="seconds"), "keys": list(base.sweep), "cells": len(cells), "workers": workers,
         "scheduler": _address(scheduler),
         "status": status, "seconds": round(seconds, 2)}
-    rows = json.loads(table.to_json(orient="records"))
+    rows = [{key: _plain(value) for key, value in row.items()} for row in table.to_dict("records")]
     _write_atomic(folder / "sweep.json", json.dumps({"sweep": meta, "rows": rows}, indent=2) + "\n")
     done = [cells_dir / cell.name for cell in cells if status[cell.name] in ("ok", "resumed")]
     frontier = folder / "frontier.png"
@@ -302,6 +306,15 @@ def combined_table(cells: list[Cell], cells_dir: Path, status: dict[str, str],
         else:
             rows.append({**head, "run": "", "error": errors.get(cell.name, ""), "name": ""})
     return pd.DataFrame(rows).rename(columns={"name": "policy"})
+
+
+def _plain(value):
+    """A table value for JSON: numbers exactly as in the cells' metrics.json, missing ones as null."""
+    if hasattr(value, "item"):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
 
 
 def _address(scheduler) -> str | None:

@@ -50,7 +50,10 @@ def connect(scheduler):
         raise RuntimeError("a dask scheduler needs dask.distributed: pip install 'rehedge[cluster]'") from None
     if isinstance(scheduler, Client):
         return scheduler
-    return Client(scheduler, timeout="20s")
+    try:
+        return Client(scheduler, timeout="20s")
+    except (OSError, TimeoutError, ValueError) as error:
+        raise ConnectionError(f"cannot reach the dask scheduler ({' '.join(str(error).split())})") from None
 
 
 def run_each(function: Callable, items: Iterable, workers: int = 1, scheduler=None,
