@@ -307,7 +307,7 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehe
 def sweep_command(
     config: Path = typer.Argument(..., help="TOML config file with a [sweep] table."),
     workers: int = typer.Option(1, "--workers", min=1, help="Local worker processes (1: one cell after another)."),
-    scheduler: str = typer.Option(None, "--scheduler", help="dask.distributed scheduler, e.g. tcp://HOST:8786."),
+    scheduler: str = typer.Option(None, "--scheduler", help="dask.distributed scheduler, e.g. tcp://HOST:8786 (then --workers is ignored)."),
     resume: bool = typer.Option(False, "--resume", help="Keep finished cells of the sweep folder; run the rest."),
     runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where the sweep folder goes."),
     sweep_dir: Path = typer.Option(None, "--sweep-dir", help="The sweep folder (default RUNS_DIR/NAME-sweep)."),

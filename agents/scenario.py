@@ -10,7 +10,7 @@ from agents.config import Config
 from agents.tuning import tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
-from hedge_env.market import GBMMarket, PathGenerator
+from hedge_env.market import GBMMarket, PathGenerator, PathSet
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 
@@ -100,6 +100,12 @@ def training_paths(config: Config, market: PathGenerator, problem: HedgingProble
     return market.generate(config.data.train_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
 
 
+def training_path_set(config: Config, market: PathGenerator, problem: HedgingProblem) -> PathSet:
+    """The paths of :func:`training_paths`, drawn a chunk at a time when used: memory stays bounded
+    at any path count (a rollout over it: ``rollout(problem, policy, paths, paths.n_paths)``)."""
+    return PathSet(market, config.data.train_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
+
+
 def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGenerator, train=None):
     """Every configured baseline, with parameters set to "tune" fitted on the training paths.
 
@@ -110,7 +116,7 @@ def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGener
     tuning = {}
     wanted = tuned_parameters(config)
     if wanted:
-        train = training_paths(config, market, problem) if train is None else train
+        train = training_path_set(config, market, problem) if train is None else train
         for name, parameter in wanted.items():
             result = tune_parameter(problem, policies[name], parameter, train, config.data.chunk_paths)
             policies[name] = replace(policies[name], **{parameter: result.value})

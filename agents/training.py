@@ -28,7 +28,7 @@ from agents.dataset import Exploration, TransitionStore, Transitions, collect
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
-from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines
+from agents.scenario import build_baseline, build_market, build_problem, prepare_baselines, training_path_set
 from hedge_env.market import GBMMarket, PathGenerator, PathSet
 from hedge_env.problem import HedgingProblem
 
@@ -122,7 +122,7 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
     outcome = Training(config, problem, market, {}, {}, {})
     data = config.data
     # Drawn a chunk at a time whenever needed, never held whole: memory stays bounded at any path count.
-    paths = PathSet(market, data.train_paths, problem.schedule.steps, problem.dt_years, data.train_seed)
+    paths = training_path_set(config, market, problem)
     outcome.sizes.update(train_paths=data.train_paths, steps=problem.schedule.steps)
     outcome.note(f"training paths: {data.train_paths} x {problem.schedule.steps} steps, seed {data.train_seed}")
 
