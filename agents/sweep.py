@@ -252,10 +252,10 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
     table = combined_table(cells, cells_dir, status, errors)
     seconds = time.perf_counter() - clock
     _write_atomic(folder / "sweep.csv", table.to_csv(index=False))
-    meta = {"config": str(config_path), "name": base.name, "created": datetime.now(timezone.utc).isoformat(
-        timespec="seconds"), "keys": list(base.sweep), "cells": len(cells), "workers": workers,
-        "scheduler": _address(scheduler),
-        "status": status, "seconds": round(seconds, 2)}
+    meta = {"config": str(config_path), "name": base.name,
+            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"), "keys": list(base.sweep),
+            "cells": len(cells), "workers": workers, "scheduler": _address(scheduler), "status": status,
+            "seconds": round(seconds, 2)}
     rows = [{key: _plain(value) for key, value in row.items()} for row in table.to_dict("records")]
     _write_atomic(folder / "sweep.json", json.dumps({"sweep": meta, "rows": rows}, indent=2) + "\n")
     done = [cells_dir / cell.name for cell in cells if status[cell.name] in ("ok", "resumed")]

@@ -181,12 +181,18 @@ def test_resume_reruns_a_cell_whose_folder_is_incomplete_and_a_fresh_run_refuses
     assert cell_metrics(folder) == cell_metrics(serial.folder)
 
 
-def test_sweep_command_prints_the_combined_table_as_json_and_writes_each_cell_report(config_file, tmp_path):
+def test_sweep_command_prints_the_combined_table_as_json_and_writes_each_cell_report(tmp_path):
+    config = tmp_path / "two.toml"
+    config.write_text(SWEEP.replace("seed = [1, 2]\n", ""))  # two cells
     runner = CliRunner()
-    out = runner.invoke(app, ["sweep", str(config_file), "--sweep-dir", str(tmp_path / "s"), "--quiet", "--json",
+    out = runner.invoke(app, ["sweep", str(config), "--sweep-dir", str(tmp_path / "s"), "--quiet", "--json",
                               "--paths", "500"])
     assert out.exit_code == 0, out.output
     payload = json.loads(out.stdout)
-    assert payload["sweep"]["cells"] == 4 and len(payload["rows"]) == 4 * POLICIES
+    assert payload["sweep"]["cells"] == 2 and len(payload["rows"]) == 2 * POLICIES
     assert {row["paths"] for row in payload["rows"]} == {500}
-    assert (tmp_path / "s" / "cells" / "tiny-sweep-costrate0.001-seed1" / "report.html").is_file()
+    for name in ("tiny-sweep-costrate0.001", "tiny-sweep-costrate0.004"):
+        assert (tmp_path / "s" / "cells" / name / "report.html").is_file()
+    # A sweep folder in use is not overwritten: one line, exit code 2.
+    again = runner.invoke(app, ["sweep", str(config), "--sweep-dir", str(tmp_path / "s"), "--quiet"])
+    assert again.exit_code == 2 and "already holds a sweep" in again.output
