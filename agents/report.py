@@ -408,12 +408,14 @@ def _flatten(value, prefix: str = "") -> dict[str, object]:
     return {prefix[:-1]: value}
 
 
-def _order_variants(variants: list[tuple[Path, dict, dict]]) -> tuple[list[tuple[Path, dict, dict]], list[str]]:
-    """Runs in the order of the settings that differ between them, each with a short label such as
-    ``cost_rate=0.001`` (the run's config name when nothing but the name differs)."""
+def _order_variants(variants: list[tuple[Path, dict, dict]],
+                    swept: Sequence[str] = ()) -> tuple[list[tuple[Path, dict, dict]], list[str]]:
+    """Runs in the order of the settings that differ between them (the ``swept`` dotted keys when
+    given), each with a short label such as ``cost_rate=0.001`` (the run's config name when
+    nothing but the name differs)."""
     flats = [_flatten({k: v for k, v in config.items() if k not in ("name", "description", "sweep")})
              for _, _, config in variants]
-    keys = sorted({k for flat in flats for k in flat})
+    keys = list(swept) or sorted({k for flat in flats for k in flat})
     differing = [k for k in keys if len({json.dumps(flat.get(k), sort_keys=True) for flat in flats}) > 1][:3]
 
     def sort_key(index: int):
@@ -435,21 +437,23 @@ def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
     return _png_data_uri(figure), caption
 
 
-def write_frontier(run_dirs: Sequence[Path], target: Path) -> Path:
-    """The cost-risk frontier across scored run folders (the cells of a sweep) as a PNG file."""
+def write_frontier(run_dirs: Sequence[Path], target: Path, swept: Sequence[str] = ()) -> Path:
+    """The cost-risk frontier across scored run folders (the cells of a sweep, labelled by the
+    ``swept`` dotted keys) as a PNG file."""
     scored = _load_scored(Path(run_dirs[0]))
     others = [_read_sibling(path) for path in run_dirs[1:]]
     config_order = [spec.name for spec in [*scored.run.config.baselines, *scored.run.config.agents]]
     colors = _colors([*config_order, *(r["name"] for r in scored.records if r["name"] not in config_order)])
     with matplotlib.rc_context(_STYLE):
-        figure, _ = _frontier_plot(scored, others, colors)
+        figure, _ = _frontier_plot(scored, others, colors, swept)
         figure.savefig(target, format="png", dpi=_DPI, metadata={"Software": None})
     return Path(target)
 
 
-def _frontier_plot(scored: _Scored, siblings: list[tuple[Path, dict, dict]], colors: dict[str, str]):
+def _frontier_plot(scored: _Scored, siblings: list[tuple[Path, dict, dict]], colors: dict[str, str],
+                   swept: Sequence[str] = ()):
     here = (scored.run.path, scored.metrics, scored.run.config.model_dump(mode="json"))
-    variants, labels = _order_variants([here, *siblings])
+    variants, labels = _order_variants([here, *siblings], swept)
     names = [r["name"] for r in scored.records]
     skipped = _wide_policies({name: scored.heldout[f"pnl__{name}"] for name in names})
     tail_key = "cvar_95" if "cvar_95" in scored.records[0] else next(

@@ -263,7 +263,7 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
     if len(done) >= 2:
         from agents.report import write_frontier
 
-        write_frontier(done, frontier)
+        write_frontier(done, frontier, list(base.sweep))
     elif frontier.exists():
         frontier.unlink()
     return SweepResult(folder, cells, status, errors, table, seconds)
