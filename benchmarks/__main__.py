@@ -109,10 +109,12 @@ def sweep_seconds(quick: bool) -> tuple[int, float, float]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--quick", action="store_true", help="small sizes, a few minutes")
+    parser.add_argument("--memory-paths", type=int, default=None,
+                        help="paths of the memory run (default 1,000,000; 100,000 with --quick; 0 skips it)")
     args = parser.parse_args()
     quick = args.quick
     sizes = [1_000, 2_000, 4_000] if quick else [5_000, 20_000, 80_000]
-    memory_paths = 100_000 if quick else 1_000_000
+    memory_paths = args.memory_paths if args.memory_paths is not None else 100_000 if quick else 1_000_000
     print(f"rehedge benchmarks{' (quick)' if quick else ''}: {machine()}", flush=True)
 
     rows: list[tuple[str, str, str, str]] = []
@@ -132,10 +134,11 @@ def main() -> None:
             rows.append((f"  {name} fit time exponent", f"{exponent(points):.2f}",
                          f"{sizes[0]:,} to {sizes[-1]:,} paths", "<= 1.1" if name == "linear" else ""))
         rows.append(("grid-DP solve", f"{grid_dp_seconds():.2f} s", "151 spot x 201 holding points", ""))
-    figures = memory.measure(memory_paths, ["linear"])
-    rows.append(("peak RSS of a whole run", f"{figures['peak_rss_mb']:.0f} MB",
-                 f"{memory_paths:,} train + held-out paths x 30, linear agent, 2 baselines",
-                 "<= 1536 MB" if memory_paths == 1_000_000 else ""))
+    if memory_paths:
+        figures = memory.measure(memory_paths, ["linear"])
+        rows.append(("peak RSS of a whole run", f"{figures['peak_rss_mb']:.0f} MB",
+                     f"{memory_paths:,} train + held-out paths x 30, linear agent, 2 baselines",
+                     "<= 1536 MB" if memory_paths == 1_000_000 else ""))
     cells, serial_s, parallel_s = sweep_seconds(quick)
     rows.append(("sweep, 2 workers / serial", f"{parallel_s / serial_s:.2f}x",
                  f"{cells} cells: {parallel_s:.0f} s against {serial_s:.0f} s", "<= 0.65x"))
