@@ -460,7 +460,10 @@ def _frontier_plot(scored: _Scored, siblings: list[tuple[Path, dict, dict]], col
         (k for k in scored.records[0] if k.startswith("cvar_")), "std_pnl")
     risk_keys = (("std_pnl", "std of P&L per path (currency)"),
                  (tail_key, f"CVaR {tail_key[5:]} of the loss (currency)"))
-    figure, axes = _figure(10.5, 3.8, 1, 2, sharey=True)
+    # Many runs (a sweep's cells) have long labels: fewer legend columns, a taller figure for its rows.
+    columns = 8 if len(variants) <= 4 else 3
+    legend_rows = -(-(len(names) + len(variants)) // columns)
+    figure, axes = _figure(10.5, 3.8 + (0.22 * legend_rows if columns < 8 else 0.0), 1, 2, sharey=True)
     for ax, (key, label) in zip(axes[0], risk_keys):
         for name in names:
             if name in skipped:
@@ -485,7 +488,7 @@ def _frontier_plot(scored: _Scored, siblings: list[tuple[Path, dict, dict]], col
         handles.append(matplotlib.lines.Line2D([], [], linestyle="none", marker=_MARKERS[index % len(_MARKERS)],
                                                markersize=5, color="#5c6b73"))
         legend_labels.append(label)
-    _legend_below(figure, handles, legend_labels)
+    _legend_below(figure, handles, legend_labels, columns)
     caption = ("Cost-risk frontier: mean trading + impact cost per path against the spread of P&L, one "
                "marker per run of the sweep ("
                + "; ".join(f"{label}: {path.name}" for (path, _, _), label in zip(variants, labels))
