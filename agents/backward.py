@@ -100,6 +100,12 @@ def _chunks(data: TransitionSource) -> Iterable[Transitions]:
     return [data] if isinstance(data, Transitions) else data()
 
 
+def return_moment_sums(chunk: Transitions) -> tuple[float, float, int]:
+    """Sum and sum of squares of the one-step simple returns of a chunk, and their count."""
+    simple = chunk.next_obs[..., 0] / chunk.obs[..., 0] - 1.0
+    return float(simple.sum()), float((simple * simple).sum()), simple.size
+
+
 class BackwardQAgent(BaseEstimator):
     """Base of the batch agents; subclasses say how one decision time's regression is fitted.
 
@@ -120,10 +126,7 @@ class BackwardQAgent(BaseEstimator):
         """Fit from transitions: a Transitions block, or a callable returning an iterable of blocks
         (called once per decision time, so the data may be streamed from paths)."""
         steps = self.problem.schedule.steps
-        self.move_ = hedge_move(self.problem)
-        self._setup()
-        mean_return, self.mean_squared_return_ = self._return_moments(data)
-        self.drift_ = np.log1p(mean_return) / self.problem.dt_years if self.drift is None else float(self.drift)
+        self._begin_fit([return_moment_sums(chunk) for chunk in _chunks(data)])
         for k in reversed(range(steps)):
             self._start_step(k)
             for chunk in _chunks(data):
@@ -139,16 +142,19 @@ class BackwardQAgent(BaseEstimator):
     def _setup(self) -> None:
         """Reset learned state before a fit."""
 
-    def _return_moments(self, data: TransitionSource) -> tuple[float, float]:
-        """Mean and mean square of the one-step simple return over the training paths."""
+    def _begin_fit(self, moment_sums) -> None:
+        """Reset learned state and set the return moments from each chunk's
+        :func:`return_moment_sums` (summed in chunk order)."""
+        self.move_ = hedge_move(self.problem)
+        self._setup()
         total = total_squared = 0.0
         count = 0
-        for chunk in _chunks(data):
-            simple = chunk.next_obs[..., 0] / chunk.obs[..., 0] - 1.0
-            total += float(simple.sum())
-            total_squared += float((simple * simple).sum())
-            count += simple.size
-        return total / count, total_squared / count
+        for chunk_total, chunk_squared, chunk_count in moment_sums:
+            total += chunk_total
+            total_squared += chunk_squared
+            count += chunk_count
+        mean_return, self.mean_squared_return_ = total / count, total_squared / count
+        self.drift_ = np.log1p(mean_return) / self.problem.dt_years if self.drift is None else float(self.drift)
 
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Design, term-major of shape (n_terms, n, M), and targets (n, M) of step k: one row per

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import subprocess
 import sys
 from contextlib import contextmanager
 from pathlib import Path
@@ -260,28 +261,23 @@ def run(
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
-    from agents.evaluate import evaluate_with_quotes, write_metrics
+    from agents.config import ConfigError
     from agents.report import build_report
+    from agents.runner import run_config
+    from agents.table import TableError
 
     run_dirs = []
     variants = _load_variants(config)
     sweep = len(variants) > 1
     for cfg in variants:
-        training, run_dir = _train(cfg, config, runs_dir, quiet)
-        run_dirs.append(run_dir)
-        n_paths, seed = _heldout(cfg, training.heldout_market, paths, None)
-        with _progress(quiet) as start:
-            evaluation = evaluate_with_quotes(
-                training.problem, training.policies, training.heldout_market, n_paths, seed, kinds=training.kinds,
-                chunk_paths=cfg.data.chunk_paths, progress=start("hedging held-out paths", n_paths),
-                reference=_reference(cfg, training.policies), bootstrap_samples=cfg.report.bootstrap_samples,
-            )
-        write_metrics(evaluation, run_dir)
-        if cfg.export.policy is not None:
-            _export(cfg, training.problem, training.policies, cfg.export.policy, run_dir / "tables" / cfg.export.policy)
-        if not sweep:
-            build_report(run_dir)
-        _records_out(cfg, n_paths, seed, evaluation, training.tuning, as_json, run_dir)
+        try:
+            with _progress(quiet) as start:
+                outcome = run_config(cfg, config.read_text(), runs_dir, paths, start, report=not sweep)
+        except (ConfigError, TableError) as error:
+            fail(str(error))
+        run_dirs.append(outcome.run_dir)
+        _records_out(cfg, outcome.heldout_paths, outcome.heldout_seed, outcome.evaluation,
+                     outcome.training.tuning, as_json, outcome.run_dir)
     if sweep:
         # A sweep: every variant's report also draws the cost-risk frontier across the variants.
         for run_dir in run_dirs:
@@ -415,6 +411,72 @@ def advise(
         lines.append(f"  CLAMPED: {note}")
     console.print("\n".join(lines), highlight=False, markup=False)
     console.print(CAUTION, style="dim", highlight=False)
+
+
+@app.command("sweep")
+def sweep_command(
+    config: Path = typer.Argument(..., help="TOML config file with a [sweep] table."),
+    workers: int = typer.Option(1, "--workers", min=1, help="Local worker processes (1: one cell after another)."),
+    scheduler: str = typer.Option(None, "--scheduler", help="dask.distributed scheduler, e.g. tcp://HOST:8786 (then --workers is ignored)."),
+    resume: bool = typer.Option(False, "--resume", help="Keep finished cells of the sweep folder; run the rest."),
+    runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where the sweep folder goes."),
+    sweep_dir: Path = typer.Option(None, "--sweep-dir", help="The sweep folder (default RUNS_DIR/NAME-sweep)."),
+    paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths per cell (default: data.heldout_paths)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    quiet: bool = typer.Option(False, "--quiet", help="No progress bar."),
+) -> None:
+    """Run every cell of CONFIG's sweep (each a run folder of its own) locally or on a dask cluster;
+    write the combined table (sweep.csv, sweep.json) and the cost-risk frontier (frontier.png)."""
+    from agents.config import ConfigError
+    from agents.sweep import run_sweep, sweep_cells
+
+    try:
+        _, cells = sweep_cells(config)
+        with _progress(quiet) as start:
+            result = run_sweep(config, runs_dir=runs_dir, sweep_dir=sweep_dir, workers=workers,
+                               scheduler=scheduler, resume=resume, heldout_paths=paths,
+                               progress=start(f"sweep: {len(cells)} cells", len(cells)))
+    except ConfigError as error:
+        fail(str(error))
+    except ConnectionError as error:
+        fail(f"--scheduler {scheduler}: {error}")
+    if as_json:
+        sys.stdout.write((result.folder / "sweep.json").read_text())
+    else:
+        _print_sweep(result)
+    if result.failed:
+        errors.print(f"error: {len(result.failed)} of {len(result.cells)} cells failed; see "
+                     f"{result.folder / 'failures.json'}", markup=False, highlight=False)
+        raise typer.Exit(1)
+
+
+def _print_sweep(result) -> None:
+    keys = [key for key in result.table.columns if key in result.cells[0].overrides]
+    table = Table(title=f"sweep {result.folder}: {len(result.cells)} cells in {result.seconds:.0f} s; money in "
+                        "currency units, costs per path", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    for header in [*(k.rsplit(".", 1)[-1] for k in keys), "status", "policy", "objective", "std P&L", "CVaR 95",
+                   "cost"]:
+        table.add_column(header, justify="left" if header in ("status", "policy") else "right", no_wrap=True)
+    for row in result.table.to_dict("records"):
+        numbers = [_money(row[k]) if row.get(k) == row.get(k) and row.get(k) is not None else "-"
+                   for k in ("objective", "std_pnl", "cvar_95", "mean_cost")]
+        table.add_row(*(f"{row[k]:g}" if isinstance(row[k], float) else str(row[k]) for k in keys),
+                      row["status"], row["policy"] or row["error"][:60], *numbers)
+    console.print(table)
+    if (result.folder / "frontier.png").is_file():
+        console.print(f"cost-risk frontier: {result.folder / 'frontier.png'}", highlight=False)
+    console.print(f"combined table: {result.folder / 'sweep.csv'} (and sweep.json)", highlight=False)
+    console.print(CAUTION, style="dim", highlight=False)
+
+
+@app.command("bench")
+def bench_command(quick: bool = typer.Option(False, "--quick", help="Small sizes: a minute or two.")) -> None:
+    """Print the benchmark table (speed, scaling, memory, sweep speed-up): `python -m benchmarks`."""
+    root = Path(__file__).resolve().parents[1]
+    if not (root / "benchmarks" / "__main__.py").is_file():
+        fail("the benchmarks live in the source tree: run `rehedge bench` from a checkout (pip install -e .)")
+    code = subprocess.call([sys.executable, "-m", "benchmarks", *(["--quick"] if quick else [])], cwd=root)
+    raise typer.Exit(code)
 
 
 def _policies_of(source: Path, start):

@@ -14,8 +14,12 @@ computes a cost or a mark.
 
 from __future__ import annotations
 
+import shutil
+import tempfile
+import weakref
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
+from pathlib import Path
 
 import numpy as np
 
@@ -165,3 +169,86 @@ def collect_chunks(problem: HedgingProblem, source: PathGenerator | MarketPaths,
                                                      chunk_paths)):
         behaviour_seed = np.random.SeedSequence(seed, spawn_key=(1, index))
         yield collect(problem, chunk, exploration, behaviour_seed, market.observed_factors)
+
+
+# Transitions a store keeps in memory before it writes further chunks to disk.
+MEMORY_BUDGET_BYTES = 256 * 2**20
+
+
+class TransitionStore:
+    """Transitions of many paths, chunk by chunk: in memory up to ``memory_bytes``, then in files.
+
+    A fit streams the chunks once per decision time and reads only that time's
+    rows; chunks in files are memory-mapped, so a chunk on disk costs memory
+    only for the rows being read. 1,000,000 paths x 30 steps with 8 targets a
+    state are about 7 GB of transitions: on disk, not in memory. The files go
+    to a temporary folder removed by :meth:`close` (or on leaving a ``with``).
+    Iterating yields the chunks in the order they were added, so sums over
+    chunks are the same whichever way the chunks are held.
+    """
+
+    def __init__(self, memory_bytes: int = MEMORY_BUDGET_BYTES):
+        self.memory_bytes = memory_bytes
+        self._chunks: list[Transitions | Path] = []
+        self._in_memory = 0
+        self._folder: Path | None = None
+
+    def add(self, chunk: Transitions) -> None:
+        """Keep ``chunk`` (in memory while the budget allows, else in a file)."""
+        size = sum(getattr(chunk, f.name).nbytes for f in fields(Transitions))
+        if self._in_memory + size <= self.memory_bytes:
+            self._chunks.append(chunk)
+            self._in_memory += size
+            return
+        if self._folder is None:
+            self._folder = Path(tempfile.mkdtemp(prefix="rehedge-transitions-"))
+            # Removed with the store even when an error ends the fit before close().
+            self._remove = weakref.finalize(self, shutil.rmtree, self._folder, True)
+        self._chunks.append(save_transitions(chunk, self._folder / f"chunk{len(self._chunks):06d}"))
+
+    def __iter__(self) -> Iterator[Transitions]:
+        for chunk in self._chunks:
+            yield chunk if isinstance(chunk, Transitions) else load_transitions(chunk)
+
+    def __call__(self) -> Iterator[Transitions]:
+        """The chunks again (a fit's transition source: called once per decision time)."""
+        return iter(self)
+
+    def __len__(self) -> int:
+        return len(self._chunks)
+
+    @property
+    def n_states(self) -> int:
+        return sum(chunk.n_states for chunk in self)
+
+    @property
+    def spilled(self) -> int:
+        """Number of chunks held in files."""
+        return sum(isinstance(chunk, Path) for chunk in self._chunks)
+
+    def close(self) -> None:
+        """Drop the chunks and remove the files."""
+        self._chunks, self._in_memory = [], 0
+        if self._folder is not None:
+            self._remove()
+            self._folder = None
+
+    def __enter__(self) -> TransitionStore:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def save_transitions(chunk: Transitions, folder: Path) -> Path:
+    """Write ``chunk`` as one .npy file per array into ``folder`` (created)."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    for f in fields(Transitions):
+        np.save(folder / f"{f.name}.npy", getattr(chunk, f.name))
+    return folder
+
+
+def load_transitions(folder: Path) -> Transitions:
+    """Transitions written by :func:`save_transitions`, memory-mapped read-only."""
+    return Transitions(*(np.load(Path(folder) / f"{f.name}.npy", mmap_mode="r") for f in fields(Transitions)))

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent
+from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent, return_moment_sums
 from agents.dataset import Transitions
 from agents.features import POLYNOMIAL_BASIS, check_terms, combination
 from hedge_env.problem import HedgingProblem
@@ -119,6 +119,33 @@ class LinearBasisAgent(BackwardQAgent):
         """Normal equations of decision time k from one block of transitions, using the fitted
         coefficients of later times: what one worker contributes before the sum and the solve."""
         return _within_state(*self._regression_rows(transitions, k))
+
+    def fit_map(self, map_chunks, progress=None):
+        """The fit of :meth:`fit` with each chunk's work done where the chunk is held.
+
+        ``map_chunks(function, *args)`` applies ``function(chunk, *args)`` to every
+        chunk of transitions (in this process, joblib workers or a dask cluster:
+        agents.workers) and returns the results in chunk order. Per decision time,
+        from the last, each chunk's normal equations are computed with the
+        coefficients fitted so far, summed in chunk order and solved: the numbers
+        of :meth:`fit` streaming the same chunks.
+        """
+        self._begin_fit(map_chunks(return_moment_sums))
+        for k in reversed(range(self.problem.schedule.steps)):
+            self._start_step(k)
+            for statistics in map_chunks(chunk_statistics, self, k):
+                self.statistics_[k] = self.statistics_[k] + statistics
+            self._finish_step(k)
+            if progress is not None:
+                progress(1)
+        return self
+
+
+def chunk_statistics(chunk: Transitions, agent: LinearBasisAgent, k: int) -> NormalEquations:
+    """``agent.step_statistics(chunk, k)``, as a function of the chunk first (for a map over chunks)."""
+    if chunk.steps != agent.problem.schedule.steps:
+        raise ValueError(f"transitions have {chunk.steps} steps, the schedule has {agent.problem.schedule.steps}")
+    return agent.step_statistics(chunk, k)
 
 
 def _within_state(X: np.ndarray, y: np.ndarray) -> NormalEquations:

@@ -417,12 +417,14 @@ def _flatten(value, prefix: str = "") -> dict[str, object]:
     return {prefix[:-1]: value}
 
 
-def _order_variants(variants: list[tuple[Path, dict, dict]]) -> tuple[list[tuple[Path, dict, dict]], list[str]]:
-    """Runs in the order of the settings that differ between them, each with a short label such as
-    ``cost_rate=0.001`` (the run's config name when nothing but the name differs)."""
+def _order_variants(variants: list[tuple[Path, dict, dict]],
+                    swept: Sequence[str] = ()) -> tuple[list[tuple[Path, dict, dict]], list[str]]:
+    """Runs in the order of the settings that differ between them (the ``swept`` dotted keys when
+    given), each with a short label such as ``cost_rate=0.001`` (the run's config name when
+    nothing but the name differs)."""
     flats = [_flatten({k: v for k, v in config.items() if k not in ("name", "description", "sweep")})
              for _, _, config in variants]
-    keys = sorted({k for flat in flats for k in flat})
+    keys = list(swept) or sorted({k for flat in flats for k in flat})
     differing = [k for k in keys if len({json.dumps(flat.get(k), sort_keys=True) for flat in flats}) > 1][:3]
 
     def sort_key(index: int):
@@ -440,15 +442,37 @@ _MARKERS = "osD^v<>ph*"
 
 def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
                      colors: dict[str, str]) -> tuple[str, str]:
+    figure, caption = _frontier_plot(scored, siblings, colors)
+    return _png_data_uri(figure), caption
+
+
+def write_frontier(run_dirs: Sequence[Path], target: Path, swept: Sequence[str] = ()) -> Path:
+    """The cost-risk frontier across scored run folders (the cells of a sweep, labelled by the
+    ``swept`` dotted keys) as a PNG file."""
+    scored = _load_scored(Path(run_dirs[0]))
+    others = [_read_sibling(path) for path in run_dirs[1:]]
+    config_order = [spec.name for spec in [*scored.run.config.baselines, *scored.run.config.agents]]
+    colors = _colors([*config_order, *(r["name"] for r in scored.records if r["name"] not in config_order)])
+    with matplotlib.rc_context(_STYLE):
+        figure, _ = _frontier_plot(scored, others, colors, swept)
+        figure.savefig(target, format="png", dpi=_DPI, metadata={"Software": None})
+    return Path(target)
+
+
+def _frontier_plot(scored: _Scored, siblings: list[tuple[Path, dict, dict]], colors: dict[str, str],
+                   swept: Sequence[str] = ()):
     here = (scored.run.path, scored.metrics, scored.run.config.model_dump(mode="json"))
-    variants, labels = _order_variants([here, *siblings])
+    variants, labels = _order_variants([here, *siblings], swept)
     names = [r["name"] for r in scored.records]
     skipped = _wide_policies({name: scored.heldout[f"pnl__{name}"] for name in names})
     tail_key = "cvar_95" if "cvar_95" in scored.records[0] else next(
         (k for k in scored.records[0] if k.startswith("cvar_")), "std_pnl")
     risk_keys = (("std_pnl", "std of P&L per path (currency)"),
                  (tail_key, f"CVaR {tail_key[5:]} of the loss (currency)"))
-    figure, axes = _figure(10.5, 3.8, 1, 2, sharey=True)
+    # Many runs (a sweep's cells) have long labels: fewer legend columns, a taller figure for its rows.
+    columns = 8 if len(variants) <= 4 else 3
+    legend_rows = -(-(len(names) + len(variants)) // columns)
+    figure, axes = _figure(10.5, 3.8 + (0.22 * legend_rows if columns < 8 else 0.0), 1, 2, sharey=True)
     for ax, (key, label) in zip(axes[0], risk_keys):
         for name in names:
             if name in skipped:
@@ -473,7 +497,7 @@ def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
         handles.append(matplotlib.lines.Line2D([], [], linestyle="none", marker=_MARKERS[index % len(_MARKERS)],
                                                markersize=5, color="#5c6b73"))
         legend_labels.append(label)
-    _legend_below(figure, handles, legend_labels)
+    _legend_below(figure, handles, legend_labels, columns)
     caption = ("Cost-risk frontier: mean trading + impact cost per path against the spread of P&L, one "
                "marker per run of the sweep ("
                + "; ".join(f"{label}: {path.name}" for (path, _, _), label in zip(variants, labels))
@@ -481,7 +505,7 @@ def _frontier_figure(scored: _Scored, siblings: list[tuple[Path, dict, dict]],
     if skipped:
         caption += (f" Not shown: {', '.join(skipped)} (its P&L spread is over {_OUTLIER_SPREAD:g} times the "
                     "median policy's).")
-    return _png_data_uri(figure), caption
+    return figure, caption
 
 
 # ---------------------------------------------------------------------------------------------
@@ -567,7 +591,7 @@ def _scenario_html(scored: _Scored) -> str:
                            f"seed {config.data.train_seed}" + _dates_text(manifest, "train", config.horizon_days)),
         ("bootstrap", f"{metrics.get('bootstrap_samples')} paired resamples over paths, "
                       f"seed {metrics.get('bootstrap_seed')}; reference policy: {metrics.get('reference_policy')}"),
-        ("run folder", f"{run.path.name}, created {manifest.get('created', 'n/a')}"),
+        ("run folder", f"{run.path.name.removesuffix('.partial')}, created {manifest.get('created', 'n/a')}"),
         ("config hash", manifest.get("config_hash", "n/a")),
         ("software", f"rehedge {manifest.get('version', 'n/a')}, Python {manifest.get('python', 'n/a')}, "
                      f"numpy {manifest.get('numpy', 'n/a')}, scikit-learn {manifest.get('scikit_learn', 'n/a')}"),

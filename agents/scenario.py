@@ -20,7 +20,7 @@ from hedge_env.history import (
     load_history,
     split_history,
 )
-from hedge_env.market import GBMMarket, HestonMarket, MertonMarket, PathGenerator
+from hedge_env.market import GBMMarket, HestonMarket, MertonMarket, PathGenerator, PathSet
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 
@@ -185,6 +185,13 @@ def training_paths(config: Config, market: PathGenerator, problem: HedgingProble
     return market.generate(n_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
 
 
+def training_path_set(config: Config, market: PathGenerator, problem: HedgingProblem) -> PathSet:
+    """The paths of :func:`training_paths`, drawn a chunk at a time when used: memory stays bounded
+    at any path count (a rollout over it: ``rollout(problem, policy, paths, paths.n_paths)``)."""
+    n_paths = path_count(market, config.data.train_paths)
+    return PathSet(market, n_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
+
+
 def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGenerator, train=None):
     """Every configured baseline, with parameters set to "tune" fitted on the training paths.
 
@@ -195,7 +202,7 @@ def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGener
     tuning = {}
     wanted = tuned_parameters(config)
     if wanted:
-        train = training_paths(config, market, problem) if train is None else train
+        train = training_path_set(config, market, problem) if train is None else train
         for name, parameter in wanted.items():
             result = tune_parameter(problem, policies[name], parameter, train, config.data.chunk_paths)
             policies[name] = replace(policies[name], **{parameter: result.value})

@@ -24,7 +24,7 @@ from sklearn import ensemble, linear_model, neighbors, neural_network
 
 import hedge_env
 from agents.config import Config, ConfigError, config_hash, parse_config
-from agents.dataset import Exploration, Transitions, collect
+from agents.dataset import Exploration, TransitionStore, Transitions, collect
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
@@ -34,9 +34,9 @@ from agents.scenario import (
     build_problem,
     describe_markets,
     prepare_baselines,
-    training_paths,
+    training_path_set,
 )
-from hedge_env.market import GBMMarket, PathGenerator
+from hedge_env.market import GBMMarket, PathGenerator, PathSet
 from hedge_env.problem import HedgingProblem
 
 REGRESSOR_CLASSES = {
@@ -53,7 +53,7 @@ REGRESSOR_CLASSES = {
 ProgressStart = Callable[[str, int], Callable[[int], None]]
 
 
-def _no_progress(label: str, total: int) -> Callable[[int], None]:
+def no_progress(label: str, total: int) -> Callable[[int], None]:
     return lambda n: None
 
 
@@ -124,21 +124,18 @@ class Training:
         self.log.append(f"{datetime.now(timezone.utc).isoformat(timespec='seconds')} {line}")
 
 
-def train(config: Config, start: ProgressStart = _no_progress) -> Training:
+def train(config: Config, start: ProgressStart = no_progress) -> Training:
     """Tune the baselines and fit every agent of ``config`` on its training paths."""
     problem = build_problem(config)
     market, heldout_market = build_markets(config)
     agents = {spec.name: build_agent(spec, i, problem, market) for i, spec in enumerate(config.agents)}
     outcome = Training(config, problem, market, {}, {}, {}, heldout_market=heldout_market)
     data = config.data
-    clock = time.perf_counter()
-    advance = start("simulating training paths", data.train_paths)
-    paths = training_paths(config, market, problem)
+    # Drawn a chunk at a time whenever needed, never held whole: memory stays bounded at any path count.
+    paths = training_path_set(config, market, problem)
     n_train = paths.n_paths
-    advance(data.train_paths)
-    outcome.timings["simulate_s"] = time.perf_counter() - clock
     outcome.sizes.update(train_paths=n_train, steps=problem.schedule.steps)
-    outcome.note(f"simulated {n_train} training paths x {problem.schedule.steps} steps, seed {data.train_seed}")
+    outcome.note(f"training paths: {n_train} x {problem.schedule.steps} steps, seed {data.train_seed}")
     for role, facts in describe_markets(market, heldout_market).items():
         outcome.note(f"{role} paths: {facts['source']} of {facts['first_date']} .. {facts['last_date']} "
                      f"({facts['rows']} trading days)")
@@ -150,7 +147,7 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
     for name, result in outcome.tuning.items():
         outcome.note(f"tuned {name}.{result.parameter} = {result.value:.6g} (train objective {result.objective:.6g})")
 
-    transitions: dict[Exploration, Transitions] = {}
+    transitions: dict[Exploration, TransitionStore] = {}
     for index, spec in enumerate(config.agents):
         agent = agents[spec.name]
         clock = time.perf_counter()
@@ -160,32 +157,59 @@ def train(config: Config, start: ProgressStart = _no_progress) -> Training:
             exploration = _exploration(spec)
             if exploration not in transitions:
                 advance = start(f"collecting transitions ({spec.name})", n_train)
-                parts = []
-                for i, begin in enumerate(range(0, n_train, data.chunk_paths)):
-                    chunk = paths.rows(begin, min(begin + data.chunk_paths, n_train))
-                    seed = np.random.SeedSequence(data.train_seed, spawn_key=(1, i))
-                    parts.append(collect(problem, chunk, exploration, seed, market.observed_factors))
-                    advance(chunk.n_paths)
-                transitions[exploration] = Transitions.concat(parts)
-                rows = transitions[exploration].actions.size
+                transitions[exploration] = store = TransitionStore()
+                for chunk in collect_training_chunks(problem, paths, exploration, data.train_seed,
+                                                     data.chunk_paths):
+                    store.add(chunk)
+                    advance(chunk.n_states)
+                rows = store.n_states * exploration.actions_per_state * problem.schedule.steps
                 outcome.sizes[f"transitions_{spec.name}"] = rows
-                outcome.note(f"collected {rows} transitions for {spec.name}")
+                outcome.note(f"collected {rows} transitions for {spec.name}"
+                             + (f" ({store.spilled} of {len(store)} chunks on disk)" if store.spilled else ""))
             agent.fit(transitions[exploration], progress=start(f"fitting {spec.name}", problem.schedule.steps))
         outcome.timings[f"fit_{spec.name}_s"] = time.perf_counter() - clock
         outcome.note(f"fitted {spec.name} ({spec.kind}) in {outcome.timings[f'fit_{spec.name}_s']:.2f} s")
         outcome.agents[spec.name] = agent
+    for store in transitions.values():
+        store.close()  # removes its files (also done when a failed fit drops it)
     return outcome
+
+
+def collect_training_chunks(problem: HedgingProblem, paths: PathSet, exploration: Exploration, train_seed: int,
+                            chunk_paths: int):
+    """Transitions of the training paths, ``chunk_paths`` paths at a time; chunk i's behaviour draws
+    come from ``SeedSequence(train_seed, spawn_key=(1, i))``."""
+    for i, begin in enumerate(range(0, paths.n_paths, chunk_paths)):
+        yield collect_training_chunk(problem, paths, exploration, train_seed, chunk_paths, i)
+
+
+def collect_training_chunk(problem: HedgingProblem, paths: PathSet, exploration: Exploration, train_seed: int,
+                           chunk_paths: int, index: int) -> Transitions:
+    """Chunk ``index`` of :func:`collect_training_chunks` alone (what a worker collects)."""
+    begin = index * chunk_paths
+    chunk = paths.rows(begin, min(begin + chunk_paths, paths.n_paths))
+    seed = np.random.SeedSequence(train_seed, spawn_key=(1, index))
+    return collect(problem, chunk, exploration, seed, paths.observed_factors)
 
 
 def _timestamp() -> str:
     return datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
 
 
-def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict | None = None) -> Path:
-    """Write a run folder; it is first built under a temporary name, so nothing is half-written."""
+PARTIAL = ".partial"
+
+
+def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict | None = None,
+              finish: bool = True) -> Path:
+    """Write a run folder; it is built under the name ``NAME-TIMESTAMP.partial`` and renamed when
+    complete, so nothing half-written looks like a run. With ``finish=False`` the staging folder is
+    returned for more files (held-out metrics, report); :func:`finish_run` then renames it."""
     config = training.config
-    final = Path(runs_dir) / f"{config.name}-{_timestamp()}"
-    staging = final.with_name(final.name + ".partial")
+    stem = f"{config.name}-{_timestamp()}"
+    final, n = Path(runs_dir) / stem, 2
+    while final.exists() or final.with_name(final.name + PARTIAL).exists():  # two runs in one second
+        final, n = Path(runs_dir) / f"{stem}-{n}", n + 1
+    staging = final.with_name(final.name + PARTIAL)
     (staging / "agents").mkdir(parents=True)
     (staging / "config.toml").write_text(config_text)
     (staging / "config.json").write_text(json.dumps(config.model_dump(), indent=2, default=str) + "\n")
@@ -212,6 +236,12 @@ def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict 
     }
     (staging / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
     (staging / "training.log").write_text("\n".join(training.log) + "\n")
+    return finish_run(staging) if finish else staging
+
+
+def finish_run(staging: Path) -> Path:
+    """Rename a complete staging folder ``NAME.partial`` to ``NAME``; returns the final path."""
+    final = staging.with_name(staging.name.removesuffix(PARTIAL))
     staging.rename(final)
     return final
 
@@ -243,6 +273,8 @@ class Run:
 def load_run(path: str | Path) -> Run:
     """Read a run folder written by :func:`write_run`; a missing or broken folder is a ConfigError."""
     path = Path(path)
+    if path.name.endswith(PARTIAL):
+        raise ConfigError(f"{path}: an incomplete run folder (its run was interrupted); run it again")
     manifest_file = path / "manifest.json"
     if not manifest_file.is_file():
         raise ConfigError(f"{path}: not a run folder (no manifest.json)")

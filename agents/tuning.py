@@ -15,7 +15,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy.optimize import minimize_scalar
 
-from hedge_env.market import MarketPaths
+from hedge_env.market import MarketPaths, PathSet
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import rollout
 
@@ -42,7 +42,7 @@ def search_space(problem: HedgingProblem, parameter: str) -> tuple[np.ndarray, b
     raise ValueError(f"no search space for parameter {parameter!r}")
 
 
-def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: MarketPaths,
+def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: MarketPaths | PathSet,
                    chunk_paths: int = 8192) -> TuningResult:
     """The value of ``policy.parameter`` that maximises the objective on ``paths``."""
     grid, log_space = search_space(problem, parameter)
@@ -52,7 +52,7 @@ def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: Marke
         value = float(value)
         if value not in trials:
             trial = replace(policy, **{parameter: value})
-            trials[value] = rollout(problem, trial, paths, chunk_paths=chunk_paths).objective_value
+            trials[value] = rollout(problem, trial, paths, paths.n_paths, chunk_paths=chunk_paths).objective_value
         return trials[value]
 
     scores = [objective(v) for v in grid]

@@ -79,31 +79,22 @@ def memory_child(n_paths: int) -> None:
     print(f"{peak_mb:.0f} {elapsed:.2f}")
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--paths", type=int, default=100_000)
-    parser.add_argument("--loop-paths", type=int, default=2_000, help="paths for the per-path Python loop")
-    parser.add_argument("--memory-paths", type=int, default=1_000_000)
-    parser.add_argument("--memory-child", type=int, default=None, help=argparse.SUPPRESS)
-    args = parser.parse_args()
-    if args.memory_child:
-        memory_child(args.memory_child)
-        return
-
+def measure(n_paths: int = 100_000, loop_paths: int = 2_000, repeats: int = 5) -> dict:
+    """Rollout speed (paths drawn beforehand and with drawing), the per-path loop's, and the env step time."""
     problem, market = default_problem()
     steps = problem.schedule.steps
     policy = DeltaHedge(problem)
-    paths = market.generate(args.paths, steps, problem.dt_years, seed=11)
-    path_steps = args.paths * steps
+    paths = market.generate(n_paths, steps, problem.dt_years, seed=11)
+    path_steps = n_paths * steps
 
     # Best of 5: the machine may be shared, and the shortest run is the least disturbed one.
-    vector_s = best_of(5, lambda: rollout(problem, policy, paths))
-    with_draw_s = best_of(5, lambda: rollout(problem, policy, market, args.paths, seed=11))
-    loop_paths = paths.rows(0, args.loop_paths)
-    loop_s = best_of(2, lambda: per_path_loop(problem, loop_paths.spot))
+    vector_s = best_of(repeats, lambda: rollout(problem, policy, paths))
+    with_draw_s = best_of(repeats, lambda: rollout(problem, policy, market, n_paths, seed=11))
+    loop_set = paths.rows(0, loop_paths)
+    loop_s = best_of(2, lambda: per_path_loop(problem, loop_set.spot))
     # Same numbers, so the same work: every total of the first 50 paths agrees.
-    vector_check = rollout(problem, policy, loop_paths.rows(0, 50))
-    loop_check = per_path_loop(problem, loop_paths.spot[:50])
+    vector_check = rollout(problem, policy, loop_set.rows(0, 50))
+    loop_check = per_path_loop(problem, loop_set.spot[:50])
     for key in TOTALS:
         assert np.allclose(loop_check[key], getattr(vector_check, key), rtol=1e-9, atol=1e-9), key
 
@@ -118,16 +109,31 @@ def main() -> None:
             for _ in range(steps):
                 env.step(action)
 
-    env_s = best_of(5, drive_env)
+    env_s = best_of(repeats, drive_env)
+    return {"steps": steps, "vector_s": vector_s, "vector_rate": path_steps / vector_s,
+            "with_draw_rate": path_steps / with_draw_s, "loop_rate": loop_paths * steps / loop_s,
+            "env_step_s": env_s / env_steps}
 
-    vector_rate = path_steps / vector_s
-    loop_rate = args.loop_paths * steps / loop_s
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--paths", type=int, default=100_000)
+    parser.add_argument("--loop-paths", type=int, default=2_000, help="paths for the per-path Python loop")
+    parser.add_argument("--memory-paths", type=int, default=1_000_000)
+    parser.add_argument("--memory-child", type=int, default=None, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.memory_child:
+        memory_child(args.memory_child)
+        return
+
+    figures = measure(args.paths, args.loop_paths)
+    steps, vector_rate, loop_rate = figures["steps"], figures["vector_rate"], figures["loop_rate"]
     print(f"case: short 1 ATM 30-day call, GBM 20%, {steps} daily rehedges, 10 bps, delta hedge")
     print(f"vectorized rollout    {args.paths:>9,} paths x {steps}: {vector_rate / 1e6:6.1f} M path-steps/s "
-          f"({vector_s * 1e3:.0f} ms; {path_steps / with_draw_s / 1e6:.1f} M/s with path drawing)")
+          f"({figures['vector_s'] * 1e3:.0f} ms; {figures['with_draw_rate'] / 1e6:.1f} M/s with path drawing)")
     print(f"per-path Python loop  {args.loop_paths:>9,} paths x {steps}: {loop_rate / 1e6:6.2f} M path-steps/s")
     print(f"ratio vectorized / loop: {vector_rate / loop_rate:.1f}x")
-    print(f"HedgingEnv.step: {env_steps / env_s / 1e3:.0f} k steps/s, {env_s / env_steps * 1e6:.1f} us per step "
+    print(f"HedgingEnv.step: {1e-3 / figures['env_step_s']:.0f} k steps/s, {figures['env_step_s'] * 1e6:.1f} us per step "
           "(resets included)")
 
     child = subprocess.run(

@@ -424,3 +424,38 @@ class GivenPaths(PathGenerator):
         if start + n_paths > self.paths.n_paths:
             raise ValueError(f"asked for paths {start}..{start + n_paths}, only {self.paths.n_paths} given")
         return self.paths.rows(start, start + n_paths)
+
+
+@dataclass(frozen=True)
+class PathSet(PathGenerator):
+    """``n_paths`` paths of ``market`` under one ``seed``, drawn a chunk at a time when asked for.
+
+    It stands for ``market.generate(n_paths, n_steps, dt_years, seed)`` without
+    holding it: a rollout (``rollout(problem, policy, path_set, path_set.n_paths)``)
+    or :meth:`rows` draws only the paths it needs. The ``seed`` argument of
+    :meth:`generate` is ignored, as for :class:`GivenPaths`.
+    """
+
+    market: PathGenerator
+    n_paths: int
+    n_steps: int
+    dt_years: float
+    seed: int
+
+    @property
+    def factor_names(self) -> tuple[str, ...]:  # type: ignore[override]
+        return self.market.factor_names
+
+    @property
+    def observed_factors(self) -> tuple[str, ...]:  # type: ignore[override]
+        return self.market.observed_factors
+
+    def generate(self, n_paths: int, n_steps: int, dt_years: float, seed: int, start: int = 0) -> MarketPaths:
+        if n_steps != self.n_steps or start + n_paths > self.n_paths:
+            raise ValueError(f"asked for paths {start}..{start + n_paths} x {n_steps} steps of a set of "
+                             f"{self.n_paths} x {self.n_steps}")
+        return self.market.generate(n_paths, n_steps, self.dt_years, self.seed, start)
+
+    def rows(self, start: int, stop: int) -> MarketPaths:
+        """Paths ``start`` to ``stop``."""
+        return self.generate(stop - start, self.n_steps, self.dt_years, self.seed, start)

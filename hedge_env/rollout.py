@@ -154,16 +154,37 @@ def rollout_many(
         if not isinstance(source, MarketPaths):
             raise ValueError("n_paths is required when paths are simulated")
         n_paths = source.n_paths
-    parts: dict[str, list[HedgeResult]] = {name: [] for name in policies}
+    # Each chunk's per-path totals go straight into arrays of all paths (no list of parts to join,
+    # which would hold every array twice); step costs are summed weighted as HedgeResult.concat does.
+    results: dict[str, HedgeResult] = {}
+    step_cost_sums: dict[str, np.ndarray] = {}
+    begin = 0
     for chunk in market.iter_chunks(n_paths, problem.schedule.steps, problem.dt_years, seed, chunk_paths):
         order = _hedging_order(chunk.spot)
+        rows = slice(begin, begin + chunk.n_paths)
         for name, policy in policies.items():
-            parts[name].append(
-                _rollout_chunk(problem, policy, chunk, order, market.observed_factors, keep_holdings, name)
-            )
+            part = _rollout_chunk(problem, policy, chunk, order, market.observed_factors, keep_holdings, name)
+            if name not in results:
+                results[name] = _allocate(part, n_paths)
+                step_cost_sums[name] = 0
+            for key in _TOTALS:
+                getattr(results[name], key)[rows] = getattr(part, key)
+            if keep_holdings:
+                results[name].holdings[rows] = part.holdings
+            step_cost_sums[name] = step_cost_sums[name] + float(part.n_paths) * part.step_cost
+        begin += chunk.n_paths
         if progress is not None:
             progress(chunk.n_paths)
-    return {name: HedgeResult.concat(chunks) for name, chunks in parts.items()}
+    for name, result in results.items():
+        result.step_cost = step_cost_sums[name] / float(n_paths)
+    return results
+
+
+def _allocate(part: HedgeResult, n_paths: int) -> HedgeResult:
+    """A result for ``n_paths`` paths shaped like the chunk result ``part`` (arrays to fill)."""
+    arrays = {key: np.empty(n_paths, dtype=getattr(part, key).dtype) for key in _TOTALS}
+    holdings = None if part.holdings is None else np.empty((n_paths, part.holdings.shape[1]))
+    return HedgeResult(part.name, part.objective, part.notional_shares, holdings=holdings, **arrays)
 
 
 def check_observed_marks(problem: HedgingProblem, observed: tuple[str, ...]) -> None:

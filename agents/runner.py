@@ -1,0 +1,79 @@
+"""The main job as one library call: train, score on held-out paths, write a complete run folder.
+
+``rehedge run`` and every cell of ``rehedge sweep`` go through :func:`run_config`.
+The folder is built as ``NAME-TIMESTAMP.partial`` and renamed only when the
+metrics, the hedge table (``export.policy``) and the report are all written;
+on any error or interrupt the staging folder is removed, and a process that is
+killed outright leaves only a ``.partial`` folder, which nothing reads as a run.
+"""
+
+from __future__ import annotations
+
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+from agents.config import Config
+from agents.evaluate import Evaluation, evaluate_with_quotes, write_metrics
+from agents.scenario import path_count
+from agents.training import ProgressStart, Training, no_progress, finish_run, train, write_run
+
+
+@dataclass
+class RunOutcome:
+    """What :func:`run_config` made: the training, the held-out evaluation and the run folder."""
+
+    training: Training
+    evaluation: Evaluation
+    run_dir: Path
+    heldout_paths: int
+    heldout_seed: int
+
+
+def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_paths: int | None = None,
+               start: ProgressStart = no_progress, report: bool = True, extra: dict | None = None) -> RunOutcome:
+    """Train every agent of ``config``, score all policies on the same held-out paths (paired CIs
+    and quotes) and write the run folder under ``runs_dir``.
+
+    Parameters
+    ----------
+    config : Config
+        A validated config (one variant).
+    config_text : str
+        The config file as given (kept in the folder as ``config.toml``).
+    heldout_paths : int, optional
+        Held-out paths (default ``data.heldout_paths``; a history's windows cap it).
+    start : callable
+        Progress hook ``start(label, total) -> advance(n)``.
+    report : bool
+        Build ``report.html`` (a sweep's cells may skip it).
+    extra : dict, optional
+        More entries for ``manifest.json``.
+    """
+    from agents.report import build_report
+    from agents.table import export_policy
+
+    training = train(config, start)
+    staging = write_run(training, config_text, Path(runs_dir), extra, finish=False)
+    try:
+        market = training.heldout_market or training.market
+        n_paths = path_count(market, heldout_paths or config.data.heldout_paths)
+        seed = config.data.heldout_seed
+        reference = config.report.reference_policy
+        evaluation = evaluate_with_quotes(
+            training.problem, training.policies, market, n_paths, seed, kinds=training.kinds,
+            chunk_paths=config.data.chunk_paths, progress=start("hedging held-out paths (both sides of the book)",
+                                                                n_paths),
+            reference=reference if reference in training.policies else None,
+            bootstrap_samples=config.report.bootstrap_samples)
+        write_metrics(evaluation, staging)
+        if config.export.policy is not None:
+            name = config.export.policy
+            export_policy(config, training.problem, training.policies, name, staging / "tables" / name)
+        if report:
+            build_report(staging)
+        run_dir = finish_run(staging)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    return RunOutcome(training, evaluation, run_dir, n_paths, seed)

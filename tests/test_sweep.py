@@ -1,0 +1,198 @@
+"""Sweeps: every cell a run folder, the same numbers serially, with joblib and on dask; failed cells
+reported without stopping the others; resume; the combined table and the frontier."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+import agents.runner
+from agents.cli import app
+from agents.config import ConfigError
+from agents.sweep import run_sweep, sweep_cells
+
+SWEEP = """
+name = "tiny-sweep"
+seed = 3
+
+[market]
+model = "gbm"
+spot = 100.0
+volatility = 0.2
+
+[[book.options]]
+kind = "call"
+strike = 100.0
+expiry_days = 10
+quantity = -1
+
+[schedule]
+steps = 10
+
+[frictions]
+cost_rate = 0.001
+
+[objective]
+risk_aversion = 1.0
+
+[data]
+train_paths = 600
+heldout_paths = 1500
+chunk_paths = 250
+
+[[baselines]]
+kind = "delta"
+
+[[baselines]]
+kind = "fixed_band"
+half_width = "tune"
+
+[[agents]]
+kind = "linear"
+
+[report]
+bootstrap_samples = 200
+
+[sweep]
+"frictions.cost_rate" = [0.001, 0.004]
+seed = [1, 2]
+"""
+
+POLICIES = 3
+
+
+@pytest.fixture(scope="module")
+def config_file(tmp_path_factory) -> Path:
+    path = tmp_path_factory.mktemp("sweep") / "tiny.toml"
+    path.write_text(SWEEP)
+    return path
+
+
+@pytest.fixture(scope="module")
+def serial(config_file, tmp_path_factory):
+    return run_sweep(config_file, sweep_dir=tmp_path_factory.mktemp("serial"), report=False)
+
+
+def cell_metrics(folder: Path) -> dict[str, dict]:
+    """Each cell's metrics.json, by cell name."""
+    return {cell.name: json.loads((cell / "metrics.json").read_text())
+            for cell in sorted((folder / "cells").iterdir())}
+
+
+def test_every_combination_of_the_grid_is_one_cell_with_its_overrides_and_own_seed(config_file):
+    _, cells = sweep_cells(config_file)
+    assert [c.overrides for c in cells] == [
+        {"frictions.cost_rate": 0.001, "seed": 1}, {"frictions.cost_rate": 0.001, "seed": 2},
+        {"frictions.cost_rate": 0.004, "seed": 1}, {"frictions.cost_rate": 0.004, "seed": 2}]
+    for cell in cells:
+        assert cell.config.frictions.cost_rate == cell.overrides["frictions.cost_rate"]
+        assert cell.config.seed == cell.overrides["seed"]
+        # Data seeds derive from the cell's seed (agents.config: 2 * seed + 1 and + 2).
+        assert (cell.config.data.train_seed, cell.config.data.heldout_seed) == (2 * cell.config.seed + 1,
+                                                                                2 * cell.config.seed + 2)
+
+
+def test_sweep_writes_a_run_folder_per_cell_the_combined_table_and_the_frontier(serial):
+    folder = serial.folder
+    assert set(serial.status.values()) == {"ok"}
+    assert sorted(p.name for p in (folder / "cells").iterdir()) == sorted(c.name for c in serial.cells)
+    for cell in serial.cells:
+        run = folder / "cells" / cell.name
+        for name in ("metrics.json", "metrics.csv", "heldout.npz", "manifest.json", "cell.json", "agents/linear.joblib"):
+            assert (run / name).is_file(), name
+        assert json.loads((run / "cell.json").read_text())["overrides"] == cell.overrides
+    assert (folder / "frontier.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert not (folder / "failures.json").exists()
+    table = pd.read_csv(folder / "sweep.csv")
+    assert len(table) == len(serial.cells) * POLICIES
+    rows = json.loads((folder / "sweep.json").read_text())["rows"]
+    assert len(rows) == len(table)
+    # Each row carries the cell's overrides and the very numbers of the cell's metrics.json.
+    metrics = cell_metrics(folder)
+    for row in rows:
+        record = next(r for r in metrics[row["cell"]]["policies"] if r["name"] == row["policy"])
+        cell = next(c for c in serial.cells if c.name == row["cell"])
+        assert row["frictions.cost_rate"] == cell.overrides["frictions.cost_rate"] and row["seed"] == cell.overrides["seed"]
+        for key in ("objective", "std_pnl", "cvar_95", "mean_cost", "quote_ask"):
+            assert row[key] == record[key], key
+        assert row["vs_reference_ci_low"] == record["vs_reference"]["ci_low"]
+
+
+def test_results_are_identical_serially_with_joblib_and_on_a_dask_cluster(config_file, serial, tmp_path,
+                                                                         dask_scheduler):
+    expected = cell_metrics(serial.folder)
+    local = run_sweep(config_file, sweep_dir=tmp_path / "joblib", workers=2, report=False)
+    cluster = run_sweep(config_file, sweep_dir=tmp_path / "dask", scheduler=dask_scheduler, report=False)
+    for result in (local, cluster):
+        assert set(result.status.values()) == {"ok"}
+        assert cell_metrics(result.folder) == expected  # every number, exactly
+        pd.testing.assert_frame_equal(result.table, serial.table)
+
+
+def test_a_failed_cell_is_reported_and_the_others_finish(config_file, tmp_path, monkeypatch):
+    real_train = agents.runner.train
+
+    def train(config, *args, **kwargs):
+        if config.seed == 2 and config.frictions.cost_rate == 0.004:
+            raise FloatingPointError("invented failure of one cell")
+        return real_train(config, *args, **kwargs)
+
+    monkeypatch.setattr(agents.runner, "train", train)
+    result = run_sweep(config_file, sweep_dir=tmp_path / "sweep", report=False)
+    failed = "tiny-sweep-costrate0.004-seed2"
+    assert result.failed == [failed]
+    assert [s for n, s in result.status.items() if n != failed] == ["ok"] * 3
+    failures = json.loads((result.folder / "failures.json").read_text())
+    assert [f["cell"] for f in failures] == [failed]
+    assert failures[0]["error"] == "FloatingPointError: invented failure of one cell"
+    assert not (result.folder / "cells" / failed).exists()
+    row = result.table[result.table["cell"] == failed]
+    assert len(row) == 1 and row["status"].item() == "failed" and "invented failure" in row["error"].item()
+    assert (result.table["status"] == "ok").sum() == 3 * POLICIES
+
+    # Resume runs only the failed cell; the finished ones are kept as they were.
+    monkeypatch.setattr(agents.runner, "train", real_train)
+    kept = {name: (result.folder / "cells" / name / "metrics.json").stat().st_mtime_ns
+            for name in result.status if name != failed}
+    resumed = run_sweep(config_file, sweep_dir=tmp_path / "sweep", resume=True, report=False)
+    assert resumed.status[failed] == "ok" and resumed.failed == []
+    assert [s for n, s in resumed.status.items() if n != failed] == ["resumed"] * 3
+    assert {n: (resumed.folder / "cells" / n / "metrics.json").stat().st_mtime_ns for n in kept} == kept
+    assert not (resumed.folder / "failures.json").exists()
+    assert len(resumed.table) == 4 * POLICIES
+
+
+def test_resume_reruns_a_cell_whose_folder_is_incomplete_and_a_fresh_run_refuses_a_used_folder(
+        config_file, serial, tmp_path):
+    folder = tmp_path / "copy"
+    shutil.copytree(serial.folder, folder)
+    broken = folder / "cells" / serial.cells[1].name
+    (broken / "metrics.json").unlink()  # as if the cell had stopped before its last file
+    with pytest.raises(ConfigError, match="already holds a sweep"):
+        run_sweep(config_file, sweep_dir=folder, report=False)
+    resumed = run_sweep(config_file, sweep_dir=folder, resume=True, report=False)
+    assert resumed.status[serial.cells[1].name] == "ok"
+    assert sum(s == "resumed" for s in resumed.status.values()) == 3
+    assert cell_metrics(folder) == cell_metrics(serial.folder)
+
+
+def test_sweep_command_prints_the_combined_table_as_json_and_writes_each_cell_report(tmp_path):
+    config = tmp_path / "two.toml"
+    config.write_text(SWEEP.replace("seed = [1, 2]\n", ""))  # two cells
+    runner = CliRunner()
+    out = runner.invoke(app, ["sweep", str(config), "--sweep-dir", str(tmp_path / "s"), "--quiet", "--json",
+                              "--paths", "500"])
+    assert out.exit_code == 0, out.output
+    payload = json.loads(out.stdout)
+    assert payload["sweep"]["cells"] == 2 and len(payload["rows"]) == 2 * POLICIES
+    assert {row["paths"] for row in payload["rows"]} == {500}
+    for name in ("tiny-sweep-costrate0.001", "tiny-sweep-costrate0.004"):
+        assert (tmp_path / "s" / "cells" / name / "report.html").is_file()
+    # A sweep folder in use is not overwritten: one line, exit code 2.
+    again = runner.invoke(app, ["sweep", str(config), "--sweep-dir", str(tmp_path / "s"), "--quiet"])
+    assert again.exit_code == 2 and "already holds a sweep" in again.output
