@@ -35,6 +35,9 @@ console = Console(width=None if sys.stdout.isatty() else 160)
 errors = Console(stderr=True, soft_wrap=True)
 
 
+INTERRUPTED = 130  # exit code of a command stopped by Ctrl-C (128 + SIGINT)
+
+
 def fail(message: str, code: int = 2) -> None:
     """One line on stderr and a non-zero exit: for errors a user can cause."""
     errors.print(f"error: {message}", markup=False, highlight=False)
@@ -514,6 +517,8 @@ def main() -> None:
         hint = f" (see `{context.command_path} --help`)" if context is not None else ""
         errors.print(f"error: {error.format_message()}{hint}", markup=False, highlight=False)
         sys.exit(getattr(error, "exit_code", 2))
+    if code == INTERRUPTED:  # Ctrl-C, which typer turns into this exit code; run_config removed its folder
+        errors.print("error: interrupted; no unfinished run folder is kept", markup=False, highlight=False)
     sys.exit(code if isinstance(code, int) else 0)
 
 

@@ -143,9 +143,9 @@ def _read_metrics(run_dir: Path) -> dict:
     return json.loads(path.read_text())
 
 
-def _load_scored(run_dir: Path) -> _Scored:
+def _load_scored(run_dir: Path, staging: bool = False) -> _Scored:
     run_dir = Path(run_dir)
-    run = load_run(run_dir)
+    run = load_run(run_dir, partial_ok=staging)
     metrics = _read_metrics(run_dir)
     heldout_file = run_dir / "heldout.npz"
     if not heldout_file.is_file():
@@ -719,7 +719,7 @@ def _read_sibling(path: Path) -> tuple[Path, dict, dict]:
     return path, _read_metrics(path), json.loads(config_file.read_text())
 
 
-def build_report(run_dir: Path, siblings: Sequence[Path] = ()) -> Path:
+def build_report(run_dir: Path, siblings: Sequence[Path] = (), staging: bool = False) -> Path:
     """Write ``run_dir/report.html``: one self-contained file (inline CSS, PNG data URIs).
 
     Parameters
@@ -729,13 +729,15 @@ def build_report(run_dir: Path, siblings: Sequence[Path] = ()) -> Path:
     siblings : sequence of Path
         Other run folders of the same sweep; with any, the report adds the
         cost-risk frontier across the runs.
+    staging : bool
+        ``run_dir`` is the unfinished folder of the run writing it (see agents.runner).
 
     Returns
     -------
     Path
         The report file. A folder that is not a scored run raises ConfigError.
     """
-    scored = _load_scored(Path(run_dir))
+    scored = _load_scored(Path(run_dir), staging)
     others = [_read_sibling(path) for path in siblings if Path(path).resolve() != scored.run.path.resolve()]
     config_order = [spec.name for spec in [*scored.run.config.baselines, *scored.run.config.agents]]
     names = [*config_order, *(r["name"] for r in scored.records if r["name"] not in config_order)]

@@ -71,7 +71,7 @@ def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_p
             name = config.export.policy
             export_policy(config, training.problem, training.policies, name, staging / "tables" / name)
         if report:
-            build_report(staging)
+            build_report(staging, staging=True)
         run_dir = finish_run(staging)
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)

@@ -270,10 +270,11 @@ class Run:
     heldout_market: PathGenerator | None = None
 
 
-def load_run(path: str | Path) -> Run:
-    """Read a run folder written by :func:`write_run`; a missing or broken folder is a ConfigError."""
+def load_run(path: str | Path, partial_ok: bool = False) -> Run:
+    """Read a run folder written by :func:`write_run`; a missing or broken folder is a ConfigError, and so
+    is an unfinished ``.partial`` one unless ``partial_ok`` (the run writing it reads it back)."""
     path = Path(path)
-    if path.name.endswith(PARTIAL):
+    if path.name.endswith(PARTIAL) and not partial_ok:
         raise ConfigError(f"{path}: an incomplete run folder (its run was interrupted); run it again")
     manifest_file = path / "manifest.json"
     if not manifest_file.is_file():

@@ -78,10 +78,9 @@ def serial(config_file, tmp_path_factory):
     return run_sweep(config_file, sweep_dir=tmp_path_factory.mktemp("serial"), report=False)
 
 
-def cell_metrics(folder: Path) -> dict[str, dict]:
-    """Each cell's metrics.json, by cell name."""
-    return {cell.name: json.loads((cell / "metrics.json").read_text())
-            for cell in sorted((folder / "cells").iterdir())}
+def cell_metrics(folder: Path) -> dict[str, bytes]:
+    """Each cell's metrics.json, by cell name, as bytes (the same numbers must be the same file)."""
+    return {cell.name: (cell / "metrics.json").read_bytes() for cell in sorted((folder / "cells").iterdir())}
 
 
 def test_every_combination_of_the_grid_is_one_cell_with_its_overrides_and_own_seed(config_file):
@@ -113,7 +112,7 @@ def test_sweep_writes_a_run_folder_per_cell_the_combined_table_and_the_frontier(
     rows = json.loads((folder / "sweep.json").read_text())["rows"]
     assert len(rows) == len(table)
     # Each row carries the cell's overrides and the very numbers of the cell's metrics.json.
-    metrics = cell_metrics(folder)
+    metrics = {name: json.loads(text) for name, text in cell_metrics(folder).items()}
     for row in rows:
         record = next(r for r in metrics[row["cell"]]["policies"] if r["name"] == row["policy"])
         cell = next(c for c in serial.cells if c.name == row["cell"])
