@@ -90,12 +90,16 @@ class FittedQAgent(BackwardQAgent):
     drift : float, optional
         Annual drift of the underlying for the hedge-gain control variate; None
         estimates it from the training paths.
+    max_rows_per_step : int
+        Regression rows kept per decision time: beyond it every r-th training
+        state is kept (with all its replayed targets), so memory stays bounded
+        at any path count while the other agents use every path.
     name : str
     """
 
     def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
-                 drift: float | None = None, name: str = "fitted_q"):
+                 drift: float | None = None, max_rows_per_step: int = 2_000_000, name: str = "fitted_q"):
         self.problem = problem
         self.regressor = regressor
         self.basis = basis
@@ -103,6 +107,7 @@ class FittedQAgent(BackwardQAgent):
         self.partial_moves = partial_moves
         self.factor_names = factor_names
         self.drift = drift
+        self.max_rows_per_step = max_rows_per_step
         self.name = name
 
     @property
@@ -119,8 +124,15 @@ class FittedQAgent(BackwardQAgent):
         self.tables_: list | None = [None] * steps if tabulable else None
         self._rows: list[tuple[np.ndarray, np.ndarray]] = []
 
+    def _begin_fit(self, moment_sums) -> None:
+        moment_sums = list(moment_sums)
+        super()._begin_fit(moment_sums)
+        # Each chunk's return count is its states times the decision times.
+        self._states = sum(count for _, _, count in moment_sums) // self.problem.schedule.steps
+
     def _start_step(self, k: int) -> None:
         self._rows = []
+        self._seen = 0
         self._moneyness_range = (np.inf, -np.inf)
 
     def _regression_rows(self, chunk, k):
@@ -138,6 +150,12 @@ class FittedQAgent(BackwardQAgent):
         if m < 2:
             raise ValueError("fitted Q needs exploration.actions_per_state >= 2")
         centred = (y - y.mean(axis=1, keepdims=True)) * (m / (m - 1))
+        # Keep every stride-th state: ceil(states / stride) states of m rows each stay within the cap.
+        stride = -(-self._states // max(1, self.max_rows_per_step // m))
+        if stride > 1:  # the same states at every decision time
+            keep = (self._seen + np.arange(len(y))) % stride == 0
+            X, centred = X[:, keep], centred[keep]
+        self._seen += len(y)
         self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1)))
 
     def _finish_step(self, k: int) -> None:

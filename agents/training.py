@@ -85,7 +85,7 @@ def build_agent(spec, index: int, problem: HedgingProblem, market: PathGenerator
         return LinearBasisAgent(problem, ridge=spec.ridge, smoothing=spec.smoothing, **common)
     if spec.kind == "fitted_q":
         regressor = make_regressor(spec.regressor, spec.regressor_params, f"{where}.regressor_params")
-        return FittedQAgent(problem, regressor=regressor, **common)
+        return FittedQAgent(problem, regressor=regressor, max_rows_per_step=spec.max_rows_per_step, **common)
     raise ConfigError(f"{where}.kind: unknown agent kind {spec.kind!r}")
 
 

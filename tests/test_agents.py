@@ -259,6 +259,29 @@ def test_fitted_q_agent_takes_any_scikit_learn_regressor_and_gives_finite_candid
         assert (candidates == targets[rows, None]).any(axis=1).all()
 
 
+class CountingRidge(Ridge):
+    """A ridge regression that records how many rows it was fitted on."""
+
+    def fit(self, X, y, sample_weight=None):
+        self.rows_ = len(X)
+        return super().fit(X, y, sample_weight)
+
+
+def test_fitted_q_keeps_at_most_its_row_cap_per_decision_time_thinning_whole_states_evenly():
+    problem, market = reference(0.001)
+    data = small_data(problem, market)
+    rows = data.n_states * data.actions.shape[-1]
+    uncapped = FittedQAgent(problem, regressor=CountingRidge()).fit(data)
+    assert {fit.rows_ for fit in uncapped.regressors_} == {rows}
+    cap = rows // 3 + 1
+    capped = FittedQAgent(problem, regressor=CountingRidge(), max_rows_per_step=cap).fit(data)
+    stride = math.ceil(data.n_states / (cap // data.actions.shape[-1]))  # every third state, all its targets
+    expected = math.ceil(data.n_states / stride) * data.actions.shape[-1]
+    assert {fit.rows_ for fit in capped.regressors_} == {expected}
+    assert expected <= cap
+    assert np.isfinite(capped.act(mixed_batch(problem))).all()
+
+
 @pytest.mark.parametrize("kind", AGENTS)
 def test_get_params_returns_the_constructor_arguments_and_clone_gives_an_unfitted_equal_agent(kind):
     agent = fitted(kind, 0.001)
