@@ -17,13 +17,12 @@ from __future__ import annotations
 
 import argparse
 import time
-from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 
 from agents.config import load_variants
-from agents.dataset import Exploration, Transitions, collect
+from agents.dataset import Exploration, collect
 from agents.linear import LinearBasisAgent
 from agents.scenario import training_paths
 from agents.training import train

@@ -8,7 +8,7 @@ path count: per-path totals are all that is kept (plus holdings on request).
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd

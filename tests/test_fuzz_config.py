@@ -15,7 +15,6 @@ import sys
 import tomllib
 import typing
 from contextlib import redirect_stderr, redirect_stdout
-from pathlib import Path
 
 import pytest
 import tomli_w

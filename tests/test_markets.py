@@ -27,7 +27,7 @@ from agents.evaluate import evaluate_policies, write_metrics
 from agents.report import build_report
 from agents.training import train, write_run
 from hedge_env import pricing
-from hedge_env.market import BLOCK_PATHS, GBMMarket, HestonMarket, MertonMarket
+from hedge_env.market import BLOCK_PATHS, HestonMarket, MertonMarket
 
 ql = pytest.importorskip("QuantLib")
 
