@@ -293,12 +293,15 @@ def run(
 def quote(
     source: Path = typer.Argument(..., help="TOML config file, or a run folder."),
     paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
+    tables: list[Path] = typer.Option(
+        None, "--table", help="Also quote with this hedge table (folder or table.json; repeatable)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
-    cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet)
     from agents.report import format_count
+
+    cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or ())
 
     rows = evaluation.to_records()
     if as_json:

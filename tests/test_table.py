@@ -336,6 +336,12 @@ def test_run_writes_the_table_of_export_policy_and_evaluate_scores_tables_beside
     assert scored["delta.table"]["kind"] == "table"
     for name in ("delta", "whalley_wilmott"):  # a coarse 61 x 21 grid, still within 1% here
         assert scored[f"{name}.table"]["objective"] == pytest.approx(scored[name]["objective"], rel=0.01)
+    done = runner.invoke(app, ["quote", str(run_dir), "--table", str(out), "--json", "--quiet"])
+    assert done.exit_code == 0, done.stderr
+    quoted = {q["name"]: q for q in json.loads(done.stdout)["quotes"]}
+    # The table's bid and ask are its source's within the same 1% (the opposite book uses the mirrored table).
+    for side in ("quote_bid", "quote_ask"):
+        assert quoted["delta.table"][side] == pytest.approx(quoted["delta"][side], rel=0.01)
 
     done = runner.invoke(app, ["export", str(run_dir), "--policy", "nope"])
     assert done.exit_code == 2 and done.stderr.strip().startswith("error: unknown policy 'nope'; policies: ")
