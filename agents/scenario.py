@@ -178,16 +178,11 @@ def _fixed_or(value, placeholder: float) -> float:
     return placeholder if value == "tune" else float(value)
 
 
-def training_paths(config: Config, market: PathGenerator, problem: HedgingProblem):
-    """The training paths of ``config.data`` from the training source (the only paths tuning and
-    fitting may see); a history's windows cap their number."""
-    n_paths = path_count(market, config.data.train_paths)
-    return market.generate(n_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
-
-
 def training_path_set(config: Config, market: PathGenerator, problem: HedgingProblem) -> PathSet:
-    """The paths of :func:`training_paths`, drawn a chunk at a time when used: memory stays bounded
-    at any path count (a rollout over it: ``rollout(problem, policy, paths, paths.n_paths)``)."""
+    """The training paths of ``config.data`` from the training source (the only paths tuning and
+    fitting may see; a history's windows cap their number), drawn a chunk at a time when used, so
+    memory stays bounded at any path count (a rollout over it: ``rollout(problem, policy, paths,
+    paths.n_paths)``; all at once: ``paths.rows(0, paths.n_paths)``)."""
     n_paths = path_count(market, config.data.train_paths)
     return PathSet(market, n_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
 

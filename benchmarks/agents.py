@@ -24,7 +24,7 @@ import numpy as np
 from agents.config import load_variants
 from agents.dataset import Exploration, collect
 from agents.linear import LinearBasisAgent
-from agents.scenario import training_paths
+from agents.scenario import training_path_set
 from agents.training import train
 from hedge_env.rollout import rollout_many
 
@@ -75,7 +75,8 @@ def main() -> None:
         spec = next(s for s in config.agents if s.kind == "linear")
         e = spec.exploration
         exploration = Exploration(e.no_trade, e.delta, e.spread, e.actions_per_state)
-        paths = training_paths(config, market, problem)
+        paths = training_path_set(config, market, problem)
+        paths = paths.rows(0, paths.n_paths)
         transitions = collect(problem, paths, exploration, np.random.SeedSequence(config.data.train_seed, spawn_key=(1, 0)))
         base = training.agents[spec.name]
         for smoothing in [float(x) for x in args.smoothing.split(",")]:

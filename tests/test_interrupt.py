@@ -3,6 +3,7 @@ and the next run is unaffected; the same config and seed give a byte-identical m
 
 from __future__ import annotations
 
+import json
 import signal
 import subprocess
 import sys
@@ -86,13 +87,14 @@ def test_ctrl_c_removes_the_unfinished_folder_and_says_so_in_one_line(config, tm
 
 
 def test_a_different_seed_gives_different_metrics(tmp_path):
-    runs = tmp_path / "runs"
+    objectives = []
     for seed in (3, 4):
         path = tmp_path / f"seed{seed}.toml"
         path.write_text(SMALL.replace("seed = 3", f"seed = {seed}"))
         done = subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", "evaluate", str(path),
                                "--quiet", "--json", "--paths", "2000"], capture_output=True, text=True, cwd=ROOT)
         assert done.returncode == 0, done.stderr
-        (runs / f"{seed}.json").parent.mkdir(exist_ok=True)
-        (runs / f"{seed}.json").write_text(done.stdout)
-    assert (runs / "3.json").read_text() != (runs / "4.json").read_text()
+        objectives.append({p["name"]: p["objective"] for p in json.loads(done.stdout)["policies"]})
+    # The numbers themselves differ (not only the seeds printed beside them), for every policy.
+    assert objectives[0].keys() == objectives[1].keys()
+    assert all(objectives[0][name] != objectives[1][name] for name in objectives[0])
