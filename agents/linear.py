@@ -125,7 +125,7 @@ class LinearBasisAgent(BackwardQAgent):
 
         ``map_chunks(function, *args)`` applies ``function(chunk, *args)`` to every
         chunk of transitions (in this process, joblib workers or a dask cluster:
-        agents.workers) and returns the results in chunk order. Per decision time,
+        rehedge.workers) and returns the results in chunk order. Per decision time,
         from the last, each chunk's normal equations are computed with the
         coefficients fitted so far, summed in chunk order and solved: the numbers
         of :meth:`fit` streaming the same chunks.

@@ -53,7 +53,7 @@ def training_times(sizes: list[int]) -> dict[str, list[tuple[int, float, float]]
     from agents.dataset import Exploration, TransitionStore
     from agents.fitted_q import FittedQAgent
     from agents.linear import LinearBasisAgent
-    from agents.training import collect_training_chunks
+    from rehedge.training import collect_training_chunks
     from hedge_env.env import default_problem
     from hedge_env.market import PathSet
 
@@ -89,7 +89,7 @@ def grid_dp_seconds() -> float:
 
 def sweep_seconds(quick: bool) -> tuple[int, float, float]:
     """(cells, serial seconds, 2-worker seconds) of the sweep demo (smaller paths with --quick)."""
-    from agents.sweep import run_sweep
+    from rehedge.sweep import run_sweep
 
     with tempfile.TemporaryDirectory(prefix="rehedge-bench-sweep-") as folder:
         config = Path(folder) / "sweep.toml"

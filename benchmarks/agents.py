@@ -21,11 +21,11 @@ from pathlib import Path
 
 import numpy as np
 
-from agents.config import load_variants
+from rehedge.config import load_variants
 from agents.dataset import Exploration, collect
 from agents.linear import LinearBasisAgent
-from agents.scenario import training_path_set
-from agents.training import train
+from rehedge.build import training_path_set
+from rehedge.training import train
 from hedge_env.rollout import rollout_many
 
 BOOTSTRAP = 1000

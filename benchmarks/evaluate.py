@@ -15,9 +15,9 @@ import argparse
 import resource
 import time
 
-from agents.config import load_variants
-from agents.evaluate import evaluate_policies, evaluate_with_quotes
-from agents.training import train
+from rehedge.config import load_variants
+from rehedge.compare import evaluate_policies, evaluate_with_quotes
+from rehedge.training import train
 
 
 def main() -> None:

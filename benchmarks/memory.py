@@ -22,7 +22,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from agents.config import load_variants, parse_config
+from rehedge.config import load_variants, parse_config
 
 
 def peak_rss_mb() -> float:
@@ -32,9 +32,9 @@ def peak_rss_mb() -> float:
 
 def child(paths: int, agents: list[str], config_path: str) -> dict:
     """The measured job, in this process."""
-    from agents.evaluate import evaluate_with_quotes, write_metrics
-    from agents.report import build_report
-    from agents.training import train, write_run
+    from rehedge.compare import evaluate_with_quotes, write_metrics
+    from rehedge.report import build_report
+    from rehedge.training import train, write_run
 
     base = load_variants(config_path)[0].model_dump(mode="json")
     base.pop("sweep", None)

@@ -65,7 +65,7 @@ def per_path_loop(problem, spot_paths: np.ndarray) -> dict[str, np.ndarray]:
 
 def memory_child(n_paths: int) -> None:
     """Run in a fresh process: evaluate every baseline on n_paths and print peak RSS in MB."""
-    from agents.evaluate import evaluate_policies
+    from rehedge.compare import evaluate_policies
     from agents.baselines import FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand
 
     problem, market = default_problem()

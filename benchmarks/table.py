@@ -24,9 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from agents.config import load_variants
-from agents.table import HedgeTable, export_policy
-from agents.training import train
+from rehedge.config import load_variants
+from rehedge.tables import HedgeTable, export_policy
+from rehedge.training import train
 from hedge_env.rollout import rollout_many
 
 
@@ -84,7 +84,7 @@ def main() -> None:
         times.append(time.perf_counter() - started)
     print(f"table {last}: load {load_s * 1e3:.0f} ms; decide() on {n:,} states: median {statistics.median(times):.3f} s, "
           f"best {min(times):.3f} s ({decision.clamped.mean():.0%} of them clamped)")
-    command = [sys.executable, "-c", "from agents.cli import main; main()", "advise", str(last),
+    command = [sys.executable, "-c", "from rehedge.cli import main; main()", "advise", str(last),
                "--spot", f"{table.reference_spot * 1.015:g}", "--days-left", f"{d_high / 2:g}",
                "--holding", f"{(h_low + h_high) / 2:g}", "--json"]
     walls = []

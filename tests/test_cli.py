@@ -11,7 +11,7 @@ import joblib
 import numpy as np
 import pytest
 
-from agents.training import load_run
+from rehedge.training import load_run
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -67,7 +67,7 @@ holding_points = 41
 
 
 def rehedge(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", *args],
+    return subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", *args],
                           capture_output=True, text=True, cwd=cwd or ROOT)
 
 

@@ -1,4 +1,4 @@
-"""Config schema, loading, error messages and hashing (agents.config)."""
+"""Config schema, loading, error messages and hashing (rehedge.config)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from agents.config import (
+from rehedge.config import (
     Config,
     ConfigError,
     DeltaBaseline,

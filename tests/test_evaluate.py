@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from agents.baselines import DeltaHedge, FixedBand, NoHedge
-from agents.evaluate import evaluate_policies, paired_bootstrap
+from rehedge.compare import evaluate_policies, paired_bootstrap
 from hedge_env.env import default_problem
 
 
@@ -65,7 +65,7 @@ def test_quotes_of_a_zero_cost_delta_hedge_tend_to_the_black_scholes_price_as_re
     # falls like 1/N (Kamal and Derman 1999, from memory), and the bid sits below by as much.
     from dataclasses import replace
 
-    from agents.evaluate import evaluate_with_quotes
+    from rehedge.compare import evaluate_with_quotes
     from hedge_env.frictions import Frictions
     from hedge_env.problem import Schedule
 

@@ -11,9 +11,9 @@ import math
 import numpy as np
 import pytest
 
-from agents.config import parse_config
-from agents.evaluate import evaluate_with_quotes, write_metrics
-from agents.training import train
+from rehedge.config import parse_config
+from rehedge.compare import evaluate_with_quotes, write_metrics
+from rehedge.training import train
 
 BASE = {
     "name": "extreme", "seed": 1,

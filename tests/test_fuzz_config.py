@@ -23,8 +23,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pydantic import BaseModel
 
-from agents import config as schema
-from agents.cli import main
+from rehedge import config as schema
+from rehedge.cli import main
 
 BASE_TOML = """
 name = "fuzz-base"

@@ -19,10 +19,10 @@ import pandas as pd
 import pytest
 
 from agents.baselines import DeltaHedge
-from agents.config import ConfigError, parse_config
-from agents.evaluate import evaluate_policies
-from agents.scenario import build_markets, build_problem, historical_parts, path_count
-from agents.training import train
+from rehedge.config import ConfigError, parse_config
+from rehedge.compare import evaluate_policies
+from rehedge.build import build_markets, build_problem, historical_parts, path_count
+from rehedge.training import train
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.history import (
     HistoricalWindows,
@@ -121,7 +121,7 @@ def test_cli_reports_a_bad_csv_in_one_line_with_exit_code_2(tmp_path):
     text = text.replace('csv = "data/nwtp-history.csv"', 'csv = "bad.csv"')
     config = tmp_path / "bad.toml"
     config.write_text(text)
-    done = subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", "check-config", str(config)],
+    done = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "check-config", str(config)],
                           capture_output=True, text=True, cwd=ROOT)
     assert done.returncode == 2
     assert done.stderr.strip().count("\n") == 0 and "Traceback" not in done.stderr
@@ -334,7 +334,7 @@ def test_delta_hedge_prices_at_the_observed_mark_volatility():
 
 
 def test_shipped_history_config_loads_with_implied_marks():
-    from agents.config import load_config
+    from rehedge.config import load_config
 
     config = load_config(ROOT / "configs" / "historical.toml")
     assert Path(config.market.csv).is_file() and (ROOT / "configs" / "data" / "nwtp-history.csv").stat().st_size < 1e6
@@ -373,7 +373,7 @@ def test_run_folder_states_both_date_ranges(tmp_path):
     text = text.split("[[baselines]]")[0] + '[[baselines]]\nkind = "delta"\n\n[[agents]]\nkind = "linear"\n'
     config = tmp_path / "small.toml"
     config.write_text(text)
-    done = subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", "run", str(config),
+    done = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "run", str(config),
                            "--runs-dir", str(tmp_path / "runs"), "--quiet", "--json"],
                           capture_output=True, text=True, cwd=ROOT)
     assert done.returncode == 0, done.stderr

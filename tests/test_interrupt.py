@@ -18,7 +18,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def start_run(config: Path, runs: Path) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-c", "from agents.cli import main; main()", "run", str(config),
+    return subprocess.Popen([sys.executable, "-c", "from rehedge.cli import main; main()", "run", str(config),
                              "--runs-dir", str(runs), "--quiet", "--json"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
 
@@ -56,7 +56,7 @@ def test_a_killed_run_leaves_only_a_partial_folder_that_nothing_reads_and_the_ne
     assert complete_runs(runs) == []
     assert staging.exists() and not (staging / "metrics.json").exists()
 
-    refused = subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", "evaluate", str(staging),
+    refused = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "evaluate", str(staging),
                               "--quiet"], capture_output=True, text=True, cwd=ROOT)
     assert refused.returncode == 2
     assert refused.stderr.count("\n") == 1 and "incomplete run folder" in refused.stderr
@@ -64,7 +64,7 @@ def test_a_killed_run_leaves_only_a_partial_folder_that_nothing_reads_and_the_ne
     small = tmp_path / "small.toml"
     small.write_text(SMALL)
     for _ in range(2):
-        done = subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", "run", str(small),
+        done = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "run", str(small),
                                "--runs-dir", str(runs), "--quiet", "--json"], capture_output=True, text=True, cwd=ROOT)
         assert done.returncode == 0, done.stderr
     first, second = complete_runs(runs)
@@ -91,7 +91,7 @@ def test_a_different_seed_gives_different_metrics(tmp_path):
     for seed in (3, 4):
         path = tmp_path / f"seed{seed}.toml"
         path.write_text(SMALL.replace("seed = 3", f"seed = {seed}"))
-        done = subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", "evaluate", str(path),
+        done = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "evaluate", str(path),
                                "--quiet", "--json", "--paths", "2000"], capture_output=True, text=True, cwd=ROOT)
         assert done.returncode == 0, done.stderr
         objectives.append({p["name"]: p["objective"] for p in json.loads(done.stdout)["policies"]})

@@ -22,10 +22,10 @@ import numpy as np
 import pytest
 from threadpoolctl import threadpool_limits
 
-from agents.config import ConfigError, parse_config
-from agents.evaluate import evaluate_policies, write_metrics
-from agents.report import build_report
-from agents.training import train, write_run
+from rehedge.config import ConfigError, parse_config
+from rehedge.compare import evaluate_policies, write_metrics
+from rehedge.report import build_report
+from rehedge.training import train, write_run
 from hedge_env import pricing
 from hedge_env.market import BLOCK_PATHS, HestonMarket, MertonMarket
 

@@ -11,11 +11,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from agents.config import ConfigError, load_variants
-from agents.evaluate import evaluate_with_quotes, write_metrics
+from rehedge.config import ConfigError, load_variants
+from rehedge.compare import evaluate_with_quotes, write_metrics
 from agents.baselines import DeltaHedge
-from agents.report import CAUTION, build_report, format_money, policy_map
-from agents.training import load_run, train, write_run
+from rehedge.report import CAUTION, build_report, format_money, policy_map
+from rehedge.training import load_run, train, write_run
 
 # Two variants (10 and 50 bps) of a short 8-day call: seconds to train and score.
 TINY = """

@@ -11,10 +11,10 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-import agents.runner
-from agents.cli import app
-from agents.config import ConfigError
-from agents.sweep import run_sweep, sweep_cells
+import rehedge.runner
+from rehedge.cli import app
+from rehedge.config import ConfigError
+from rehedge.sweep import run_sweep, sweep_cells
 
 SWEEP = """
 name = "tiny-sweep"
@@ -91,7 +91,7 @@ def test_every_combination_of_the_grid_is_one_cell_with_its_overrides_and_own_se
     for cell in cells:
         assert cell.config.frictions.cost_rate == cell.overrides["frictions.cost_rate"]
         assert cell.config.seed == cell.overrides["seed"]
-        # Data seeds derive from the cell's seed (agents.config: 2 * seed + 1 and + 2).
+        # Data seeds derive from the cell's seed (rehedge.config: 2 * seed + 1 and + 2).
         assert (cell.config.data.train_seed, cell.config.data.heldout_seed) == (2 * cell.config.seed + 1,
                                                                                 2 * cell.config.seed + 2)
 
@@ -134,14 +134,14 @@ def test_results_are_identical_serially_with_joblib_and_on_a_dask_cluster(config
 
 
 def test_a_failed_cell_is_reported_and_the_others_finish(config_file, tmp_path, monkeypatch):
-    real_train = agents.runner.train
+    real_train = rehedge.runner.train
 
     def train(config, *args, **kwargs):
         if config.seed == 2 and config.frictions.cost_rate == 0.004:
             raise FloatingPointError("invented failure of one cell")
         return real_train(config, *args, **kwargs)
 
-    monkeypatch.setattr(agents.runner, "train", train)
+    monkeypatch.setattr(rehedge.runner, "train", train)
     result = run_sweep(config_file, sweep_dir=tmp_path / "sweep", report=False)
     failed = "tiny-sweep-costrate0.004-seed2"
     assert result.failed == [failed]
@@ -155,7 +155,7 @@ def test_a_failed_cell_is_reported_and_the_others_finish(config_file, tmp_path, 
     assert (result.table["status"] == "ok").sum() == 3 * POLICIES
 
     # Resume runs only the failed cell; the finished ones are kept as they were.
-    monkeypatch.setattr(agents.runner, "train", real_train)
+    monkeypatch.setattr(rehedge.runner, "train", real_train)
     kept = {name: (result.folder / "cells" / name / "metrics.json").stat().st_mtime_ns
             for name in result.status if name != failed}
     resumed = run_sweep(config_file, sweep_dir=tmp_path / "sweep", resume=True, report=False)

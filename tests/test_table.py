@@ -15,11 +15,11 @@ import pytest
 from typer.testing import CliRunner
 
 from agents.baselines import DeltaHedge, FixedBand, WhalleyWilmottBand
-from agents.cli import CAUTION, app
-from agents.config import ConfigError, parse_config
+from rehedge.cli import CAUTION, app
+from rehedge.config import ConfigError, parse_config
 from agents.grid_dp import GridDPAgent
 from agents.policy import Policy
-from agents.table import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, TableGrid, export_table
+from rehedge.tables import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, TableGrid, export_table
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
 from hedge_env.market import GBMMarket
@@ -243,7 +243,7 @@ def test_advise_errors_are_one_line_with_exit_code_2(exported, tmp_path, edit, a
 def test_advise_imports_neither_scikit_learn_nor_pandas_matplotlib_gymnasium(exported):
     _, _, tables, _ = exported
     script = (
-        "import sys\nfrom agents.cli import main\n"
+        "import sys\nfrom rehedge.cli import main\n"
         f"sys.argv = ['rehedge', 'advise', {str(tables['fixed_band'].path)!r}, '--spot', '100', "
         "'--days-left', '3', '--holding', '0.5', '--json']\n"
         "try:\n    main()\nexcept SystemExit as exit:\n    assert exit.code in (0, None), exit.code\n"
@@ -308,7 +308,7 @@ def test_export_grid_settings_are_validated_with_their_key():
 
 
 def rehedge(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-c", "from agents.cli import main; main()", *args],
+    return subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", *args],
                           capture_output=True, text=True, cwd=ROOT)
 
 

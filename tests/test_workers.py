@@ -13,8 +13,8 @@ from threadpoolctl import threadpool_limits
 from agents.baselines import DeltaHedge, FixedBand
 from agents.dataset import Exploration, Transitions, TransitionStore
 from agents.linear import LinearBasisAgent
-from agents.training import collect_training_chunks
-from agents.workers import collect_on_workers
+from rehedge.training import collect_training_chunks
+from rehedge.workers import collect_on_workers
 from hedge_env.env import default_problem
 from hedge_env.market import PathSet
 from hedge_env.problem import Schedule
@@ -35,7 +35,7 @@ def setting():
 
 @pytest.fixture(scope="module")
 def single_process_fit(setting):
-    """The fit as agents.training.train does it: chunks collected and streamed in this process."""
+    """The fit as rehedge.training.train does it: chunks collected and streamed in this process."""
     problem, _, paths = setting
     with TransitionStore() as store, threadpool_limits(limits=1):
         for chunk in collect_training_chunks(problem, paths, Exploration(), SEED, CHUNK):

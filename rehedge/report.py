@@ -32,8 +32,8 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from agents.config import ConfigError
-from agents.training import Run, load_run
+from rehedge.config import ConfigError
+from rehedge.training import Run, load_run
 from hedge_env.market import GivenPaths
 from hedge_env.rollout import rollout
 
@@ -730,7 +730,7 @@ def build_report(run_dir: Path, siblings: Sequence[Path] = (), staging: bool = F
         Other run folders of the same sweep; with any, the report adds the
         cost-risk frontier across the runs.
     staging : bool
-        ``run_dir`` is the unfinished folder of the run writing it (see agents.runner).
+        ``run_dir`` is the unfinished folder of the run writing it (see rehedge.runner).
 
     Returns
     -------

@@ -1,7 +1,7 @@
 """Where independent pieces of work run: this process, local worker processes (joblib's loky
 backend) or the workers of a dask.distributed cluster.
 
-Two uses. The cells of a sweep (agents.sweep) are whole runs: :func:`run_each`
+Two uses. The cells of a sweep (rehedge.sweep) are whole runs: :func:`run_each`
 runs a function on each item and yields the outcomes as they finish. The
 linear agent's fit maps over chunks of training transitions held where they
 were collected (:func:`collect_on_workers`, then
@@ -159,7 +159,7 @@ class DaskChunks:
 
 
 def _collect(problem, paths, exploration, train_seed, chunk_paths, index) -> Transitions:
-    from agents.training import collect_training_chunk
+    from rehedge.training import collect_training_chunk
 
     return collect_training_chunk(problem, paths, exploration, train_seed, chunk_paths, index)
 
@@ -174,7 +174,7 @@ def collect_on_workers(problem: HedgingProblem, paths: PathSet, exploration: Exp
     """Transitions of the training paths ``paths``, ``chunk_paths`` at a time, each chunk collected
     and kept by a worker; returns a map over the chunks (``LocalChunks``, ``JoblibChunks`` or
     ``DaskChunks``, each with ``close()``). The chunks are those of
-    agents.training.collect_training_chunks, so any of them gives the same fit."""
+    rehedge.training.collect_training_chunks, so any of them gives the same fit."""
     count = -(-paths.n_paths // chunk_paths)
     common = (problem, paths, exploration, train_seed, chunk_paths)
     if scheduler is not None:

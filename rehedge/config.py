@@ -357,7 +357,7 @@ class HistoricalMarket(_Spec):
 
     def pricing_volatility(self, horizon_years: float) -> None:
         """None: the mark volatility of a history is known only from its data (the implied column or the
-        realised volatility of the training part, see agents.scenario), or given as pricing.volatility."""
+        realised volatility of the training part, see rehedge.build), or given as pricing.volatility."""
         return None
 
     def describe(self) -> str:

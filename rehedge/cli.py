@@ -45,7 +45,7 @@ def fail(message: str, code: int = 2) -> None:
 
 
 def _load(path: Path):
-    from agents.config import ConfigError, load_config
+    from rehedge.config import ConfigError, load_config
 
     try:
         return load_config(path)
@@ -54,7 +54,7 @@ def _load(path: Path):
 
 
 def _load_variants(path: Path):
-    from agents.config import ConfigError, load_variants
+    from rehedge.config import ConfigError, load_variants
 
     try:
         return load_variants(path)
@@ -81,7 +81,7 @@ def _progress(quiet: bool):
 
 
 def _money(value: float) -> str:
-    from agents.report import format_money
+    from rehedge.report import format_money
 
     return format_money(value)
 
@@ -128,8 +128,8 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
         highlight=False,
     )
     if cfg.market.model == "historical":
-        from agents.config import ConfigError
-        from agents.scenario import build_markets, describe_markets
+        from rehedge.config import ConfigError
+        from rehedge.build import build_markets, describe_markets
 
         try:
             markets = describe_markets(*build_markets(cfg))
@@ -181,7 +181,7 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
 
 def _heldout(cfg, market, paths: int | None, seed: int | None) -> tuple[int, int]:
     """Held-out path count (a history's windows cap it) and seed."""
-    from agents.scenario import path_count
+    from rehedge.build import path_count
 
     return path_count(market, paths or cfg.data.heldout_paths), cfg.data.heldout_seed if seed is None else seed
 
@@ -204,8 +204,8 @@ def evaluate(
 
 def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=()):
     """Policies of a config or run folder (and hedge tables) on its held-out paths, with CIs and quotes."""
-    from agents.evaluate import evaluate_with_quotes
-    from agents.table import TableError, tables_as_policies
+    from rehedge.compare import evaluate_with_quotes
+    from rehedge.tables import TableError, tables_as_policies
 
     with _progress(quiet) as start:
         cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
@@ -228,8 +228,8 @@ def _reference(cfg, policies) -> str | None:
 
 
 def _train(cfg, config: Path, runs_dir: Path, quiet: bool):
-    from agents.config import ConfigError
-    from agents.training import train, write_run
+    from rehedge.config import ConfigError
+    from rehedge.training import train, write_run
 
     try:
         with _progress(quiet) as start:
@@ -264,10 +264,10 @@ def run(
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
-    from agents.config import ConfigError
-    from agents.report import build_report
-    from agents.runner import run_config
-    from agents.table import TableError
+    from rehedge.config import ConfigError
+    from rehedge.report import build_report
+    from rehedge.runner import run_config
+    from rehedge.tables import TableError
 
     run_dirs = []
     variants = _load_variants(config)
@@ -299,7 +299,7 @@ def quote(
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
-    from agents.report import format_count
+    from rehedge.report import format_count
 
     cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or ())
 
@@ -329,8 +329,8 @@ def quote(
 @app.command()
 def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run`.")) -> None:
     """Rebuild report.html of a run folder from its saved results."""
-    from agents.config import ConfigError
-    from agents.report import build_report
+    from rehedge.config import ConfigError
+    from rehedge.report import build_report
 
     if not (run_dir / "metrics.json").is_file():
         fail(f"{run_dir}: no metrics.json (a folder written by `rehedge run` has one)")
@@ -347,7 +347,7 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehe
 
 
 def _export(cfg, problem, policies, name: str, folder: Path) -> Path:
-    from agents.table import TableError, export_policy
+    from rehedge.tables import TableError, export_policy
 
     try:
         folder = export_policy(cfg, problem, policies, name, folder)
@@ -365,8 +365,8 @@ def export(
     out: Path = typer.Option(None, "--out", help="Table folder to write (default: RUN_DIR/tables/POLICY)."),
 ) -> None:
     """Write a policy of a run as a hedge table: targets.csv, band.csv and table.json (see README)."""
-    from agents.config import ConfigError
-    from agents.training import load_run
+    from rehedge.config import ConfigError
+    from rehedge.training import load_run
 
     try:
         run = load_run(run_dir)
@@ -389,7 +389,7 @@ def advise(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of text."),
 ) -> None:
     """One decision from a hedge table: target holding, trade, no-trade band, clamping, cautions."""
-    from agents.table import HedgeTable, TableError, advice
+    from rehedge.tables import HedgeTable, TableError, advice
 
     try:
         record = advice(HedgeTable.load(table), spot, days_left, holding)
@@ -433,8 +433,8 @@ def sweep_command(
 ) -> None:
     """Run every cell of CONFIG's sweep (each a run folder of its own) locally or on a dask cluster;
     write the combined table (sweep.csv, sweep.json) and the cost-risk frontier (frontier.png)."""
-    from agents.config import ConfigError
-    from agents.sweep import run_sweep, sweep_cells
+    from rehedge.config import ConfigError
+    from rehedge.sweep import run_sweep, sweep_cells
 
     try:
         _, cells = sweep_cells(config)
@@ -487,9 +487,9 @@ def bench_command(quick: bool = typer.Option(False, "--quick", help="Small sizes
 
 def _policies_of(source: Path, start):
     """Config or run folder -> (config, problem, held-out market, policies, tuning, kinds)."""
-    from agents.config import ConfigError
-    from agents.scenario import build_markets, build_problem, prepare_baselines
-    from agents.training import load_run
+    from rehedge.config import ConfigError
+    from rehedge.build import build_markets, build_problem, prepare_baselines
+    from rehedge.training import load_run
 
     if source.is_dir():
         try:

@@ -8,7 +8,7 @@ from dataclasses import replace
 import numpy as np
 
 from agents import baselines
-from agents.config import Config, ConfigError
+from rehedge.config import Config, ConfigError
 from agents.tuning import tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions

@@ -23,12 +23,12 @@ import sklearn
 from sklearn import ensemble, linear_model, neighbors, neural_network
 
 import hedge_env
-from agents.config import Config, ConfigError, config_hash, parse_config
+from rehedge.config import Config, ConfigError, config_hash, parse_config
 from agents.dataset import Exploration, TransitionStore, Transitions, collect
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
-from agents.scenario import (
+from rehedge.build import (
     build_baseline,
     build_markets,
     build_problem,

@@ -636,7 +636,7 @@ def _write_folder(folder: Path, csvs: dict[str, bytes], sidecar: bytes) -> Path:
 
 
 def grid_of(export) -> TableGrid:
-    """The table grid of a config's ``[export]`` section (agents.config.ExportSpec)."""
+    """The table grid of a config's ``[export]`` section (rehedge.config.ExportSpec)."""
     return TableGrid(moneyness_points=export.moneyness_points, holding_points=export.holding_points,
                      moneyness_width=export.moneyness_width)
 
@@ -644,7 +644,7 @@ def grid_of(export) -> TableGrid:
 def export_policy(config, problem, policies: dict, name: str, folder: str | Path) -> Path:
     """Export the policy called ``name`` among ``policies`` (of ``config``) with the grid of
     ``config.export``; an unknown name is a TableError that lists the known ones."""
-    from agents.config import config_hash
+    from rehedge.config import config_hash
 
     if name not in policies:
         known = ", ".join(repr(n) for n in policies) or "none"

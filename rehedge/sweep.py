@@ -3,14 +3,14 @@
 A config's ``[sweep]`` table maps dotted keys to lists of values
 (``"frictions.cost_rate" = [0.0005, 0.002]``, ``seed = [1, 2]``); every
 combination is a *cell*: the config with those values, validated like a
-config of its own (agents.config.load_variants). A cell does what
+config of its own (rehedge.config.load_variants). A cell does what
 ``rehedge run`` does for one config (tune the baselines, fit the agents,
 score every policy on the held-out paths with CIs and quotes, write the
 metrics and the report) in a run folder of its own,
 ``SWEEP_DIR/cells/CELL_NAME/``.
 
 Cells run serially, on local worker processes (joblib) or on a
-dask.distributed cluster (agents.workers.run_each). A cell's numbers depend
+dask.distributed cluster (rehedge.workers.run_each). A cell's numbers depend
 on its config alone: its seeds come from the config (a swept ``seed`` gives
 each cell its own; otherwise the cells share paths, which pairs their
 comparison), and every cell runs with one BLAS thread, so the results are the
@@ -24,7 +24,7 @@ A failed cell does not stop the others: its error goes into the combined
 table and ``failures.json``. The sweep folder holds ``sweep.csv`` and
 ``sweep.json`` (one row per cell and policy: the cell's overrides, then the
 policy's held-out metrics) and ``frontier.png`` (cost against risk per policy
-across the cells; agents.report).
+across the cells; rehedge.report).
 """
 
 from __future__ import annotations
@@ -44,8 +44,8 @@ from typing import Any
 
 import pandas as pd
 
-from agents.config import Config, ConfigError, config_hash, load_config, load_variants
-from agents.workers import THREADS_PER_TASK, run_each
+from rehedge.config import Config, ConfigError, config_hash, load_config, load_variants
+from rehedge.workers import THREADS_PER_TASK, run_each
 
 CELL_FILE = "cell.json"
 
@@ -110,7 +110,7 @@ def run_cell(cell: Cell, config_text: str = "", heldout_paths: int | None = None
 
     Any error is caught and returned: a failed cell is reported, it does not stop a sweep.
     """
-    from agents.runner import run_config
+    from rehedge.runner import run_config
 
     clock = time.perf_counter()
     config = cell.config
@@ -248,7 +248,7 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
     done = [cells_dir / cell.name for cell in cells if status[cell.name] in ("ok", "resumed")]
     frontier = folder / "frontier.png"
     if len(done) >= 2:
-        from agents.report import write_frontier
+        from rehedge.report import write_frontier
 
         write_frontier(done, frontier, list(base.sweep))
     elif frontier.exists():

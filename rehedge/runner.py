@@ -13,10 +13,10 @@ import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
-from agents.config import Config
-from agents.evaluate import Evaluation, evaluate_with_quotes, write_metrics
-from agents.scenario import path_count
-from agents.training import ProgressStart, Training, no_progress, finish_run, train, write_run
+from rehedge.config import Config
+from rehedge.compare import Evaluation, evaluate_with_quotes, write_metrics
+from rehedge.build import path_count
+from rehedge.training import ProgressStart, Training, no_progress, finish_run, train, write_run
 
 
 @dataclass
@@ -50,8 +50,8 @@ def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_p
     extra : dict, optional
         More entries for ``manifest.json``.
     """
-    from agents.report import build_report
-    from agents.table import export_policy
+    from rehedge.report import build_report
+    from rehedge.tables import export_policy
 
     training = train(config, start)
     staging = write_run(training, config_text, Path(runs_dir), extra, finish=False)
