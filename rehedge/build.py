@@ -8,7 +8,8 @@ from dataclasses import replace
 import numpy as np
 
 from agents import baselines
-from rehedge.config import Config, ConfigError
+from rehedge.errors import ConfigError
+from rehedge.schema import Config
 from agents.tuning import tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions

@@ -45,7 +45,8 @@ def fail(message: str, code: int = 2) -> None:
 
 
 def _load(path: Path):
-    from rehedge.config import ConfigError, load_config
+    from rehedge.errors import ConfigError
+    from rehedge.config import load_config
 
     try:
         return load_config(path)
@@ -54,7 +55,8 @@ def _load(path: Path):
 
 
 def _load_variants(path: Path):
-    from rehedge.config import ConfigError, load_variants
+    from rehedge.errors import ConfigError
+    from rehedge.config import load_variants
 
     try:
         return load_variants(path)
@@ -128,7 +130,7 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
         highlight=False,
     )
     if cfg.market.model == "historical":
-        from rehedge.config import ConfigError
+        from rehedge.errors import ConfigError
         from rehedge.build import build_markets, describe_markets
 
         try:
@@ -228,7 +230,7 @@ def _reference(cfg, policies) -> str | None:
 
 
 def _train(cfg, config: Path, runs_dir: Path, quiet: bool):
-    from rehedge.config import ConfigError
+    from rehedge.errors import ConfigError
     from rehedge.training import train, write_run
 
     try:
@@ -264,7 +266,7 @@ def run(
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
-    from rehedge.config import ConfigError
+    from rehedge.errors import ConfigError
     from rehedge.report import build_report
     from rehedge.runner import run_config
     from rehedge.tables import TableError
@@ -329,7 +331,7 @@ def quote(
 @app.command()
 def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run`.")) -> None:
     """Rebuild report.html of a run folder from its saved results."""
-    from rehedge.config import ConfigError
+    from rehedge.errors import ConfigError
     from rehedge.report import build_report
 
     if not (run_dir / "metrics.json").is_file():
@@ -365,7 +367,7 @@ def export(
     out: Path = typer.Option(None, "--out", help="Table folder to write (default: RUN_DIR/tables/POLICY)."),
 ) -> None:
     """Write a policy of a run as a hedge table: targets.csv, band.csv and table.json (see README)."""
-    from rehedge.config import ConfigError
+    from rehedge.errors import ConfigError
     from rehedge.training import load_run
 
     try:
@@ -433,7 +435,7 @@ def sweep_command(
 ) -> None:
     """Run every cell of CONFIG's sweep (each a run folder of its own) locally or on a dask cluster;
     write the combined table (sweep.csv, sweep.json) and the cost-risk frontier (frontier.png)."""
-    from rehedge.config import ConfigError
+    from rehedge.errors import ConfigError
     from rehedge.sweep import run_sweep, sweep_cells
 
     try:
@@ -487,7 +489,7 @@ def bench_command(quick: bool = typer.Option(False, "--quick", help="Small sizes
 
 def _policies_of(source: Path, start):
     """Config or run folder -> (config, problem, held-out market, policies, tuning, kinds)."""
-    from rehedge.config import ConfigError
+    from rehedge.errors import ConfigError
     from rehedge.build import build_markets, build_problem, prepare_baselines
     from rehedge.training import load_run
 

@@ -32,7 +32,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from rehedge.config import ConfigError
+from rehedge.errors import ConfigError
 from rehedge.training import Run, load_run
 from hedge_env.market import GivenPaths
 from hedge_env.rollout import rollout

@@ -13,7 +13,7 @@ import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
-from rehedge.config import Config
+from rehedge.schema import Config
 from rehedge.compare import Evaluation, evaluate_with_quotes, write_metrics
 from rehedge.build import path_count
 from rehedge.training import ProgressStart, Training, no_progress, finish_run, train, write_run

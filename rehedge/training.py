@@ -23,7 +23,9 @@ import sklearn
 from sklearn import ensemble, linear_model, neighbors, neural_network
 
 import hedge_env
-from rehedge.config import Config, ConfigError, config_hash, parse_config
+from rehedge.errors import ConfigError
+from rehedge.config import config_hash, parse_config
+from rehedge.schema import Config
 from agents.dataset import Exploration, TransitionStore, Transitions, collect
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent

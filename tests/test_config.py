@@ -6,15 +6,9 @@ from pathlib import Path
 
 import pytest
 
-from rehedge.config import (
-    Config,
-    ConfigError,
-    DeltaBaseline,
-    LelandBaseline,
-    config_hash,
-    load_config,
-    parse_config,
-)
+from rehedge.errors import ConfigError
+from rehedge.config import config_hash, load_config, parse_config
+from rehedge.schema import Config, DeltaBaseline, LelandBaseline
 
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "demo.toml"
 

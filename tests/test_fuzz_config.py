@@ -23,7 +23,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pydantic import BaseModel
 
-from rehedge import config as schema
+from rehedge import config, schema
 from rehedge.cli import main
 
 BASE_TOML = """
@@ -114,7 +114,7 @@ def _model_of(path: tuple) -> type[BaseModel]:
     for part in path:
         node = node[part]
         if isinstance(part, int):
-            annotation = typing.get_args(schema._unwrap(annotation))[0]  # list[X] -> X
+            annotation = typing.get_args(config._unwrap(annotation))[0]  # list[X] -> X
         else:
             annotation = model.model_fields[part].annotation
         if isinstance(node, dict):
@@ -124,14 +124,14 @@ def _model_of(path: tuple) -> type[BaseModel]:
 
 def _table(annotation, node: dict | None = None) -> type[BaseModel]:
     """The model an annotation names: itself, or the member of a tagged union that ``node`` selects."""
-    annotation = schema._unwrap(annotation)
-    if schema._is_model(annotation):
+    annotation = config._unwrap(annotation)
+    if config._is_model(annotation):
         return annotation
-    members = [schema._unwrap(a) for a in typing.get_args(annotation) if a is not type(None)]
+    members = [config._unwrap(a) for a in typing.get_args(annotation) if a is not type(None)]
     if len(members) == 1:
         return _table(members[0], node)
     tag = (node or {}).get("kind", (node or {}).get("model"))
-    member = schema._tag_member(members, tag)
+    member = config._tag_member(members, tag)
     assert member is not None, (annotation, tag)
     return member
 
@@ -163,7 +163,7 @@ TABLES = list(_tables(BASE))
 
 
 def key_path(path: tuple) -> str:
-    return schema._format_key(list(path))
+    return config._format_key(list(path))
 
 
 def _bounds(path: tuple) -> list[tuple[str, float]]:
@@ -219,7 +219,7 @@ def broken_configs(draw):
         below = draw(st.floats(min_value=0.0 if kind == "gt" else 1e-9, max_value=1e9, allow_nan=False))
         value = bound - below
         field = _model_of(path[:-1]).model_fields[path[-1]]
-        if schema._unwrap(field.annotation) is int or "int" in str(field.annotation):
+        if config._unwrap(field.annotation) is int or "int" in str(field.annotation):
             value = int(bound) - int(max(below, 1))
         _set(data, path, value)
         return data, key_path(path)

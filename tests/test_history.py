@@ -19,7 +19,8 @@ import pandas as pd
 import pytest
 
 from agents.baselines import DeltaHedge
-from rehedge.config import ConfigError, parse_config
+from rehedge.errors import ConfigError
+from rehedge.config import parse_config
 from rehedge.compare import evaluate_policies
 from rehedge.build import build_markets, build_problem, historical_parts, path_count
 from rehedge.training import train

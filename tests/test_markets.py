@@ -22,7 +22,8 @@ import numpy as np
 import pytest
 from threadpoolctl import threadpool_limits
 
-from rehedge.config import ConfigError, parse_config
+from rehedge.errors import ConfigError
+from rehedge.config import parse_config
 from rehedge.compare import evaluate_policies, write_metrics
 from rehedge.report import build_report
 from rehedge.training import train, write_run

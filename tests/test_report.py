@@ -11,7 +11,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from rehedge.config import ConfigError, load_variants
+from rehedge.errors import ConfigError
+from rehedge.config import load_variants
 from rehedge.compare import evaluate_with_quotes, write_metrics
 from agents.baselines import DeltaHedge
 from rehedge.report import CAUTION, build_report, format_money, policy_map

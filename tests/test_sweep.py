@@ -13,7 +13,7 @@ from typer.testing import CliRunner
 
 import rehedge.runner
 from rehedge.cli import app
-from rehedge.config import ConfigError
+from rehedge.errors import ConfigError
 from rehedge.sweep import run_sweep, sweep_cells
 
 SWEEP = """

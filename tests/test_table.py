@@ -16,7 +16,8 @@ from typer.testing import CliRunner
 
 from agents.baselines import DeltaHedge, FixedBand, WhalleyWilmottBand
 from rehedge.cli import CAUTION, app
-from rehedge.config import ConfigError, parse_config
+from rehedge.errors import ConfigError
+from rehedge.config import parse_config
 from agents.grid_dp import GridDPAgent
 from agents.policy import Policy
 from rehedge.tables import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, TableGrid, export_table

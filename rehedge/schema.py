@@ -1,0 +1,716 @@
+"""The config schema: every table of a desk's TOML config as a typed model, with its defaults and
+the rules that join sections (cross-field rules live here, so loading a config checks everything a
+run would).
+
+Conventions: lengths are in days, rates are annual decimals (0.20 = 20%), money
+is in the config's currency, quantities are in contracts or shares. A rule is
+raised as ``_rule(text, *key_path)``; :mod:`rehedge.config` turns it into one
+line that starts with the TOML key path, e.g.
+``book.options[1].strike: must be > 0, got -5``.
+"""
+
+from __future__ import annotations
+
+import datetime
+import math
+import re
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
+from pydantic_core import PydanticCustomError
+
+# ---------------------------------------------------------------------------
+# Small validation helpers
+# ---------------------------------------------------------------------------
+
+_NAME_RE = re.compile(r"[A-Za-z0-9_.-]+")
+
+
+def _rule(rule: str, *path: str | int) -> PydanticCustomError:
+    """A validation error with a short rule; ``path`` is appended to the error location."""
+    return PydanticCustomError("config_rule", "{rule}", {"rule": rule, "path": tuple(path)})
+
+
+def _num(value: Any) -> Any:
+    """Integer-valued floats as ints, for bounds and converted values (0.0 -> 0)."""
+    if isinstance(value, float) and value.is_integer():
+        return int(value)
+    return value
+
+
+def _show(value: Any) -> str:
+    """Render an offending value briefly, in TOML terms where it matters."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, dict):
+        return "a table"
+    if isinstance(value, list) and len(repr(value)) > 60:
+        return f"an array of {len(value)} items"
+    text = repr(value)
+    if len(text) > 60:
+        text = text[:57] + "..."
+    return text
+
+
+def _check_name(value: str) -> str:
+    if not _NAME_RE.fullmatch(value) or set(value) == {"."}:
+        raise _rule(
+            "must use only letters, digits, '_', '.', '-' (it names run folders), "
+            f"got {_show(value)}"
+        )
+    return value
+
+
+def _check_nonzero(value: float) -> float:
+    if value == 0:
+        raise _rule(f"must be non-zero (+ long, - short), got {_show(_num(value))}")
+    return value
+
+
+def _check_open_unit(value: float) -> float:
+    if not 0 < value < 1:
+        raise _rule(f"must be in (0, 1), got {_show(_num(value))}")
+    return value
+
+
+def _check_closed_unit(value: float) -> float:
+    if not 0 <= value <= 1:
+        raise _rule(f"must be in [0, 1], got {_show(_num(value))}")
+    return value
+
+
+def _inf_means_no_limit(value: Any) -> Any:
+    if isinstance(value, float) and value == math.inf:
+        return None
+    return value
+
+
+def _tunable(strictly_positive: bool):
+    """Validator for 'a number (> 0 or >= 0) or the string "tune"'."""
+    bound = "> 0" if strictly_positive else ">= 0"
+
+    def check(value: Any) -> Any:
+        if value == "tune" and isinstance(value, str):
+            return value
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise _rule(f"must be a number {bound} or 'tune', got {_show(value)}")
+        if not math.isfinite(value):
+            raise _rule(f"must be a finite number {bound} or 'tune', got {_show(value)}")
+        if value < 0 or (strictly_positive and value == 0):
+            raise _rule(f"must be {bound} or 'tune', got {_show(value)}")
+        return float(value)
+
+    return BeforeValidator(check)
+
+
+PolicyName = Annotated[str, AfterValidator(_check_name)]
+
+
+class _Spec(BaseModel):
+    """Base for every config table: unknown keys are errors, types are strict
+    (``true`` is not a number, ``30.0`` is not an integer), NaN/inf are rejected."""
+
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False)
+
+
+# ---------------------------------------------------------------------------
+# Market, book, pricing, schedule
+# ---------------------------------------------------------------------------
+
+
+class GBMMarket(_Spec):
+    """Geometric Brownian motion for the underlying."""
+
+    model: Literal["gbm"] = Field(description="Price model of the underlying.")
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world drift of the underlying, annual decimal.")
+    volatility: float = Field(gt=0, description="Real-world volatility of the underlying, annual decimal.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+    def pricing_volatility(self, horizon_years: float) -> float:
+        """Default mark volatility (pricing.volatility when not given): the model's volatility."""
+        return self.volatility
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"GBM: spot {self.spot:g}, drift {_pct(self.drift)}, volatility {_pct(self.volatility)}, "
+                f"rate {_pct(self.rate)}, dividend yield {_pct(self.dividend_yield)} (annual)")
+
+
+def _pct(value: float) -> str:
+    return f"{100 * value:g}%"
+
+
+class HestonMarket(_Spec):
+    """Heston stochastic volatility for the underlying (simulated with Andersen's QE scheme)."""
+
+    model: Literal["heston"] = Field(description="Price model of the underlying.")
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world expected return of the underlying, annual decimal.")
+    initial_variance: float = Field(ge=0, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
+    mean_reversion: float = Field(ge=0, description="Mean-reversion speed kappa of the variance, per year.")
+    long_run_variance: float = Field(ge=0, description="Long-run variance theta, annual decimal^2.")
+    vol_of_vol: float = Field(ge=0, description="Volatility xi of the variance, per sqrt(year).")
+    correlation: float = Field(ge=-1, le=1, description="Correlation rho of price and variance shocks, in [-1, 1].")
+    variance_observed: bool = Field(
+        False, description="Whether the hedger observes the current variance (appended to its observation).")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+    def pricing_volatility(self, horizon_years: float) -> float:
+        """Default mark volatility: the root of the expected mean variance over the horizon,
+        theta + (v0 - theta) (1 - exp(-kappa T)) / (kappa T) (the variance-swap level of the model)."""
+        decay = self.mean_reversion * horizon_years
+        weight = -math.expm1(-decay) / decay if decay > 0 else 1.0
+        return math.sqrt(self.long_run_variance + (self.initial_variance - self.long_run_variance) * weight)
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"Heston (QE scheme): spot {self.spot:g}, drift {_pct(self.drift)}, initial variance "
+                f"{self.initial_variance:g}, mean reversion {self.mean_reversion:g} per year, long-run variance "
+                f"{self.long_run_variance:g}, vol of vol {self.vol_of_vol:g}, correlation {self.correlation:g}, "
+                f"variance {'observed' if self.variance_observed else 'not observed'}, rate {_pct(self.rate)}, "
+                f"dividend yield {_pct(self.dividend_yield)} (annual)")
+
+
+class MertonMarket(_Spec):
+    """Merton jump diffusion for the underlying: GBM plus lognormal jumps at Poisson times."""
+
+    model: Literal["merton"] = Field(description="Price model of the underlying.")
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world expected return, jumps included, annual decimal.")
+    volatility: float = Field(gt=0, description="Volatility of the diffusion part, annual decimal.")
+    jump_intensity: float = Field(ge=0, description="Expected number of jumps per year.")
+    jump_mean: float = Field(description="Mean of the log jump size (-0.05: a typical jump of about -5%).")
+    jump_std: float = Field(ge=0, description="Standard deviation of the log jump size.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+    def pricing_volatility(self, horizon_years: float) -> float:
+        """Default mark volatility: the total volatility of log returns, diffusion and jumps,
+        sqrt(volatility^2 + jump_intensity (jump_mean^2 + jump_std^2))."""
+        return math.sqrt(self.volatility**2 + self.jump_intensity * (self.jump_mean**2 + self.jump_std**2))
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"Merton jump diffusion: spot {self.spot:g}, drift {_pct(self.drift)}, diffusion volatility "
+                f"{_pct(self.volatility)}, {self.jump_intensity:g} jumps a year of log size mean "
+                f"{self.jump_mean:g}, std {self.jump_std:g}, rate {_pct(self.rate)}, dividend yield "
+                f"{_pct(self.dividend_yield)} (annual)")
+
+
+def _to_date(value: Any) -> Any:
+    """A TOML date, or an ISO date string (as config.json writes it), as a datetime.date."""
+    if isinstance(value, datetime.datetime):
+        return value.date()
+    if isinstance(value, str):
+        try:
+            return datetime.date.fromisoformat(value)
+        except ValueError:
+            raise _rule(f"must be a date like 2024-01-31, got {_show(value)}") from None
+    return value
+
+
+class HistoricalMarket(_Spec):
+    """Daily closes from a CSV (one row per trading day): training paths from the early part,
+    held-out paths from the rolling windows of the later part (see hedge_env.history)."""
+
+    model: Literal["historical"] = Field(description="Price model of the underlying: paths from a price history.")
+    csv: str = Field(description="CSV file of dates and closes; a relative path is relative to the config file.")
+    date_column: str = Field("date", description="Column of the trading dates.")
+    close_column: str = Field("close", description="Column of the closes, currency per share.")
+    date_format: str | None = Field(None, description="strftime format of the dates; default ISO 8601 (2024-01-31).")
+    implied_volatility_column: str | None = Field(
+        None, description="Column of the implied volatility per date, if any.")
+    implied_volatility_unit: Literal["decimal", "percent"] = Field(
+        "decimal", description="Unit of that column: 'decimal' (0.2 = 20%) or 'percent' (20).")
+    marks: Literal["implied", "realised", "configured"] | None = Field(
+        None, description="Mark and premium volatility: 'implied' (the column, per path and date), 'realised' "
+                          "(of the training period) or 'configured' (pricing.volatility); default 'implied' "
+                          "with an implied-volatility column, else 'realised'.")
+    spot: float = Field(gt=0, description="Spot every path is rescaled to start at, currency per share.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+    split_date: Annotated[datetime.date | None, BeforeValidator(_to_date)] = Field(
+        None, description="First date of the held-out part (training: the dates before it).")
+    split_fraction: Annotated[float | None, AfterValidator(lambda v: v if v is None else _check_open_unit(v))] = Field(
+        None, description="Share of the rows in the training part, if no split_date; default 0.7.")
+    gap_days: int | None = Field(None, ge=0, description="Trading days (rows) skipped between the training and "
+                                                         "the held-out part; default one horizon.")
+    training: Literal["windows", "bootstrap"] = Field(
+        "windows", description="Training paths: rolling windows of the training part, or its stationary "
+                               "block bootstrap (data.train_paths paths).")
+    stride_days: int = Field(1, ge=1, description="Trading days between the starts of training windows.")
+    heldout_stride_days: int | None = Field(
+        None, ge=1, description="Trading days between the starts of held-out windows; default one horizon "
+                                "(windows that do not overlap, so confidence intervals over paths hold).")
+    bootstrap_mean_block_days: float = Field(
+        10.0, ge=1, description="Mean block length of the stationary bootstrap, trading days.")
+
+    @field_validator("csv")
+    @classmethod
+    def _relative_to_config(cls, value: str, info: ValidationInfo) -> str:
+        base = (info.context or {}).get("base_dir")
+        if not value:
+            raise _rule("must name a CSV file")
+        if base is not None and not Path(value).is_absolute():
+            return str((Path(base) / value).resolve())
+        return value
+
+    @model_validator(mode="after")
+    def _resolve_history(self) -> HistoricalMarket:
+        if self.split_date is not None and self.split_fraction is not None:
+            raise _rule("give split_date or split_fraction, not both", "split_fraction")
+        if self.split_date is None and self.split_fraction is None:
+            self.split_fraction = 0.7
+        if self.marks is None:
+            self.marks = "implied" if self.implied_volatility_column else "realised"
+        if self.marks == "implied" and not self.implied_volatility_column:
+            raise _rule("'implied' needs market.implied_volatility_column", "marks")
+        return self
+
+    def pricing_volatility(self, horizon_years: float) -> None:
+        """None: the mark volatility of a history is known only from its data (the implied column or the
+        realised volatility of the training part, see rehedge.build), or given as pricing.volatility."""
+        return None
+
+    def describe(self) -> str:
+        """One line for reports."""
+        return (f"Historical: closes of {self.csv} (one row per trading day), every path rescaled to start at "
+                f"spot {self.spot:g}; training paths: {self.training}; rate {_pct(self.rate)}, "
+                f"dividend yield {_pct(self.dividend_yield)} (annual)")
+
+
+# One member per model, discriminated on `model`.
+MarketSpec = Annotated[Union[GBMMarket, HestonMarket, MertonMarket, HistoricalMarket], Field(discriminator="model")]
+
+
+class OptionSpec(_Spec):
+    """One European option position in the book."""
+
+    kind: Literal["call", "put"] = Field(description="Option type: 'call' or 'put'.")
+    strike: float = Field(gt=0, description="Strike price, currency per share.")
+    expiry_days: float = Field(gt=0, description="Time to expiry from the start, days.")
+    quantity: Annotated[float, AfterValidator(_check_nonzero)] = Field(
+        description="Contracts held: positive long, negative short."
+    )
+    multiplier: float = Field(1.0, gt=0, description="Shares per contract.")
+
+
+class BookSpec(_Spec):
+    """The option book to hedge."""
+
+    options: list[OptionSpec] = Field(description="Option positions, one [[book.options]] table each.")
+
+    @field_validator("options")
+    @classmethod
+    def _not_empty(cls, options: list[OptionSpec]) -> list[OptionSpec]:
+        if not options:
+            raise _rule("must hold at least one option")
+        return options
+
+
+class PricingSpec(_Spec):
+    """How the book is marked and its Greeks computed (Black-Scholes)."""
+
+    volatility: float | None = Field(
+        None,
+        gt=0,
+        description="Mark and Greeks volatility, annual decimal; defaults to the market model's "
+                    "(market.volatility for gbm, the expected mean variance's root for heston, the total "
+                    "volatility for merton).",
+    )
+    days_per_year: float = Field(365.0, gt=0, description="Days per year for converting days to years.")
+
+
+class ScheduleSpec(_Spec):
+    """When the hedge is rebalanced and how it ends."""
+
+    step_days: float = Field(1.0, gt=0, description="Rehedge interval, days.")
+    steps: int = Field(ge=1, description="Number of rehedges; the horizon is steps * step_days days.")
+    settlement: Literal["liquidate", "physical"] = Field(
+        "liquidate",
+        description=(
+            "At the horizon: 'liquidate' unwinds the hedge at cost; 'physical' settles options "
+            "expiring at the horizon in shares and trades only the residual."
+        ),
+    )
+
+    @property
+    def horizon_days(self) -> float:
+        """Hedging horizon, days."""
+        return self.steps * self.step_days
+
+
+class FrictionsSpec(_Spec):
+    """Trading costs, market impact and financing."""
+
+    cost_rate: float = Field(ge=0, description="Proportional cost, fraction of traded notional (half-spread + fees).")
+    fixed_cost: float = Field(0.0, ge=0, description="Fixed cost per trade, currency.")
+    impact_coefficient: float = Field(
+        0.0, ge=0, description="Temporary impact eta: cost eta * S * |trade|^(1+beta) / adv^beta, currency."
+    )
+    impact_exponent: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
+        0.5, description="Impact exponent beta in [0, 1]: 1 linear impact, 0.5 square-root law."
+    )
+    permanent_impact: float = Field(
+        0.0, ge=0, description="Permanent impact gamma: later prices scale by exp(gamma * trade / adv)."
+    )
+    adv_shares: float = Field(1_000_000.0, gt=0, description="Average daily volume of the underlying, shares.")
+    borrow_fee: float = Field(0.0, ge=0, description="Fee on the value of a short stock holding, annual decimal.")
+    position_limit_shares: Annotated[float | None, BeforeValidator(_inf_means_no_limit)] = Field(
+        None, gt=0, description="Hedge targets are clipped to +/- this many shares; absent or inf = no limit."
+    )
+
+
+class ObjectiveSpec(_Spec):
+    """Risk appetite: the reward and the risk measures reported."""
+
+    risk_aversion: float = Field(
+        ge=0, description="kappa per currency unit: reward r = dW - kappa/2 * dW^2 per step."
+    )
+    var_levels: list[Annotated[float, AfterValidator(_check_open_unit)]] = Field(
+        default_factory=lambda: [0.95, 0.99], description="Confidence levels for VaR/CVaR, each in (0, 1)."
+    )
+    entropic_risk_aversion: float | None = Field(
+        None,
+        gt=0,
+        description=(
+            "Entropic risk aversion per currency unit; defaults to risk_aversion, "
+            "None (skipped) when that is 0."
+        ),
+    )
+
+    @field_validator("var_levels")
+    @classmethod
+    def _distinct_levels(cls, levels: list[float]) -> list[float]:
+        for i, level in enumerate(levels):
+            if level in levels[:i]:
+                raise _rule(f"duplicate level {_show(level)}", i)
+        return levels
+
+    @model_validator(mode="after")
+    def _resolve_entropic(self) -> ObjectiveSpec:
+        if self.entropic_risk_aversion is None and self.risk_aversion > 0:
+            self.entropic_risk_aversion = self.risk_aversion
+        return self
+
+
+class DataSpec(_Spec):
+    """Simulated paths for training and held-out testing."""
+
+    train_paths: int = Field(20_000, gt=0, description="Number of training paths.")
+    heldout_paths: int = Field(50_000, gt=0, description="Number of held-out test paths.")
+    train_seed: int | None = Field(None, ge=0, description="Seed for training paths; defaults to 2 * seed + 1.")
+    heldout_seed: int | None = Field(
+        None, ge=0, description="Seed for held-out paths; defaults to 2 * seed + 2, always != train_seed."
+    )
+    chunk_paths: int = Field(16_384, gt=0, description="Paths simulated per chunk (bounds memory).")
+
+
+# ---------------------------------------------------------------------------
+# Policies: baselines and learned agents
+# ---------------------------------------------------------------------------
+
+
+class _NamedPolicy(_Spec):
+    """A policy with a ``kind`` and a ``name`` that defaults to the kind."""
+
+    @model_validator(mode="before")
+    @classmethod
+    def _default_name(cls, data: Any) -> Any:
+        if isinstance(data, dict) and "name" not in data and "kind" in data:
+            data = {**data, "name": data["kind"]}
+        return data
+
+
+class NoHedgeBaseline(_NamedPolicy):
+    """Never trades the underlying."""
+
+    kind: Literal["no_hedge"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+
+
+class DeltaBaseline(_NamedPolicy):
+    """Rebalances to the Black-Scholes delta every step."""
+
+    kind: Literal["delta"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    volatility: float | None = Field(
+        None, gt=0, description="Volatility for its deltas, annual decimal; defaults to pricing.volatility."
+    )
+
+
+class LelandBaseline(_NamedPolicy):
+    """Delta hedge with Leland's cost-adjusted volatility."""
+
+    kind: Literal["leland"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    cost_rate: float | None = Field(
+        None, ge=0, description="Proportional cost in Leland's adjustment; defaults to frictions.cost_rate."
+    )
+    volatility: float | None = Field(
+        None, gt=0, description="Base volatility, annual decimal; defaults to pricing.volatility."
+    )
+
+
+class WhalleyWilmottBaseline(_NamedPolicy):
+    """No-trade band around delta with the Whalley-Wilmott asymptotic width."""
+
+    kind: Literal["whalley_wilmott"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    risk_aversion: Annotated[float | Literal["tune"], _tunable(strictly_positive=True)] = Field(
+        "tune", description="Risk aversion in the band formula, per currency unit, or 'tune' to fit it."
+    )
+
+
+class FixedBandBaseline(_NamedPolicy):
+    """No-trade band of fixed half-width around delta."""
+
+    kind: Literal["fixed_band"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    half_width: Annotated[float | Literal["tune"], _tunable(strictly_positive=False)] = Field(
+        "tune", description="Band half-width in shares per share of book notional, or 'tune' to fit it."
+    )
+
+
+BaselineSpec = Annotated[
+    Union[NoHedgeBaseline, DeltaBaseline, LelandBaseline, WhalleyWilmottBaseline, FixedBandBaseline],
+    Field(discriminator="kind"),
+]
+
+
+def default_baselines() -> list:
+    """The baselines used when the config has no [[baselines]]."""
+    return [
+        NoHedgeBaseline(kind="no_hedge"),
+        DeltaBaseline(kind="delta"),
+        LelandBaseline(kind="leland"),
+        WhalleyWilmottBaseline(kind="whalley_wilmott", risk_aversion="tune"),
+        FixedBandBaseline(kind="fixed_band", half_width="tune"),
+    ]
+
+
+class ExplorationSpec(_Spec):
+    """Behaviour policy that collects the training transitions."""
+
+    no_trade: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
+        0.3, description="Probability of keeping the holding.")
+    delta: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
+        0.2, description="Probability of trading to the Black-Scholes hedge.")
+    spread: float = Field(1.1, ge=0, description="Std of other targets around the hedge or the holding, "
+                                                 "in hedge moves (typical one-step change of the hedge).")
+    actions_per_state: int = Field(8, ge=2, description="Targets replayed on each state's market move.")
+
+    @model_validator(mode="after")
+    def _probabilities(self):
+        if self.no_trade + self.delta > 1:
+            raise _rule(f"no_trade + delta must be <= 1, got {self.no_trade + self.delta:g}", "no_trade")
+        return self
+
+
+BasisTerms = Annotated[list[str], Field(min_length=1)]
+
+
+class _LearnedAgent(_NamedPolicy):
+    exploration: ExplorationSpec = Field(default_factory=ExplorationSpec,
+                                         description="Behaviour policy of the training transitions.")
+    band_widths: list[Annotated[float, Field(gt=0)]] | None = Field(
+        None, description="Band edges around the hedge among the candidate targets, in hedge moves; "
+                          "default the agent's own.")
+    drift: float | None = Field(None, description="Annual drift for the control variate; default estimated "
+                                                  "from the training paths.")
+
+
+REGRESSORS = ("hist_gradient_boosting", "extra_trees", "random_forest", "gradient_boosting", "ridge",
+              "k_neighbors", "mlp")
+
+
+class FittedQAgentSpec(_LearnedAgent):
+    """Fitted Q iteration over a scikit-learn regressor, one regression per decision time."""
+
+    kind: Literal["fitted_q"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    regressor: Literal[REGRESSORS] = Field(  # type: ignore[valid-type]
+        "hist_gradient_boosting", description="scikit-learn regressor by name.")
+    regressor_params: dict[str, Any] = Field(default_factory=dict,
+                                             description="Keyword arguments of the regressor.")
+    basis: BasisTerms | None = Field(None, description="Feature columns (agents.features); default the tree set.")
+    max_rows_per_step: int = Field(2_000_000, ge=1000, description="Regression rows kept per decision time "
+                                   "(every r-th training state beyond it): bounds memory at any path count.")
+
+
+class LinearAgentSpec(_LearnedAgent):
+    """Linear-basis agent: ridge least squares on basis functions, backward in time."""
+
+    kind: Literal["linear"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    basis: BasisTerms | None = Field(None, description="Basis terms (agents.features); default the polynomial set.")
+    ridge: float = Field(1e-6, ge=0, description="Ridge penalty relative to each column's sum of squares.")
+    smoothing: float = Field(0.0, ge=0, description="Shrinkage toward the next decision time's coefficients.")
+
+
+class GridDPAgentSpec(_NamedPolicy):
+    """Model-based dynamic programming on a (time, log spot, holding) grid: the reference optimum (GBM)."""
+
+    kind: Literal["grid_dp"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    spot_points: int = Field(151, ge=11, description="Log-spot grid points.")
+    holding_points: int = Field(201, ge=11, description="Holding grid points (also the candidate targets).")
+    quadrature_nodes: int = Field(16, ge=4, description="Gauss-Hermite nodes of the next-spot expectation.")
+
+
+AgentSpec = Annotated[
+    Union[FittedQAgentSpec, LinearAgentSpec, GridDPAgentSpec],
+    Field(discriminator="kind"),
+]
+
+
+class ReportSpec(_Spec):
+    """Held-out report settings."""
+
+    reference_policy: PolicyName = Field("delta", description="Policy the others are compared against.")
+    bootstrap_samples: int = Field(2000, ge=100, description="Bootstrap resamples for confidence intervals.")
+
+
+class ExportSpec(_Spec):
+    """Policy export settings."""
+
+    policy: PolicyName | None = Field(None, description="Name of the policy to export; None = none chosen.")
+    moneyness_points: int = Field(101, ge=2, description="Hedge table nodes in moneyness (spot / reference spot).")
+    holding_points: int = Field(41, ge=2, description="Hedge table nodes in the current holding, shares.")
+    moneyness_width: float = Field(
+        4.0, gt=0, description="Half-width of the table's moneyness domain, in standard deviations of log spot "
+                               "over the horizon (pricing volatility).")
+    currency: str | None = Field(None, description="Currency label written into the hedge table's sidecar.")
+
+
+# ---------------------------------------------------------------------------
+# The whole config
+# ---------------------------------------------------------------------------
+
+
+class Config(_Spec):
+    """A desk's scenario: book, market, frictions, risk appetite, data and policies."""
+
+    name: PolicyName = Field(description="Scenario name, used in run folder names.")
+    seed: int = Field(ge=0, description="Master seed; data seeds derive from it unless given.")
+    description: str = Field("", description="Free text about the scenario.")
+    market: MarketSpec = Field(description="Model of the underlying.")
+    book: BookSpec = Field(description="Options to hedge.")
+    pricing: PricingSpec = Field(default_factory=PricingSpec, description="Marking and Greeks.")
+    schedule: ScheduleSpec = Field(description="Rehedge interval, horizon and settlement.")
+    frictions: FrictionsSpec = Field(description="Trading costs, impact and financing.")
+    objective: ObjectiveSpec = Field(description="Reward and risk measures.")
+    data: DataSpec = Field(default_factory=DataSpec, description="Training and held-out paths.")
+    baselines: list[BaselineSpec] = Field(
+        default_factory=default_baselines, description="Rule-based policies to compare."
+    )
+    agents: list[AgentSpec] = Field(default_factory=list, description="Learned policies to train.")
+    report: ReportSpec = Field(default_factory=ReportSpec, description="Report settings.")
+    export: ExportSpec = Field(default_factory=ExportSpec, description="Export settings.")
+    sweep: dict[str, Annotated[list[Any], Field(min_length=1)]] = Field(
+        default_factory=dict,
+        description="Dotted keys to vary, each with its list of values, e.g. "
+                    "{ \"frictions.cost_rate\" = [0.001, 0.005] }: one variant per combination.")
+
+    @property
+    def horizon_days(self) -> float:
+        """Hedging horizon, days (schedule.steps * schedule.step_days)."""
+        return self.schedule.horizon_days
+
+    @property
+    def notional_shares(self) -> float:
+        """Book size in shares: sum of |quantity| * multiplier."""
+        return float(sum(abs(o.quantity) * o.multiplier for o in self.book.options))
+
+    @property
+    def policy_names(self) -> list[str]:
+        """Names of all baselines then all agents, in config order."""
+        return [p.name for p in self.baselines] + [a.name for a in self.agents]
+
+    @model_validator(mode="after")
+    def _resolve(self) -> Config:
+        # Cross-section defaults, so the validated config is fully resolved.
+        if isinstance(self.market, HistoricalMarket):
+            self._resolve_historical()
+        if self.pricing.volatility is None:
+            volatility = self.market.pricing_volatility(self.horizon_days / self.pricing.days_per_year)
+            if volatility is not None and not volatility > 0:
+                raise _rule("must be given: the market model's default volatility is 0", "pricing", "volatility")
+            self.pricing.volatility = volatility
+        for baseline in self.baselines:
+            if isinstance(baseline, (DeltaBaseline, LelandBaseline)) and baseline.volatility is None:
+                baseline.volatility = self.pricing.volatility
+            if isinstance(baseline, LelandBaseline) and baseline.cost_rate is None:
+                baseline.cost_rate = self.frictions.cost_rate
+
+        data = self.data
+        given_train, given_heldout = data.train_seed, data.heldout_seed
+        if given_train is not None and given_heldout is not None and given_train == given_heldout:
+            raise _rule(
+                f"must differ from data.train_seed, got {given_heldout}", "data", "heldout_seed"
+            )
+        train = given_train if given_train is not None else 2 * self.seed + 1
+        heldout = given_heldout if given_heldout is not None else 2 * self.seed + 2
+        if train == heldout:  # exactly one was defaulted and collided: move the defaulted one
+            if given_train is None:
+                train = heldout + 1
+            else:
+                heldout = train + 1
+        data.train_seed, data.heldout_seed = train, heldout
+
+        last_expiry = max(option.expiry_days for option in self.book.options)
+        if self.horizon_days > last_expiry * (1 + 1e-9):
+            raise _rule(
+                f"the horizon (steps x step_days = {self.horizon_days:g} days) must not run past the last "
+                f"option expiry ({last_expiry:g} days)", "schedule", "steps"
+            )
+
+        seen: set[str] = set()
+        for section, policies in (("baselines", self.baselines), ("agents", self.agents)):
+            for i, policy in enumerate(policies):
+                if policy.name in seen:
+                    raise _rule(f"duplicate policy name {policy.name!r}", section, i, "name")
+                seen.add(policy.name)
+
+        names = self.policy_names
+        known = ", ".join(repr(n) for n in names) if names else "none (no baselines or agents)"
+        reference = self.report.reference_policy
+        if reference not in seen:
+            default = "" if "reference_policy" in self.report.model_fields_set else " (the default)"
+            raise _rule(
+                f"unknown policy {reference!r}{default}; policies: {known}", "report", "reference_policy"
+            )
+        if self.export.policy is not None and self.export.policy not in seen:
+            raise _rule(f"unknown policy {self.export.policy!r}; policies: {known}", "export", "policy")
+        return self
+
+    def _resolve_historical(self) -> None:
+        """Rules and defaults of a historical market that involve other sections."""
+        market, step_days = self.market, self.schedule.step_days
+        if not float(step_days).is_integer():
+            raise _rule("must be a whole number of trading days (CSV rows) with market.model = 'historical', "
+                        f"got {_show(_num(step_days))}", "schedule", "step_days")
+        self.schedule.step_days = float(step_days)
+        horizon_rows = self.schedule.steps * int(step_days)
+        if market.marks == "configured" and self.pricing.volatility is None:
+            raise _rule("required with market.marks = 'configured'", "pricing", "volatility")
+        if market.marks != "configured" and self.pricing.volatility is not None:
+            raise _rule(f"set only with market.marks = 'configured' (marks are {market.marks!r})",
+                        "pricing", "volatility")
+        if market.gap_days is None:
+            market.gap_days = horizon_rows
+        if market.heldout_stride_days is None:
+            market.heldout_stride_days = horizon_rows
