@@ -144,12 +144,3 @@ class FixedBand:
         return _to_band(decoded.holding_shares / notional, center / notional, self.half_width)
 
     act_with_delta = act
-
-
-BASELINES = {
-    "no_hedge": NoHedge,
-    "delta": DeltaHedge,
-    "leland": LelandDelta,
-    "whalley_wilmott": WhalleyWilmottBand,
-    "fixed_band": FixedBand,
-}

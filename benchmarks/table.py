@@ -25,7 +25,8 @@ from pathlib import Path
 import numpy as np
 
 from rehedge.config import load_variants
-from rehedge.tables import HedgeTable, export_policy
+from rehedge.tables.reader import HedgeTable
+from rehedge.tables.export import export_policy
 from rehedge.training import train
 from hedge_env.rollout import rollout_many
 

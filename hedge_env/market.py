@@ -399,6 +399,10 @@ class MertonMarket(SimulatedMarket):
         return MarketPaths(spot)
 
 
+# The simulated models by the name a config gives them.
+MARKET_MODELS = {"gbm": GBMMarket, "heston": HestonMarket, "merton": MertonMarket}
+
+
 @dataclass(frozen=True)
 class GivenPaths(PathGenerator):
     """Paths supplied as arrays (historical windows, or a test's own paths).

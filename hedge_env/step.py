@@ -259,25 +259,34 @@ def hedge_step(
 
 def observe(problem: HedgingProblem, state: HedgeState, factor_values=(), out: np.ndarray | None = None,
             dtype=np.float64) -> np.ndarray:
+    """Observation rows of ``state`` at its decision time (see :func:`observation_rows`)."""
+    return observation_rows(problem, state.spot, problem.years_to_horizon(state.k), state.holding, factor_values,
+                            out, dtype)
+
+
+def observation_rows(problem: HedgingProblem, spot, years_left, holding_shares, factor_values=(),
+                     out: np.ndarray | None = None, dtype=np.float64) -> np.ndarray:
     """Observation rows ``[spot / reference spot, years to horizon, holding / notional, *factors]``.
 
-    ``factor_values`` are the observable factors at t_k (arrays like
-    ``state.spot``, or floats). ``out`` is an optional (n, 3 + n_factors)
-    buffer to fill; the result is 2-D for arrays and 1-D for floats.
+    The one place observations are built (the envs, rollouts, datasets, the
+    report and the hedge-table exporter all come here). ``spot``, ``years_left``
+    (years to the horizon), ``holding_shares`` and each of ``factor_values`` (the
+    observable factors) are floats or arrays that broadcast to one entry per row.
+    ``out`` is an optional (n, 3 + n_factors) buffer to fill; the result is 2-D
+    for arrays and 1-D when every input is a float.
     """
-    years_left = problem.years_to_horizon(state.k)
-    if isinstance(state.spot, float):
+    if isinstance(spot, float) and np.ndim(holding_shares) == 0 and np.ndim(years_left) == 0:
         return np.array(
-            (state.spot / problem.reference_spot, years_left, state.holding / problem.notional_shares,
-             *factor_values),
+            (spot / problem.reference_spot, years_left, holding_shares / problem.notional_shares, *factor_values),
             dtype=dtype,
         )
     if out is None:
-        out = np.empty((np.shape(state.spot)[0], 3 + len(factor_values)), dtype=dtype)
+        rows = np.broadcast_shapes(np.shape(spot), np.shape(years_left), np.shape(holding_shares))[0]
+        out = np.empty((rows, 3 + len(factor_values)), dtype=dtype)
     # Scaled straight into the columns: no temporaries to copy over.
-    np.divide(state.spot, problem.reference_spot, out=out[..., 0])
+    np.divide(spot, problem.reference_spot, out=out[..., 0])
     out[..., 1] = years_left
-    np.divide(state.holding, problem.notional_shares, out=out[..., 2])
+    np.divide(holding_shares, problem.notional_shares, out=out[..., 2])
     for j, column in enumerate(factor_values, start=3):
         out[..., j] = column
     return out

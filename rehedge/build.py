@@ -2,14 +2,15 @@
 
 from __future__ import annotations
 
+import inspect
 import math
 from dataclasses import replace
 
 import numpy as np
 
-from agents import baselines
 from rehedge.errors import ConfigError
 from rehedge.schema import Config
+from agents.registry import AGENTS, BASELINES
 from agents.tuning import tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
@@ -21,7 +22,7 @@ from hedge_env.history import (
     load_history,
     split_history,
 )
-from hedge_env.market import GBMMarket, HestonMarket, MertonMarket, PathGenerator, PathSet
+from hedge_env.market import MARKET_MODELS, PathGenerator, PathSet
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 
@@ -77,20 +78,21 @@ def build_problem(config: Config) -> HedgingProblem:
 
 
 def build_market(config: Config) -> PathGenerator:
-    """The path generator of ``config.market``."""
-    market = config.market
-    if market.model == "gbm":
-        return GBMMarket(spot=market.spot, drift=market.drift, volatility=market.volatility)
-    if market.model == "heston":
-        return HestonMarket(spot=market.spot, drift=market.drift, initial_variance=market.initial_variance,
-                            mean_reversion=market.mean_reversion, long_run_variance=market.long_run_variance,
-                            vol_of_vol=market.vol_of_vol, correlation=market.correlation,
-                            variance_observed=market.variance_observed)
-    if market.model == "merton":
-        return MertonMarket(spot=market.spot, drift=market.drift, volatility=market.volatility,
-                            jump_intensity=market.jump_intensity, jump_mean=market.jump_mean,
-                            jump_std=market.jump_std)
-    raise ValueError(f"market.model: no generator for {market.model!r}")  # the schema admits no other
+    """The path generator of a simulated ``config.market`` (its class from ``MARKET_MODELS``)."""
+    return construct(MARKET_MODELS[config.market.model], config.market)
+
+
+def construct(cls, spec, **given):
+    """``cls(...)`` with ``given`` arguments, then every other parameter of ``cls`` that ``spec`` has as a
+    field (a list becomes a tuple; None, and "tune" for a parameter still to be tuned, keep the class
+    default). Adding a kind is its class and its schema: the names match."""
+    arguments = dict(given)
+    for name in inspect.signature(cls).parameters:
+        value = getattr(spec, name, None)
+        if name in arguments or value is None or (isinstance(value, str) and value == "tune"):
+            continue
+        arguments[name] = tuple(value) if isinstance(value, list) else value
+    return cls(**arguments)
 
 
 def build_markets(config: Config) -> tuple[PathGenerator, PathGenerator]:
@@ -149,20 +151,14 @@ def describe_markets(train: PathGenerator, heldout: PathGenerator) -> dict:
 
 
 def build_baseline(spec, problem: HedgingProblem):
-    """One baseline policy from its config entry; parameters set to "tune" are left at a placeholder
-    and must go through :func:`agents.tuning.tune_baselines` before use."""
-    kind, name = spec.kind, spec.name
-    if kind == "no_hedge":
-        return baselines.NoHedge(problem, name=name)
-    if kind == "delta":
-        return baselines.DeltaHedge(problem, volatility=spec.volatility, name=name)
-    if kind == "leland":
-        return baselines.LelandDelta(problem, cost_rate=spec.cost_rate, volatility=spec.volatility, name=name)
-    if kind == "whalley_wilmott":
-        return baselines.WhalleyWilmottBand(problem, risk_aversion=_fixed_or(spec.risk_aversion, 1.0), name=name)
-    if kind == "fixed_band":
-        return baselines.FixedBand(problem, half_width=_fixed_or(spec.half_width, 0.0), name=name)
-    raise ValueError(f"baselines: unknown kind {kind!r}")
+    """One baseline policy from its config entry; parameters set to "tune" keep the class default until
+    :func:`prepare_baselines` tunes them."""
+    return construct(BASELINES[spec.kind], spec, problem=problem)
+
+
+def build_agent(spec, problem: HedgingProblem, market: PathGenerator):
+    """An unfitted agent from its config entry, with what it takes from the market (``model_inputs``)."""
+    return construct(AGENTS[spec.kind], spec, problem=problem, **spec.model_inputs(market))
 
 
 def tuned_parameters(config: Config) -> dict[str, str]:
@@ -173,10 +169,6 @@ def tuned_parameters(config: Config) -> dict[str, str]:
             if getattr(spec, parameter, None) == "tune":
                 wanted[spec.name] = parameter
     return wanted
-
-
-def _fixed_or(value, placeholder: float) -> float:
-    return placeholder if value == "tune" else float(value)
 
 
 def training_path_set(config: Config, market: PathGenerator, problem: HedgingProblem) -> PathSet:

@@ -9,21 +9,32 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import typer
+from typer.core import TyperGroup
 from rich import box
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
+from rehedge.errors import UserError
+from rehedge.formats import CAUTION, format_count, format_money, metric_columns
+
 # Library modules are imported inside the commands that use them: `rehedge advise` answers from a
 # hedge table with numpy alone, without starting scikit-learn, pandas, matplotlib or gymnasium.
+# Errors a user can cause (rehedge.errors.UserError) reach main(), which prints them in one line.
 
-CAUTION = (
-    "Decision support, not advice: a policy is only as good as the market model and data it was "
-    "trained on; check positions, limits and fills against the desk's own risk systems and the "
-    "rules that apply where you trade."
-)
+class _Commands(TyperGroup):
+    """The command group: an error a user can cause (rehedge.errors.UserError: config, run folder,
+    hedge table, CSV) ends any command in one line on stderr and exit code 2; anything else is a bug."""
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except UserError as error:
+            fail(str(error))
+
 
 app = typer.Typer(
+    cls=_Commands,
     name="rehedge",
     help="Train, compare and export option-hedging policies under trading costs, impact and financing.",
     no_args_is_help=True,
@@ -44,26 +55,6 @@ def fail(message: str, code: int = 2) -> None:
     raise typer.Exit(code)
 
 
-def _load(path: Path):
-    from rehedge.errors import ConfigError
-    from rehedge.config import load_config
-
-    try:
-        return load_config(path)
-    except ConfigError as error:
-        fail(str(error))
-
-
-def _load_variants(path: Path):
-    from rehedge.errors import ConfigError
-    from rehedge.config import load_variants
-
-    try:
-        return load_variants(path)
-    except ConfigError as error:
-        fail(str(error))
-
-
 @contextmanager
 def _progress(quiet: bool):
     """A rich progress bar on stderr (or nothing with --quiet); yields ``start(label, total) -> advance``."""
@@ -82,45 +73,24 @@ def _progress(quiet: bool):
         yield start
 
 
-def _money(value: float) -> str:
-    from rehedge.report import format_money
-
-    return format_money(value)
-
-
-def _count(value: float) -> str:
-    return f"{value:.2f}"
-
-
-_COLUMNS = [
-    ("objective", "objective", _money),
-    ("mean_pnl", "mean P&L", _money),
-    ("std_pnl", "std P&L", _money),
-    ("cvar_95", "CVaR 95", _money),
-    ("cvar_99", "CVaR 99", _money),
-    ("mean_cost", "cost", _money),
-    ("mean_impact", "impact", _money),
-    ("turnover", "turnover", _count),
-    ("trades", "trades", _count),
-]
-
-
 def _print_table(title: str, records: list[dict]) -> None:
     table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
     table.add_column("policy", no_wrap=True)
-    present = [c for c in _COLUMNS if c[0] in records[0]]
-    for _, header, _ in present:
-        table.add_column(header, justify="right", no_wrap=True)
+    columns = [c for c in metric_columns(records[0]) if c.on_terminal]
+    for column in columns:
+        table.add_column(column.short, justify="right", no_wrap=True)
     for record in records:
         label = record["name"] if record["kind"] in ("", record["name"]) else f"{record['name']} ({record['kind']})"
-        table.add_row(label, *(fmt(record[key]) for key, _, fmt in present))
+        table.add_row(label, *(column.format(record[column.key]) for column in columns))
     console.print(table)
 
 
 @app.command("check-config")
 def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -> None:
     """Validate a config file; print what it describes, or the first error in one line."""
-    variants = _load_variants(config)
+    from rehedge.config import load_variants
+
+    variants = load_variants(config)
     cfg = variants[0]
     console.print(
         f"{config}: ok: {len(cfg.book.options)} option(s), {cfg.notional_shares:g} notional shares, "
@@ -130,13 +100,9 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
         highlight=False,
     )
     if cfg.market.model == "historical":
-        from rehedge.errors import ConfigError
         from rehedge.build import build_markets, describe_markets
 
-        try:
-            markets = describe_markets(*build_markets(cfg))
-        except ConfigError as error:
-            fail(str(error))
+        markets = describe_markets(*build_markets(cfg))
         for role, facts in markets.items():
             count = f"{facts['windows']} windows" if "windows" in facts else f"{cfg.data.train_paths} bootstrap paths"
             console.print(f"  {role}: {facts['first_date']} .. {facts['last_date']} ({facts['rows']} trading days, "
@@ -207,14 +173,11 @@ def evaluate(
 def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=()):
     """Policies of a config or run folder (and hedge tables) on its held-out paths, with CIs and quotes."""
     from rehedge.compare import evaluate_with_quotes
-    from rehedge.tables import TableError, tables_as_policies
+    from rehedge.tables.reader import tables_as_policies
 
     with _progress(quiet) as start:
         cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
-        try:
-            loaded, table_kinds = tables_as_policies(tables, problem)
-        except TableError as error:
-            fail(str(error))
+        loaded, table_kinds = tables_as_policies(tables, problem)
         policies, kinds = {**policies, **loaded}, {**kinds, **table_kinds}
         n_paths, seed = _heldout(cfg, market, paths, seed)
         evaluation = evaluate_with_quotes(
@@ -230,14 +193,11 @@ def _reference(cfg, policies) -> str | None:
 
 
 def _train(cfg, config: Path, runs_dir: Path, quiet: bool):
-    from rehedge.errors import ConfigError
-    from rehedge.training import train, write_run
+    from rehedge.training import train
+    from rehedge.run_folder import write_run
 
-    try:
-        with _progress(quiet) as start:
-            training = train(cfg, start)
-    except ConfigError as error:
-        fail(str(error))
+    with _progress(quiet) as start:
+        training = train(cfg, start)
     return training, write_run(training, config.read_text(), runs_dir)
 
 
@@ -249,7 +209,9 @@ def train_command(
 ) -> None:
     """Tune the baselines and fit every agent of CONFIG on its training paths; write a run folder
     (one per variant when the config has a sweep)."""
-    for cfg in _load_variants(config):
+    from rehedge.config import load_variants
+
+    for cfg in load_variants(config):
         training, run_dir = _train(cfg, config, runs_dir, quiet)
         for line in training.log:
             console.print(line, highlight=False)
@@ -266,29 +228,20 @@ def run(
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
-    from rehedge.errors import ConfigError
-    from rehedge.report import build_report
-    from rehedge.runner import run_config
-    from rehedge.tables import TableError
+    from rehedge.config import load_variants
+    from rehedge.runner import report_variants, run_config
 
     run_dirs = []
-    variants = _load_variants(config)
+    variants = load_variants(config)
     sweep = len(variants) > 1
     for cfg in variants:
-        try:
-            with _progress(quiet) as start:
-                outcome = run_config(cfg, config.read_text(), runs_dir, paths, start, report=not sweep)
-        except (ConfigError, TableError) as error:
-            fail(str(error))
+        with _progress(quiet) as start:
+            outcome = run_config(cfg, config.read_text(), runs_dir, paths, start, report=not sweep)
         run_dirs.append(outcome.run_dir)
         _records_out(cfg, outcome.heldout_paths, outcome.heldout_seed, outcome.evaluation,
                      outcome.training.tuning, as_json, outcome.run_dir)
     if sweep:
-        # A sweep: every variant's report also draws the cost-risk frontier across the variants.
-        for run_dir in run_dirs:
-            siblings = [d for d in run_dirs if d != run_dir]
-            (run_dir / "sweep.json").write_text(json.dumps({"siblings": [d.name for d in siblings]}, indent=2))
-            build_report(run_dir, siblings)
+        report_variants(run_dirs)
 
 
 @app.command()
@@ -301,7 +254,6 @@ def quote(
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
-    from rehedge.report import format_count
 
     cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or ())
 
@@ -319,9 +271,9 @@ def quote(
     for header in ("policy", "bid", "ask", "spread bid/ask (vol pts)", "CVaR-95 bid", "CVaR-95 ask"):
         table.add_column(header, justify="left" if header == "policy" else "right", no_wrap=True)
     for r in rows:
-        table.add_row(r["name"], _money(r["quote_bid"]), _money(r["quote_ask"]),
+        table.add_row(r["name"], format_money(r["quote_bid"]), format_money(r["quote_ask"]),
                       f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}",
-                      _money(r["cvar_bid"]), _money(r["cvar_ask"]))
+                      format_money(r["cvar_bid"]), format_money(r["cvar_ask"]))
     console.print(table)
     console.print("bid and ask: mean-variance indifference premiums (mark -/+ the risk-adjusted cost of hedging); "
                   "the bid mirrors each policy for the opposite book.", highlight=False)
@@ -331,30 +283,17 @@ def quote(
 @app.command()
 def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run`.")) -> None:
     """Rebuild report.html of a run folder from its saved results."""
-    from rehedge.errors import ConfigError
     from rehedge.report import build_report
+    from rehedge.report.scored import recorded_siblings
 
-    if not (run_dir / "metrics.json").is_file():
-        fail(f"{run_dir}: no metrics.json (a folder written by `rehedge run` has one)")
-    sweep = run_dir / "sweep.json"
-    siblings = []
-    if sweep.is_file():
-        siblings = [run_dir.parent / name for name in json.loads(sweep.read_text())["siblings"]]
-        siblings = [d for d in siblings if (d / "metrics.json").is_file()]
-    try:
-        path = build_report(run_dir, siblings)
-    except ConfigError as error:
-        fail(str(error))
+    path = build_report(run_dir, recorded_siblings(run_dir))
     console.print(f"report: {path} ({path.stat().st_size / 1e6:.2f} MB)", highlight=False)
 
 
 def _export(cfg, problem, policies, name: str, folder: Path) -> Path:
-    from rehedge.tables import TableError, export_policy
+    from rehedge.tables.export import export_policy
 
-    try:
-        folder = export_policy(cfg, problem, policies, name, folder)
-    except TableError as error:
-        fail(str(error))
+    folder = export_policy(cfg, problem, policies, name, folder)
     size = sum(f.stat().st_size for f in folder.iterdir())
     errors.print(f"hedge table of {name}: {folder} ({size / 1e6:.2f} MB)", markup=False, highlight=False)
     return folder
@@ -367,13 +306,9 @@ def export(
     out: Path = typer.Option(None, "--out", help="Table folder to write (default: RUN_DIR/tables/POLICY)."),
 ) -> None:
     """Write a policy of a run as a hedge table: targets.csv, band.csv and table.json (see README)."""
-    from rehedge.errors import ConfigError
-    from rehedge.training import load_run
+    from rehedge.run_folder import load_run
 
-    try:
-        run = load_run(run_dir)
-    except ConfigError as error:
-        fail(str(error))
+    run = load_run(run_dir)
     policies = {**run.baselines, **run.agents}
     name = policy or run.config.export.policy
     if name is None:
@@ -391,12 +326,9 @@ def advise(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of text."),
 ) -> None:
     """One decision from a hedge table: target holding, trade, no-trade band, clamping, cautions."""
-    from rehedge.tables import HedgeTable, TableError, advice
+    from rehedge.tables.reader import HedgeTable, advice
 
-    try:
-        record = advice(HedgeTable.load(table), spot, days_left, holding)
-    except TableError as error:
-        fail(str(error))
+    record = advice(HedgeTable.load(table), spot, days_left, holding)
     if as_json:
         sys.stdout.write(json.dumps({**record, "caution": CAUTION}, indent=2) + "\n")
         return
@@ -435,7 +367,6 @@ def sweep_command(
 ) -> None:
     """Run every cell of CONFIG's sweep (each a run folder of its own) locally or on a dask cluster;
     write the combined table (sweep.csv, sweep.json) and the cost-risk frontier (frontier.png)."""
-    from rehedge.errors import ConfigError
     from rehedge.sweep import run_sweep, sweep_cells
 
     try:
@@ -444,8 +375,6 @@ def sweep_command(
             result = run_sweep(config, runs_dir=runs_dir, sweep_dir=sweep_dir, workers=workers,
                                scheduler=scheduler, resume=resume, heldout_paths=paths,
                                progress=start(f"sweep: {len(cells)} cells", len(cells)))
-    except ConfigError as error:
-        fail(str(error))
     except ConnectionError as error:
         fail(f"--scheduler {scheduler}: {error}")
     if as_json:
@@ -466,7 +395,7 @@ def _print_sweep(result) -> None:
                    "cost"]:
         table.add_column(header, justify="left" if header in ("status", "policy") else "right", no_wrap=True)
     for row in result.table.to_dict("records"):
-        numbers = [_money(row[k]) if row.get(k) == row.get(k) and row.get(k) is not None else "-"
+        numbers = [format_money(row[k]) if row.get(k) == row.get(k) and row.get(k) is not None else "-"
                    for k in ("objective", "std_pnl", "cvar_95", "mean_cost")]
         table.add_row(*(f"{row[k]:g}" if isinstance(row[k], float) else str(row[k]) for k in keys),
                       row["status"], row["policy"] or row["error"][:60], *numbers)
@@ -489,30 +418,25 @@ def bench_command(quick: bool = typer.Option(False, "--quick", help="Small sizes
 
 def _policies_of(source: Path, start):
     """Config or run folder -> (config, problem, held-out market, policies, tuning, kinds)."""
-    from rehedge.errors import ConfigError
     from rehedge.build import build_markets, build_problem, prepare_baselines
-    from rehedge.training import load_run
+    from rehedge.config import load_config
+    from rehedge.run_folder import load_run
 
     if source.is_dir():
-        try:
-            run = load_run(source)
-        except ConfigError as error:
-            fail(str(error))
+        run = load_run(source)
         kinds = {s.name: s.kind for s in [*run.config.baselines, *run.config.agents]}
         return run.config, run.problem, run.heldout_market, {**run.baselines, **run.agents}, {}, kinds
-    cfg = _load(source)
-    try:
-        problem = build_problem(cfg)
-        market, heldout_market = build_markets(cfg)
-    except ConfigError as error:
-        fail(str(error))
+    cfg = load_config(source)
+    problem = build_problem(cfg)
+    market, heldout_market = build_markets(cfg)
     start("tuning baselines on training paths", 1)
     policies, tuning = prepare_baselines(cfg, problem, market)
     return cfg, problem, heldout_market, policies, tuning, {spec.name: spec.kind for spec in cfg.baselines}
 
 
 def main() -> None:
-    """Console entry point: usage errors end in one line on stderr and exit code 2, like config errors."""
+    """Console entry point: usage errors and errors a user can cause (config, run folder, hedge table,
+    CSV) end in one line on stderr and exit code 2."""
     try:
         code = app(standalone_mode=False)
     except typer.Abort:

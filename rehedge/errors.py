@@ -8,7 +8,12 @@ def one_line(text: str) -> str:
     return " ".join(str(text).split())
 
 
-class ConfigError(ValueError):
+class UserError(ValueError):
+    """A problem a user can cause and mend (config, run folder, hedge table, CSV): the command line
+    prints ``str(error)``, one line, and exits non-zero; anything else is a bug and raises."""
+
+
+class ConfigError(UserError):
     """A config problem, described in one line.
 
     ``str(error)`` is the message, e.g. ``book.options[1].strike: must be > 0, got -5``.
@@ -32,7 +37,7 @@ class ConfigError(ValueError):
         self.problems = problems or (message,)
 
 
-class RunFolderError(ValueError):
+class RunFolderError(UserError):
     """A run folder that cannot be read back (missing, unfinished or changed since written), in one line."""
 
     def __init__(self, message: str) -> None:

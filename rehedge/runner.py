@@ -9,6 +9,7 @@ killed outright leaves only a ``.partial`` folder, which nothing reads as a run.
 
 from __future__ import annotations
 
+import json
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -16,7 +17,8 @@ from pathlib import Path
 from rehedge.schema import Config
 from rehedge.compare import Evaluation, evaluate_with_quotes, write_metrics
 from rehedge.build import path_count
-from rehedge.training import ProgressStart, Training, no_progress, finish_run, train, write_run
+from rehedge.training import ProgressStart, Training, no_progress, train
+from rehedge.run_folder import finish_run, write_run
 
 
 @dataclass
@@ -51,7 +53,7 @@ def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_p
         More entries for ``manifest.json``.
     """
     from rehedge.report import build_report
-    from rehedge.tables import export_policy
+    from rehedge.tables.export import export_policy
 
     training = train(config, start)
     staging = write_run(training, config_text, Path(runs_dir), extra, finish=False)
@@ -77,3 +79,14 @@ def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_p
         shutil.rmtree(staging, ignore_errors=True)
         raise
     return RunOutcome(training, evaluation, run_dir, n_paths, seed)
+
+
+def report_variants(run_dirs: list[Path]) -> None:
+    """Reports of a config's sweep variants run one after another (``rehedge run``): each also draws
+    the cost-risk frontier across the others, whose folders its ``sweep.json`` names."""
+    from rehedge.report import build_report
+
+    for run_dir in run_dirs:
+        siblings = [d for d in run_dirs if d != run_dir]
+        (run_dir / "sweep.json").write_text(json.dumps({"siblings": [d.name for d in siblings]}, indent=2))
+        build_report(run_dir, siblings)

@@ -12,6 +12,7 @@ line that starts with the TOML key path, e.g.
 from __future__ import annotations
 
 import datetime
+import difflib
 import math
 import re
 from pathlib import Path
@@ -28,6 +29,8 @@ from pydantic import (
     model_validator,
 )
 from pydantic_core import PydanticCustomError
+
+from agents.registry import REGRESSORS
 
 # ---------------------------------------------------------------------------
 # Small validation helpers
@@ -524,6 +527,10 @@ BasisTerms = Annotated[list[str], Field(min_length=1)]
 
 
 class _LearnedAgent(_NamedPolicy):
+    def model_inputs(self, market) -> dict:
+        """Constructor arguments that the agent takes from outside its own fields: the factors it observes."""
+        return {"factor_names": market.observed_factors}
+
     exploration: ExplorationSpec = Field(default_factory=ExplorationSpec,
                                          description="Behaviour policy of the training transitions.")
     band_widths: list[Annotated[float, Field(gt=0)]] | None = Field(
@@ -533,22 +540,33 @@ class _LearnedAgent(_NamedPolicy):
                                                   "from the training paths.")
 
 
-REGRESSORS = ("hist_gradient_boosting", "extra_trees", "random_forest", "gradient_boosting", "ridge",
-              "k_neighbors", "mlp")
-
-
 class FittedQAgentSpec(_LearnedAgent):
     """Fitted Q iteration over a scikit-learn regressor, one regression per decision time."""
 
     kind: Literal["fitted_q"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    regressor: Literal[REGRESSORS] = Field(  # type: ignore[valid-type]
+    regressor: Literal[tuple(REGRESSORS)] = Field(  # type: ignore[valid-type]
         "hist_gradient_boosting", description="scikit-learn regressor by name.")
     regressor_params: dict[str, Any] = Field(default_factory=dict,
                                              description="Keyword arguments of the regressor.")
     basis: BasisTerms | None = Field(None, description="Feature columns (agents.features); default the tree set.")
     max_rows_per_step: int = Field(2_000_000, ge=1000, description="Regression rows kept per decision time "
                                    "(every r-th training state beyond it): bounds memory at any path count.")
+
+    @model_validator(mode="after")
+    def _known_regressor_parameters(self) -> FittedQAgentSpec:
+        known = REGRESSORS[self.regressor]().get_params()
+        unknown = sorted(set(self.regressor_params) - set(known))
+        if unknown:
+            close = difflib.get_close_matches(unknown[0], list(known), n=1, cutoff=0.6)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            raise _rule(f"unknown parameter {unknown[0]!r} for {self.regressor}{hint}", "regressor_params")
+        return self
+
+    def model_inputs(self, market) -> dict:
+        """Constructor arguments that the agent takes from outside its own fields: the regressor."""
+        regressor = REGRESSORS[self.regressor]().set_params(**self.regressor_params)
+        return {**super().model_inputs(market), "regressor": regressor}
 
 
 class LinearAgentSpec(_LearnedAgent):
@@ -569,6 +587,10 @@ class GridDPAgentSpec(_NamedPolicy):
     spot_points: int = Field(151, ge=11, description="Log-spot grid points.")
     holding_points: int = Field(201, ge=11, description="Holding grid points (also the candidate targets).")
     quadrature_nodes: int = Field(16, ge=4, description="Gauss-Hermite nodes of the next-spot expectation.")
+
+    def model_inputs(self, market) -> dict:
+        """Constructor arguments that the agent takes from the market it solves: drift and volatility."""
+        return {"drift": market.drift, "volatility": market.volatility}
 
 
 AgentSpec = Annotated[
@@ -677,6 +699,11 @@ class Config(_Spec):
                 f"the horizon (steps x step_days = {self.horizon_days:g} days) must not run past the last "
                 f"option expiry ({last_expiry:g} days)", "schedule", "steps"
             )
+
+        for i, agent in enumerate(self.agents):
+            if agent.kind == "grid_dp" and self.market.model != "gbm":
+                raise _rule(f"grid_dp solves a one-factor GBM market only, got market.model = "
+                            f"{self.market.model!r}", "agents", i, "kind")
 
         seen: set[str] = set()
         for section, policies in (("baselines", self.baselines), ("agents", self.agents)):

@@ -11,7 +11,7 @@ import joblib
 import numpy as np
 import pytest
 
-from rehedge.training import load_run
+from rehedge.run_folder import load_run
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -145,12 +145,15 @@ def test_bad_config_is_one_line_with_key_and_rule_and_exit_code_2(tmp_path):
     assert not (tmp_path / "runs").exists()  # nothing half-written
 
 
-def test_unknown_regressor_parameter_names_the_key(tmp_path):
+@pytest.mark.parametrize("command", ["check-config", "train"])
+def test_unknown_regressor_parameter_names_the_key_when_the_config_is_loaded(tmp_path, command):
     bad = tmp_path / "bad.toml"
     bad.write_text(SMALL.replace("regressor_params = { max_iter = 10 }", "regressor_params = { max_iters = 10 }"))
-    done = rehedge("train", str(bad), "--runs-dir", str(tmp_path / "runs"), "--quiet")
+    extra = ["--runs-dir", str(tmp_path / "runs"), "--quiet"] if command == "train" else []
+    done = rehedge(command, str(bad), *extra)
     assert done.returncode == 2
-    assert done.stderr.strip() == "error: agents[1].regressor_params: unknown parameter 'max_iters' for hist_gradient_boosting"
+    assert done.stderr.strip() == ("error: agents[1].regressor_params: unknown parameter 'max_iters' for "
+                                   "hist_gradient_boosting (did you mean 'max_iter'?)")
 
 
 @pytest.mark.parametrize("args, message", [

@@ -26,7 +26,8 @@ from rehedge.errors import ConfigError
 from rehedge.config import parse_config
 from rehedge.compare import evaluate_policies, write_metrics
 from rehedge.report import build_report
-from rehedge.training import train, write_run
+from rehedge.training import train
+from rehedge.run_folder import write_run
 from hedge_env import pricing
 from hedge_env.market import BLOCK_PATHS, HestonMarket, MertonMarket
 

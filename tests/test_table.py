@@ -20,7 +20,8 @@ from rehedge.errors import ConfigError
 from rehedge.config import parse_config
 from agents.grid_dp import GridDPAgent
 from agents.policy import Policy
-from rehedge.tables import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, TableGrid, export_table
+from rehedge.tables.reader import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError
+from rehedge.tables.export import TableGrid, export_table
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
 from hedge_env.market import GBMMarket

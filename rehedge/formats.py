@@ -1,0 +1,97 @@
+"""What every screen of rehedge shares: the caution, number formats and the metric columns.
+
+The command line, the report and the hedge-table advice print from here, so a
+number looks the same and a column means the same wherever it appears. Imports
+the standard library only (``rehedge advise`` starts without numpy's friends).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Callable
+from dataclasses import dataclass
+
+CAUTION = (
+    "Decision support, not advice: a policy is only as good as the market model and data it was "
+    "trained on; check positions, limits and fills against the desk's own risk systems and the "
+    "rules that apply where you trade."
+)
+
+
+def format_money(value: float | None) -> str:
+    """Currency amounts: whole units from 100, cents from 1, three significant digits below 1."""
+    if value is None or not math.isfinite(value):
+        return "n/a"
+    if abs(value) >= 100:
+        return f"{value:,.0f}"
+    if abs(value) < 1:
+        return f"{value:,.3g}"
+    return f"{value:,.2f}"
+
+
+def format_signed_money(value: float | None) -> str:
+    """A difference in currency, always signed."""
+    text = format_money(value)
+    return text if text.startswith("-") or text == "n/a" else "+" + text
+
+
+def format_count(value: float | None) -> str:
+    """Turnover, trades per path and volatility points: two decimals."""
+    if value is None or not math.isfinite(value):
+        return "n/a"
+    return f"{value:,.2f}"
+
+
+@dataclass(frozen=True)
+class MetricColumn:
+    """One metric of a policy's held-out record: its key, a short header (terminal), a long header
+    with units (report), its format, and whether the terminal's ranked table shows it."""
+
+    key: str
+    short: str
+    long: str
+    format: Callable[[float | None], str]
+    on_terminal: bool = True
+
+
+def metric_columns(record: dict) -> list[MetricColumn]:
+    """The metric columns of a held-out record, in display order, for the keys it has: objective,
+    P&L, every VaR and CVaR level (ascending, VaR first), entropic risk, costs, turnover, trades and,
+    when quoted, the bid and ask."""
+    levels = sorted({k.split("_")[1] for k in record if re.fullmatch(r"c?var_[0-9.]+", k)}, key=float)
+    columns = [
+        MetricColumn("objective", "objective", "objective (currency)", format_money),
+        MetricColumn("mean_pnl", "mean P&L", "mean P&L (currency)", format_money),
+        MetricColumn("std_pnl", "std P&L", "std P&L (currency)", format_money),
+    ]
+    for level in levels:
+        columns.append(MetricColumn(f"var_{level}", f"VaR {level}", f"VaR {level} (currency, loss)",
+                                    format_money, on_terminal=False))
+        columns.append(MetricColumn(f"cvar_{level}", f"CVaR {level}", f"CVaR {level} (currency, loss)",
+                                    format_money))
+    columns += [
+        MetricColumn("entropic_risk", "entropic", "entropic risk (currency, loss)", format_money,
+                     on_terminal=False),
+        MetricColumn("mean_cost", "cost", "mean cost (currency per path)", format_money),
+        MetricColumn("mean_impact", "impact", "mean impact (currency per path)", format_money),
+        MetricColumn("turnover", "turnover", "turnover (shares traded per share of notional)", format_count),
+        MetricColumn("trades", "trades", "trades (per path)", format_count),
+        MetricColumn("quote_bid", "bid", "bid (currency)", format_money, on_terminal=False),
+        MetricColumn("quote_ask", "ask", "ask (currency)", format_money, on_terminal=False),
+        MetricColumn("spread_bid_vol_points", "bid spread", "bid spread (vol points)", format_count,
+                     on_terminal=False),
+        MetricColumn("spread_ask_vol_points", "ask spread", "ask spread (vol points)", format_count,
+                     on_terminal=False),
+    ]
+    return [column for column in columns if column.key in record]
+
+
+def format_days(value: float) -> str:
+    """A number of days, with its unit."""
+    return f"{value:g} day" if value == 1 else f"{value:g} days"
+
+
+def format_percent(value: float) -> str:
+    """A rate as a percentage: 0.2 -> 20%."""
+    return f"{100 * value:g}%"

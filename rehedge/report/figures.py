@@ -1,0 +1,409 @@
+"""The report's figures, each a PNG (a data URI for the page, or a file for a sweep's frontier):
+the held-out P&L distribution, each agent's policy map with its no-trade region, the cost over
+time, one held-out path, and the cost-risk frontier across a sweep's runs."""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+import math
+from collections.abc import Sequence
+from pathlib import Path
+
+import matplotlib
+import matplotlib.lines
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+from agents.band import NO_TRADE_TOLERANCE, no_trade_band
+from agents.registry import AGENTS
+from hedge_env.market import GivenPaths
+from hedge_env.rollout import rollout
+from hedge_env.step import observation_rows
+from rehedge.formats import format_days
+from rehedge.report.scored import Scored, load_scored, read_sibling
+
+# Our own palette: muted, distinguishable in print and for the common colour-vision deficiencies.
+PALETTE = ("#1f4e79", "#d1603d", "#3a8f5c", "#8c5fb0", "#e0a526", "#4fa3c7", "#8a5a44", "#7a7a1e",
+           "#5c6b73", "#2a9d8f", "#a3a13b", "#34344a")
+
+STYLE = {
+    "figure.facecolor": "white",
+    "axes.facecolor": "#f5f3ee",
+    "axes.edgecolor": "#a9a397",
+    "axes.linewidth": 0.8,
+    "axes.grid": True,
+    "grid.color": "white",
+    "grid.linewidth": 1.0,
+    "axes.axisbelow": True,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.titlesize": 9.5,
+    "axes.titleweight": "bold",
+    "axes.titlelocation": "left",
+    "axes.labelsize": 8.5,
+    "axes.labelcolor": "#33312c",
+    "xtick.labelsize": 7.5,
+    "ytick.labelsize": 7.5,
+    "xtick.color": "#55524b",
+    "ytick.color": "#55524b",
+    "legend.fontsize": 7.5,
+    "legend.frameon": False,
+    "lines.linewidth": 1.5,
+    "font.family": "DejaVu Sans",
+}
+
+_DPI = 100
+# A policy whose central P&L range is this many times the median range is left off the P&L and
+# frontier plots (typically no_hedge): it would flatten every other policy into one spike.
+_OUTLIER_SPREAD = 2.0
+# Central quantiles the P&L plot shows.
+_CLIP = (0.005, 0.995)
+_MAP_SPOTS = 61
+# Gaps from the hedge searched for an agent's no-trade region, per share of notional.
+_MAP_OFFSET_RANGE = (1e-5, 0.5)
+_MAP_OFFSETS_PER_SIDE = 150
+
+
+
+def colors_of(names: Sequence[str]) -> dict[str, str]:
+    return {name: PALETTE[i % len(PALETTE)] for i, name in enumerate(names)}
+
+
+
+
+def _figure(width: float, height: float, rows: int = 1, cols: int = 1, **subplot_options):
+    figure = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
+    FigureCanvasAgg(figure)
+    axes = figure.subplots(rows, cols, squeeze=False, **subplot_options)
+    return figure, axes
+
+
+def _legend_below(figure: Figure, handles, labels, columns: int = 8) -> None:
+    """The figure's legend under its axes, so it never hides a line."""
+    figure.legend(handles, labels, loc="outside lower center", ncols=min(columns, len(handles)))
+
+
+def _png_data_uri(figure: Figure) -> str:
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=_DPI, metadata={"Software": None})
+    return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _central_range(pnl: np.ndarray) -> tuple[float, float]:
+    low, high = np.quantile(pnl, _CLIP)
+    return float(low), float(high)
+
+
+def _wide_policies(pnl: dict[str, np.ndarray]) -> list[str]:
+    """Policies whose central P&L range dwarfs the median policy's (left off the shared plots)."""
+    spans = {}
+    for name, values in pnl.items():
+        low, high = _central_range(values)
+        spans[name] = high - low
+    typical = float(np.median(list(spans.values())))
+    if typical <= 0:
+        return []
+    wide = [name for name, span in spans.items() if span > _OUTLIER_SPREAD * typical]
+    return wide if len(wide) < len(pnl) else []
+
+
+def pnl_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
+    names = [r["name"] for r in scored.records]
+    pnl = {name: scored.heldout[f"pnl__{name}"] for name in names}
+    skipped = _wide_policies(pnl)
+    shown = [name for name in names if name not in skipped]
+    pooled = np.concatenate([pnl[name] for name in shown])
+    low, high = _central_range(pooled)
+    bins = np.linspace(low, high, 90)
+    figure, axes = _figure(9.0, 3.6)
+    ax = axes[0, 0]
+    for name in shown:
+        values = pnl[name]
+        inside = values[(values >= low) & (values <= high)]
+        # Density of all paths, so a policy with more paths outside the range sits lower.
+        counts, edges = np.histogram(inside, bins=bins)
+        density = counts / (values.size * np.diff(edges))
+        ax.stairs(density, edges, color=colors[name], linewidth=1.5, label=name)
+    ax.axvline(0.0, color="#33312c", linewidth=0.7, linestyle=":")
+    ax.set_xlim(low, high)
+    ax.set_xlabel("P&L per path over the horizon (currency)")
+    ax.set_ylabel("density (per currency unit)")
+    ax.set_title("Held-out P&L distribution")
+    _legend_below(figure, *ax.get_legend_handles_labels())
+    paths = pnl[names[0]].size
+    caption = (f"Step histograms of the P&L of {paths:,} held-out paths per policy, between the "
+               f"{100 * _CLIP[0]:g}% and {100 * _CLIP[1]:g}% quantiles of the policies shown (pooled).")
+    if skipped:
+        caption += (f" Not shown: {', '.join(skipped)} (its P&L spread is over {_OUTLIER_SPREAD:g} times the "
+                    "median policy's and would flatten the others; its numbers are in the table).")
+    return _png_data_uri(figure), caption
+
+
+def _ww_band(scored: Scored):
+    """The tuned Whalley-Wilmott baseline of the run, else any Whalley-Wilmott baseline, else None."""
+    run = scored.run
+    candidates = [spec.name for spec in run.config.baselines if spec.kind == "whalley_wilmott"]
+    tuned = [name for name in candidates if name in run.manifest.get("tuned", {})]
+    chosen = (tuned or candidates or [None])[0]
+    return None if chosen is None else (chosen, run.baselines[chosen])
+
+
+def _map_times(steps: int) -> list[int]:
+    """Early, middle and last decision times. Early is the second decision, not the first: at the
+    first every path has the starting spot and no holding, so an agent has seen no other state there."""
+    return sorted({min(1, steps - 1), steps // 2, steps - 1})
+
+
+def _holding_nodes() -> np.ndarray:
+    """Holdings around the hedge, per share of notional, that bracket an agent's no-trade edges:
+    geometric on each side, so a narrow region and a wide one are both bracketed closely."""
+    side = np.geomspace(_MAP_OFFSET_RANGE[0], _MAP_OFFSET_RANGE[1], _MAP_OFFSETS_PER_SIDE)
+    return np.concatenate([-side[::-1], [0.0], side])
+
+
+def policy_map(problem, agent, spot: np.ndarray, k: int, factors: Sequence[float] = ()) -> dict[str, np.ndarray]:
+    """An agent's decisions at decision time ``k`` over a spot grid, per share of notional.
+
+    Returns ``hedge`` (minus the book's Black-Scholes delta), ``target`` (the
+    agent's target when holding the hedge) and ``no_trade_low`` /
+    ``no_trade_high``: the agent's no-trade edges near the hedge (bracketed by
+    :func:`_holding_nodes`, placed by :func:`agents.band.no_trade_band`); NaN
+    where it has none.
+    """
+    notional = problem.notional_shares
+    t_days, years = problem.schedule.time_days(k), problem.years_to_horizon(k)
+    # A mark volatility the market supplies is the first observed factor (HedgingProblem).
+    volatility = float(factors[0]) if problem.mark_volatility_observed and len(factors) else None
+    hedge = -problem.book.value_and_delta(spot, t_days, problem.marks, volatility)[1] / notional
+
+    def targets_at(holding_per_notional: np.ndarray) -> np.ndarray:
+        shape = np.shape(holding_per_notional)
+        rows = observation_rows(problem, np.broadcast_to(spot.reshape(-1, *(1,) * (len(shape) - 1)), shape).ravel(),
+                                years, np.ravel(holding_per_notional) * notional, factors)
+        return np.asarray(agent.act(rows), dtype=float).reshape(shape)
+
+    holdings = hedge[:, None] + _holding_nodes()[None, :]
+    low, high = no_trade_band(targets_at, holdings, targets_at(holdings), NO_TRADE_TOLERANCE)
+    return {"hedge": hedge, "target": targets_at(hedge), "no_trade_low": low, "no_trade_high": high}
+
+
+def map_figures(scored: Scored, sample_factors: dict[str, np.ndarray]) -> list[tuple[str, str, str]]:
+    run, problem = scored.run, scored.run.problem
+    learned = [spec.name for spec in run.config.agents if spec.kind in AGENTS]
+    if not learned:
+        return []
+    notional = problem.notional_shares
+    volatility = problem.marks.volatility
+    path_volatility = getattr(run.market, "volatility", volatility)
+    band = _ww_band(scored)
+    times = _map_times(problem.schedule.steps)
+    out = []
+    for name in learned:
+        agent = run.agents[name]
+        figure, axes = _figure(10.5, 5.6, 2, len(times), sharex="col", sharey="row")
+        for column, k in enumerate(times):
+            # Spots where the paths are at this time (+-2.5 sd of log spot): off them an agent extrapolates.
+            spread = 2.5 * path_volatility * math.sqrt(problem.schedule.time_days(k) / problem.marks.days_per_year)
+            spot = problem.reference_spot * np.exp(np.linspace(-spread, spread, _MAP_SPOTS))
+            factors = [float(sample_factors[f][0, k]) for f in run.market.observed_factors]
+            decisions = policy_map(problem, agent, spot, k, factors)
+            t_days = problem.schedule.time_days(k)
+            hedge = decisions["hedge"]
+            mark_volatility = factors[0] if problem.mark_volatility_observed and factors else None
+            half_width = (None if band is None
+                          else band[1].half_width_shares(spot, t_days, mark_volatility) / notional)
+            # Top: holdings themselves; bottom: their gap from the hedge, where the bands are readable.
+            for ax, center in ((axes[0, column], hedge), (axes[1, column], 0.0 * hedge)):
+                shift = hedge - center
+                ax.fill_between(spot, decisions["no_trade_low"] - shift, decisions["no_trade_high"] - shift,
+                                color=PALETTE[5], alpha=0.3, linewidth=0, label=f"{name} no-trade region")
+                if half_width is not None:
+                    for sign in (-1.0, 1.0):
+                        ax.plot(spot, center + sign * half_width, color=PALETTE[1], linewidth=1.0, linestyle="--",
+                                label=f"{band[0]} band" if sign > 0 else None)
+                ax.plot(spot, center, color="#33312c", linewidth=1.0, linestyle=":", label="Black-Scholes hedge")
+                ax.plot(spot, decisions["target"] - shift, color=PALETTE[0], linewidth=1.8, label=f"{name} target")
+            days_left = problem.schedule.horizon_days - t_days
+            axes[0, column].set_title(f"day {t_days:g}, {format_days(days_left)} to horizon")
+            axes[1, column].set_xlabel("spot (currency per share)")
+        axes[0, 0].set_ylabel("holding (shares per share of notional)")
+        axes[1, 0].set_ylabel("holding - hedge (per share of notional)")
+        _legend_below(figure, *axes[0, 0].get_legend_handles_labels())
+        low, high = _MAP_OFFSET_RANGE
+        at = (f"{100 * volatility:g}% volatility" if not problem.mark_volatility_observed
+              else "the mark volatility of the first held-out path at each time")
+        caption = (f"{name}: target holding against spot when the current holding is the Black-Scholes "
+                   f"hedge (minus the book's delta at {at}, per share of the "
+                   f"{notional:,.0f}-share notional), over the spots within 2.5 standard deviations of "
+                   "log spot at each time (about 99% of paths); below, the same as gaps from the hedge. The shaded "
+                   f"region is where {name} does not trade (target equal to the holding within "
+                   f"{NO_TRADE_TOLERANCE:g} of notional): its edges are bracketed from {low:g} to {high:g} either "
+                   "side of the hedge and placed by bisection on the agent, as in the hedge tables.")
+        if band is not None:
+            caption += (f" Dashed: the {band[0]} no-trade band (risk aversion "
+                        f"{band[1].risk_aversion:.6g}"
+                        f"{', tuned on the training paths' if band[0] in run.manifest.get('tuned', {}) else ''}).")
+        out.append((name, _png_data_uri(figure), caption))
+    return out
+
+
+def cost_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
+    schedule = scored.run.problem.schedule
+    names = [r["name"] for r in scored.records]
+    days = schedule.step_days * np.arange(0, schedule.steps + 1)
+    figure, axes = _figure(9.0, 3.4)
+    ax = axes[0, 0]
+    for name in names:
+        cumulative = np.concatenate([[0.0], np.cumsum(scored.heldout[f"step_cost__{name}"])])
+        ax.plot(days, cumulative, color=colors[name], label=name, marker="o", markersize=2.5)
+    ax.set_xlabel("time (days from start)")
+    ax.set_ylabel("cumulative mean cost per path (currency)")
+    ax.set_title("Trading and impact cost over the horizon")
+    ax.set_xlim(0, schedule.horizon_days)
+    _legend_below(figure, *ax.get_legend_handles_labels())
+    caption = ("Mean over held-out paths of the proportional, fixed and impact costs paid up to the end of "
+               "each rehedge interval (the trade at its start included); the last point includes the unwind "
+               "at the horizon.")
+    return _png_data_uri(figure), caption
+
+
+def sample_path(scored: Scored):
+    run, problem = scored.run, scored.run.problem
+    steps = problem.schedule.steps
+    seed = scored.metrics.get("heldout_seed", run.config.data.heldout_seed)
+    paths = (run.heldout_market or run.market).generate(1, steps, problem.dt_years, seed)
+    return paths, seed
+
+
+def path_figure(scored: Scored, paths, seed: int, colors: dict[str, str]) -> tuple[str, str]:
+    run, problem = scored.run, scored.run.problem
+    schedule = problem.schedule
+    policies = {**run.baselines, **run.agents}
+    names = [r["name"] for r in scored.records if r["name"] in policies]
+    days = schedule.step_days * np.arange(0, schedule.steps + 1)
+    figure, axes = _figure(9.0, 3.6)
+    ax = axes[0, 0]
+    # The market's observed factors (e.g. a variance) go with the path into the observations.
+    source = GivenPaths(paths, observed_factors=run.market.observed_factors)
+    for name in names:
+        held = rollout(problem, policies[name], source, 1, keep_holdings=True, name=name).holdings[0]
+        # Holding over each rehedge interval; repeated at the horizon so the last interval shows.
+        ax.plot(days, np.append(held, held[-1]), color=colors[name], drawstyle="steps-post", label=name)
+    ax.set_xlabel("time (days from start)")
+    ax.set_ylabel("holding (shares)")
+    ax.set_xlim(0, schedule.horizon_days)
+    ax.set_title("One held-out path: holdings of every policy")
+    spot_axis = ax.twinx()
+    spot_axis.spines["right"].set_visible(True)
+    spot_axis.grid(False)
+    spot_axis.plot(days, paths.spot[0], color="#33312c", linewidth=1.0, linestyle="--", label="spot (right axis)")
+    spot_axis.set_ylabel("spot (currency per share)")
+    lines, labels = ax.get_legend_handles_labels()
+    more, more_labels = spot_axis.get_legend_handles_labels()
+    _legend_below(figure, lines + more, labels + more_labels)
+    caption = (f"The first path of the held-out stream (seed {seed}): the holding each policy keeps over "
+               "each rehedge interval (before the unwind at the horizon), and the spot (dashed, right axis).")
+    return _png_data_uri(figure), caption
+
+
+def _flatten(value, prefix: str = "") -> dict[str, object]:
+    if isinstance(value, dict):
+        out = {}
+        for key, item in value.items():
+            out.update(_flatten(item, f"{prefix}{key}."))
+        return out
+    return {prefix[:-1]: value}
+
+
+def _order_variants(variants: list[tuple[Path, dict, dict]],
+                    swept: Sequence[str] = ()) -> tuple[list[tuple[Path, dict, dict]], list[str]]:
+    """Runs in the order of the settings that differ between them (the ``swept`` dotted keys when
+    given), each with a short label such as ``cost_rate=0.001`` (the run's config name when
+    nothing but the name differs)."""
+    flats = [_flatten({k: v for k, v in config.items() if k not in ("name", "description", "sweep")})
+             for _, _, config in variants]
+    keys = list(swept) or sorted({k for flat in flats for k in flat})
+    differing = [k for k in keys if len({json.dumps(flat.get(k), sort_keys=True) for flat in flats}) > 1][:3]
+
+    def sort_key(index: int):
+        values = [flats[index].get(k) for k in differing]
+        return [(0, v, "") if isinstance(v, (int, float)) else (1, 0, json.dumps(v)) for v in values]
+
+    order = sorted(range(len(variants)), key=sort_key)
+    labels = [", ".join(f"{k.rsplit('.', 1)[-1]}={json.dumps(flats[i].get(k))}" for k in differing)
+              or variants[i][2].get("name", variants[i][0].name) for i in order]
+    return [variants[i] for i in order], labels
+
+
+_MARKERS = "osD^v<>ph*"
+
+
+def frontier_figure(scored: Scored, siblings: list[tuple[Path, dict, dict]],
+                     colors: dict[str, str]) -> tuple[str, str]:
+    figure, caption = _frontier_plot(scored, siblings, colors)
+    return _png_data_uri(figure), caption
+
+
+def write_frontier(run_dirs: Sequence[Path], target: Path, swept: Sequence[str] = ()) -> Path:
+    """The cost-risk frontier across scored run folders (the cells of a sweep, labelled by the
+    ``swept`` dotted keys) as a PNG file."""
+    scored = load_scored(Path(run_dirs[0]))
+    others = [read_sibling(path) for path in run_dirs[1:]]
+    config_order = [spec.name for spec in [*scored.run.config.baselines, *scored.run.config.agents]]
+    colors = colors_of([*config_order, *(r["name"] for r in scored.records if r["name"] not in config_order)])
+    with matplotlib.rc_context(STYLE):
+        figure, _ = _frontier_plot(scored, others, colors, swept)
+        figure.savefig(target, format="png", dpi=_DPI, metadata={"Software": None})
+    return Path(target)
+
+
+def _frontier_plot(scored: Scored, siblings: list[tuple[Path, dict, dict]], colors: dict[str, str],
+                   swept: Sequence[str] = ()):
+    here = (scored.run.path, scored.metrics, scored.run.config.model_dump(mode="json"))
+    variants, labels = _order_variants([here, *siblings], swept)
+    names = [r["name"] for r in scored.records]
+    skipped = _wide_policies({name: scored.heldout[f"pnl__{name}"] for name in names})
+    tail_key = "cvar_95" if "cvar_95" in scored.records[0] else next(
+        (k for k in scored.records[0] if k.startswith("cvar_")), "std_pnl")
+    risk_keys = (("std_pnl", "std of P&L per path (currency)"),
+                 (tail_key, f"CVaR {tail_key[5:]} of the loss (currency)"))
+    # Many runs (a sweep's cells) have long labels: fewer legend columns, a taller figure for its rows.
+    columns = 8 if len(variants) <= 4 else 3
+    legend_rows = -(-(len(names) + len(variants)) // columns)
+    figure, axes = _figure(10.5, 3.8 + (0.22 * legend_rows if columns < 8 else 0.0), 1, 2, sharey=True)
+    for ax, (key, label) in zip(axes[0], risk_keys):
+        for name in names:
+            if name in skipped:
+                continue
+            points = []
+            for index, (_, metrics, _) in enumerate(variants):
+                record = next((r for r in metrics["policies"] if r["name"] == name), None)
+                if record is not None and key in record:
+                    points.append((record[key], record["mean_cost"] + record["mean_impact"], index))
+            if not points:
+                continue
+            x, y, _ = zip(*points)
+            ax.plot(x, y, color=colors[name], linewidth=1.2, label=name)
+            for xi, yi, index in points:
+                ax.plot(xi, yi, linestyle="none", marker=_MARKERS[index % len(_MARKERS)], markersize=5,
+                        color=colors[name])
+        ax.set_xlabel(label)
+        ax.set_title(f"Cost against {'std of P&L' if key == 'std_pnl' else label.split(' of')[0]}")
+    axes[0, 0].set_ylabel("mean trading + impact cost per path (currency)")
+    handles, legend_labels = axes[0, 0].get_legend_handles_labels()
+    for index, label in enumerate(labels):
+        handles.append(matplotlib.lines.Line2D([], [], linestyle="none", marker=_MARKERS[index % len(_MARKERS)],
+                                               markersize=5, color="#5c6b73"))
+        legend_labels.append(label)
+    _legend_below(figure, handles, legend_labels, columns)
+    caption = ("Cost-risk frontier: mean trading + impact cost per path against the spread of P&L, one "
+               "marker per run of the sweep ("
+               + "; ".join(f"{label}: {path.name}" for (path, _, _), label in zip(variants, labels))
+               + "), the points of a policy joined in that order. Numbers from each run's metrics.json.")
+    if skipped:
+        caption += (f" Not shown: {', '.join(skipped)} (its P&L spread is over {_OUTLIER_SPREAD:g} times the "
+                    "median policy's).")
+    return figure, caption

@@ -1,0 +1,257 @@
+"""One self-contained HTML report of a scored run folder.
+
+:func:`build_report` reads a run folder written by ``rehedge run`` (the
+config, ``manifest.json``, ``metrics.json``, ``heldout.npz`` and the fitted
+agents) and writes ``report.html`` beside them: the cautions, the scenario,
+the ranked summary table (the numbers of ``metrics.json``, formatted, never
+recomputed) and figures as inline base64 PNGs. The file fetches nothing, so
+it opens offline in any browser and can be mailed as it is.
+
+Figures: the held-out P&L distribution of every policy; each learned agent's
+map (target holding against spot at three times, with the Black-Scholes hedge,
+the Whalley-Wilmott band and the agent's own no-trade region); the cumulative
+mean cost over time; one held-out path with every policy's holdings; and,
+with sibling runs of a sweep, the cost-risk frontier.
+"""
+
+from __future__ import annotations
+
+import html
+from collections.abc import Sequence
+from pathlib import Path
+
+import matplotlib
+
+from rehedge.formats import CAUTION, format_days, format_money, format_percent, format_signed_money, metric_columns
+from rehedge.report.figures import (
+    STYLE,
+    colors_of,
+    cost_figure,
+    frontier_figure,
+    map_figures,
+    path_figure,
+    pnl_figure,
+    sample_path,
+)
+from rehedge.report.scored import Scored, load_scored, read_sibling
+
+
+_CSS = """
+body { font-family: -apple-system, "Segoe UI", Helvetica, Arial, sans-serif; color: #2b2a27;
+       max-width: 1120px; margin: 0 auto; padding: 18px 26px 40px; line-height: 1.45; font-size: 14px; }
+h1 { font-size: 22px; margin: 4px 0 2px; color: #1f4e79; }
+h2 { font-size: 17px; margin: 28px 0 8px; border-bottom: 2px solid #e6e1d6; padding-bottom: 3px; color: #1f4e79; }
+h3 { font-size: 14px; margin: 16px 0 6px; }
+.caution { background: #fbf3e4; border-left: 5px solid #d1603d; padding: 10px 14px; margin: 12px 0 18px; }
+.muted { color: #6b675e; }
+table { border-collapse: collapse; margin: 6px 0 10px; font-size: 12.5px; }
+th, td { padding: 4px 8px; border-bottom: 1px solid #e6e1d6; vertical-align: top; }
+th { background: #f5f3ee; text-align: left; font-weight: 600; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+table.summary th { text-align: right; }
+table.summary th:first-child, table.summary th:nth-child(2) { text-align: left; }
+table.facts th { width: 210px; }
+.scroll { overflow-x: auto; }
+figure { margin: 14px 0 22px; }
+figure img { max-width: 100%; height: auto; display: block; }
+figcaption { font-size: 12.5px; color: #55524b; margin-top: 4px; max-width: 980px; }
+.above { color: #2f7a4d; } .below { color: #b3412c; }
+"""
+
+
+def _e(value) -> str:
+    return html.escape(str(value), quote=True)
+
+
+def _facts_table(rows: list[tuple[str, str]]) -> str:
+    body = "".join(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>" for k, v in rows)
+    return f'<table class="facts">{body}</table>'
+
+
+def _scenario_html(scored: Scored) -> str:
+    run, metrics, manifest = scored.run, scored.metrics, scored.run.manifest
+    config = run.config
+    market, frictions, objective, schedule = config.market, config.frictions, config.objective, config.schedule
+    records = scored.records
+    paths = int(records[0]["paths"]) if records and "paths" in records[0] else config.data.heldout_paths
+    legs = "".join(
+        f"<tr><td>{_e(o.kind)}</td><td class='num'>{_e(f'{o.strike:g}')}</td>"
+        f"<td class='num'>{_e(f'{o.expiry_days:g}')}</td><td class='num'>{_e(f'{o.quantity:+g}')}</td>"
+        f"<td class='num'>{_e(f'{o.multiplier:g}')}</td><td class='num'>{_e(f'{o.quantity * o.multiplier:+,g}')}</td>"
+        f"<td>{'sold' if o.quantity < 0 else 'bought'}</td></tr>"
+        for o in config.book.options
+    )
+    book = ("<table><thead><tr><th>kind</th><th>strike (currency)</th><th>expiry (days)</th>"
+            "<th>quantity (contracts)</th><th>multiplier (shares per contract)</th><th>shares</th><th>side</th>"
+            f"</tr></thead><tbody>{legs}</tbody></table>")
+    limit = frictions.position_limit_shares
+    facts = [
+        ("config", config.name),
+        ("description", config.description or "(none)"),
+        ("market", market.describe()),
+        ("pricing", _pricing_text(config, run.problem)),
+        ("schedule", f"{schedule.steps} rehedges every {format_days(schedule.step_days)} "
+                     f"(horizon {format_days(config.horizon_days)}), settlement: {schedule.settlement}"),
+        ("frictions", f"proportional cost {frictions.cost_rate * 1e4:g} bps of traded notional; fixed cost "
+                      f"{frictions.fixed_cost:g} per trade; temporary impact coefficient "
+                      f"{frictions.impact_coefficient:g}, exponent {frictions.impact_exponent:g}; permanent "
+                      f"impact {frictions.permanent_impact:g}; ADV {frictions.adv_shares:,.0f} shares; borrow fee "
+                      f"{format_percent(frictions.borrow_fee)} a year; position limit "
+                      f"{'none' if limit is None else f'{limit:,.0f} shares'}"),
+        ("objective", f"mean over paths of the summed step rewards dW - {objective.risk_aversion:g} / 2 dW^2 "
+                      f"(risk aversion per currency unit); VaR/CVaR levels "
+                      f"{', '.join(format_percent(v) for v in objective.var_levels)}"),
+        ("held-out paths", f"{paths:,} paths, seed {metrics.get('heldout_seed')}"
+                           + _dates_text(manifest, "heldout", config.horizon_days)),
+        ("training paths", f"{manifest.get('sizes', {}).get('train_paths', config.data.train_paths):,} paths, "
+                           f"seed {config.data.train_seed}" + _dates_text(manifest, "train", config.horizon_days)),
+        ("bootstrap", f"{metrics.get('bootstrap_samples')} paired resamples over paths, "
+                      f"seed {metrics.get('bootstrap_seed')}; reference policy: {metrics.get('reference_policy')}"),
+        ("run folder", f"{run.path.name.removesuffix('.partial')}, created {manifest.get('created', 'n/a')}"),
+        ("config hash", manifest.get("config_hash", "n/a")),
+        ("software", f"rehedge {manifest.get('version', 'n/a')}, Python {manifest.get('python', 'n/a')}, "
+                     f"numpy {manifest.get('numpy', 'n/a')}, scikit-learn {manifest.get('scikit_learn', 'n/a')}"),
+    ]
+    tuned = manifest.get("tuned", {})
+    if tuned:
+        facts.append(("tuned on training paths", "; ".join(
+            f"{name}.{key} = {value:.6g}" for name, entry in tuned.items()
+            for key, value in entry.items() if key != "train_objective")))
+    if records and "mark" in records[0]:
+        facts.append(("Black-Scholes mark of the book", f"{format_money(records[0]['mark'])} (currency)"))
+    return (f"<h2>Scenario</h2>{_facts_table(facts[:2])}<h3>Book</h3>{book}"
+            f"<h3>Market, frictions, objective and data</h3>{_facts_table(facts[2:])}")
+
+
+def _pricing_text(config, problem) -> str:
+    basis = f"{config.pricing.days_per_year:g} days per year"
+    marks = getattr(config.market, "marks", "configured")
+    if marks == "implied":
+        return (f"Black-Scholes marks and premium at the implied volatility of each date (column "
+                f"{config.market.implied_volatility_column}), per path; its training mean "
+                f"{format_percent(problem.marks.volatility)} is the typical level (quotes); {basis}")
+    if marks == "realised":
+        return (f"Black-Scholes marks at the realised volatility of the training period, "
+                f"{format_percent(problem.marks.volatility)}; {basis}")
+    return f"Black-Scholes marks at volatility {format_percent(problem.marks.volatility)}, {basis}"
+
+
+def _dates_text(manifest: dict, role: str, horizon_days: float) -> str:
+    """Dates a historical run's paths come from ('' for a simulated market)."""
+    facts = manifest.get("history", {}).get(role)
+    if not facts:
+        return ""
+    text = f"; {facts['source']} of {facts['first_date']} to {facts['last_date']} ({facts['rows']:,} trading days"
+    if "windows" in facts:
+        text += f", a window every {facts['stride_days']} trading days"
+        if role == "heldout" and facts["stride_days"] < horizon_days:
+            text += "; windows overlap, so the paired intervals over paths are too narrow"
+    else:
+        text += f", mean block {facts['mean_block_days']:g} trading days"
+    return text + ")"
+
+
+def _cell(key: str, value, formatter) -> str:
+    return f'<td class="num" data-key="{_e(key)}" data-value="{_e(repr(value))}">{_e(formatter(value))}</td>'
+
+
+def _summary_html(scored: Scored) -> str:
+    records = scored.records
+    reference = scored.metrics.get("reference_policy")
+    columns = [(c.key, c.long, c.format) for c in metric_columns(records[0])]
+    has_versus = any("vs_reference" in r for r in records)
+    headers = ["#", "policy (kind)", columns[0][1]]
+    if has_versus:
+        headers += [f"vs {reference}: mean (currency)", "95% CI (currency)", "verdict"]
+    headers += [header for _, header, _ in columns[1:]]
+    rows = []
+    for rank, record in enumerate(records, start=1):
+        name, kind = record["name"], record.get("kind", "")
+        label = name if kind in ("", name) else f"{name} ({kind})"
+        cells = [f'<td class="num">{rank}</td>', f'<td data-key="name">{_e(label)}</td>',
+                 _cell(columns[0][0], record[columns[0][0]], columns[0][2])]
+        if has_versus:
+            versus = record.get("vs_reference")
+            if versus is None:
+                cells += ['<td class="num">n/a</td>'] * 2 + ["<td></td>"]
+            elif name == reference:
+                cells += [_cell("vs_reference_mean", versus["mean"], format_signed_money),
+                          '<td class="num">reference</td>', "<td></td>"]
+            else:
+                low, high = versus["ci_low"], versus["ci_high"]
+                verdict = "above" if low > 0 else "below" if high < 0 else "not distinguishable"
+                cells += [_cell("vs_reference_mean", versus["mean"], format_signed_money),
+                          f'<td class="num" data-key="vs_reference_ci" data-value="{_e(repr(low))} {_e(repr(high))}">'
+                          f"[{_e(format_signed_money(low))}, {_e(format_signed_money(high))}]</td>",
+                          f'<td class="{verdict.split()[0]}">{verdict}</td>']
+        cells += [_cell(key, record[key], fmt) for key, _, fmt in columns[1:]]
+        rows.append(f'<tr data-policy="{_e(name)}">{"".join(cells)}</tr>')
+    head = "".join(f"<th>{_e(h)}</th>" for h in headers)
+    note = ("Ranked by objective (higher is better). Every number is from this run's metrics.json, "
+            "formatted; money in the config's currency, costs and P&L per path over the horizon, VaR and "
+            "CVaR as positive losses. ")
+    if has_versus:
+        note += (f"The difference from {reference} is the mean per-path difference in summed reward, with a "
+                 f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples); "
+                 "'above' or 'below' when the interval excludes zero. ")
+    if "quote_bid" in records[0]:
+        note += ("Bid and ask: mean-variance indifference premiums for the opposite and the configured book; "
+                 "spreads are the distance from the Black-Scholes mark in implied-volatility points.")
+    return (f'<h2>Summary</h2><p class="muted">{_e(note)}</p><div class="scroll">'
+            f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table></div>')
+
+
+def _figure_html(uri: str, caption: str, alt: str, ident: str) -> str:
+    return (f'<figure id="{_e(ident)}"><img src="{uri}" alt="{_e(alt)}">'
+            f"<figcaption>{_e(caption)}</figcaption></figure>")
+
+
+def build_report(run_dir: Path, siblings: Sequence[Path] = (), staging: bool = False) -> Path:
+    """Write ``run_dir/report.html``: one self-contained file (inline CSS, PNG data URIs).
+
+    Parameters
+    ----------
+    run_dir : Path
+        A run folder scored by ``rehedge run`` (with metrics.json and heldout.npz).
+    siblings : sequence of Path
+        Other run folders of the same sweep; with any, the report adds the
+        cost-risk frontier across the runs.
+    staging : bool
+        ``run_dir`` is the unfinished folder of the run writing it (see rehedge.runner).
+
+    Returns
+    -------
+    Path
+        The report file. A folder that is not a scored run raises ConfigError.
+    """
+    scored = load_scored(Path(run_dir), staging)
+    others = [read_sibling(path) for path in siblings if Path(path).resolve() != scored.run.path.resolve()]
+    config_order = [spec.name for spec in [*scored.run.config.baselines, *scored.run.config.agents]]
+    names = [*config_order, *(r["name"] for r in scored.records if r["name"] not in config_order)]
+    colors = colors_of(names)
+    paths, seed = sample_path(scored)
+    with matplotlib.rc_context(STYLE):
+        figures = [("pnl", "P&L distribution", *pnl_figure(scored, colors))]
+        for name, uri, caption in map_figures(scored, paths.factors):
+            figures.append((f"map-{name}", f"Policy map: {name}", uri, caption))
+        figures.append(("cost", "Cost over time", *cost_figure(scored, colors)))
+        figures.append(("path", "One held-out path", *path_figure(scored, paths, seed, colors)))
+        if others:
+            figures.append(("frontier", "Cost-risk frontier", *frontier_figure(scored, others, colors)))
+    body = [
+        f"<h1>rehedge report: {_e(scored.run.config.name)}</h1>",
+        f'<p class="caution" id="caution"><strong>{_e(CAUTION)}</strong></p>',
+        _scenario_html(scored),
+        _summary_html(scored),
+        "<h2>Figures</h2>",
+        *(f"<h3>{_e(title)}</h3>{_figure_html(uri, caption, title, ident)}" for ident, title, uri, caption in figures),
+    ]
+    document = (
+        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
+        f"<title>rehedge report: {_e(scored.run.config.name)}</title><style>{_CSS}</style></head>"
+        f"<body>{''.join(body)}</body></html>\n"
+    )
+    target = scored.run.path / "report.html"
+    target.write_text(document, encoding="utf-8")
+    return target

@@ -1,0 +1,138 @@
+"""Run folders: write one (staged under ``NAME.partial``, renamed when complete) and read it back.
+
+A run folder ``runs/NAME-TIMESTAMP/`` holds the config as given
+(``config.toml``) and resolved (``config.json``), ``manifest.json``
+(package version, seeds, config hash, timings, data sizes, tuned values),
+one ``agents/NAME.joblib`` per fitted agent and ``training.log``; the runner
+adds the held-out metrics, the hedge table and the report before the rename.
+"""
+
+from __future__ import annotations
+
+import json
+import platform
+from dataclasses import dataclass, replace
+from datetime import datetime, timezone
+from pathlib import Path
+
+import joblib
+import numpy as np
+import sklearn
+
+import hedge_env
+from hedge_env.market import PathGenerator
+from hedge_env.problem import HedgingProblem
+from rehedge.build import build_baseline, build_markets, build_problem, describe_markets
+from rehedge.config import config_hash, parse_config
+from rehedge.errors import RunFolderError
+from rehedge.schema import Config
+from rehedge.training import Training
+
+
+def _timestamp() -> str:
+    return datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+
+
+PARTIAL = ".partial"
+
+
+def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict | None = None,
+              finish: bool = True) -> Path:
+    """Write a run folder; it is built under the name ``NAME-TIMESTAMP.partial`` and renamed when
+    complete, so nothing half-written looks like a run. With ``finish=False`` the staging folder is
+    returned for more files (held-out metrics, report); :func:`finish_run` then renames it."""
+    config = training.config
+    stem = f"{config.name}-{_timestamp()}"
+    final, n = Path(runs_dir) / stem, 2
+    while final.exists() or final.with_name(final.name + PARTIAL).exists():  # two runs in one second
+        final, n = Path(runs_dir) / f"{stem}-{n}", n + 1
+    staging = final.with_name(final.name + PARTIAL)
+    (staging / "agents").mkdir(parents=True)
+    (staging / "config.toml").write_text(config_text)
+    (staging / "config.json").write_text(json.dumps(config.model_dump(), indent=2, default=str) + "\n")
+    for name, agent in training.agents.items():
+        joblib.dump(agent, staging / "agents" / f"{name}.joblib")
+    manifest = {
+        "package": "rehedge",
+        "version": hedge_env.__version__,
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scikit_learn": sklearn.__version__,
+        "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "config_name": config.name,
+        "config_hash": config_hash(config),
+        "seeds": {"seed": config.seed, "train_seed": config.data.train_seed,
+                  "heldout_seed": config.data.heldout_seed},
+        "timings_s": {k: round(v, 4) for k, v in training.timings.items()},
+        "sizes": training.sizes,
+        "tuned": {name: {r.parameter: r.value, "train_objective": r.objective}
+                  for name, r in training.tuning.items()},
+        "agents": {spec.name: spec.kind for spec in config.agents},
+        **_history_facts(training),
+        **(extra or {}),
+    }
+    (staging / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
+    (staging / "training.log").write_text("\n".join(training.log) + "\n")
+    return finish_run(staging) if finish else staging
+
+
+def finish_run(staging: Path) -> Path:
+    """Rename a complete staging folder ``NAME.partial`` to ``NAME``; returns the final path."""
+    final = staging.with_name(staging.name.removesuffix(PARTIAL))
+    staging.rename(final)
+    return final
+
+
+def _history_facts(training: Training) -> dict:
+    """For a historical market: the CSV, its sha256 and the training and held-out date ranges."""
+    heldout = training.heldout_market or training.market
+    markets = describe_markets(training.market, heldout)
+    if not markets:
+        return {}
+    history = heldout.history
+    return {"history": {"csv": history.source, "csv_sha256": history.sha256, **markets}}
+
+
+@dataclass
+class Run:
+    """A run folder read back: config, problem, market, policies (baselines rebuilt with their tuned values)."""
+
+    path: Path
+    config: Config
+    manifest: dict
+    problem: HedgingProblem
+    market: PathGenerator
+    agents: dict[str, object]
+    baselines: dict[str, object]
+    heldout_market: PathGenerator | None = None
+
+
+def load_run(path: str | Path, partial_ok: bool = False) -> Run:
+    """Read a run folder written by :func:`write_run`. A missing folder, one whose history CSV changed and
+    an unfinished ``.partial`` one (unless ``partial_ok``: the run writing it reads it back) are
+    RunFolderErrors; a broken config in it is a ConfigError."""
+    path = Path(path)
+    if path.name.endswith(PARTIAL) and not partial_ok:
+        raise RunFolderError(f"{path}: an incomplete run folder (its run was interrupted); run it again")
+    manifest_file = path / "manifest.json"
+    if not manifest_file.is_file():
+        raise RunFolderError(f"{path}: not a run folder (no manifest.json)")
+    manifest = json.loads(manifest_file.read_text())
+    config = parse_config(json.loads((path / "config.json").read_text()), source=str(path / "config.json"))
+    problem = build_problem(config)
+    market, heldout_market = build_markets(config)
+    recorded = manifest.get("history", {}).get("csv_sha256")
+    if recorded and recorded != heldout_market.history.sha256:
+        raise RunFolderError(f"market.csv: {config.market.csv} changed since the run was written "
+                          "(sha256 differs from the manifest's); its held-out windows would not be the run's")
+    baselines = {}
+    for spec in config.baselines:
+        policy = build_baseline(spec, problem)
+        # Tuned values come from the manifest: a run is read back, never re-tuned.
+        tuned = manifest.get("tuned", {}).get(spec.name)
+        if tuned:
+            parameter = next(k for k in tuned if k != "train_objective")
+            policy = replace(policy, **{parameter: tuned[parameter]})
+        baselines[spec.name] = policy
+    agents = {spec.name: joblib.load(path / "agents" / f"{spec.name}.joblib") for spec in config.agents}
+    return Run(path, config, manifest, problem, market, agents, baselines, heldout_market)

@@ -1,0 +1,354 @@
+"""Hedge tables, read back: load a table folder, check it, and decide from it with numpy alone.
+
+A hedge table is a folder of three files:
+
+- ``targets.csv``: one row per grid point ``days_left, moneyness, holding_shares``
+  with the policy's ``target_shares`` there (the tidy form every reader needs);
+- ``band.csv``: one row per ``days_left, moneyness`` with the no-trade band
+  ``band_lower_shares, band_upper_shares`` and the targets of a holding below
+  and above the holding domain (the view for people, and the band ``advise``
+  shows);
+- ``table.json``: the sidecar (format version, book, units, marks, schedule,
+  frictions, objective, policy and its parameters, config hash, grid, domain,
+  creation time, SHA-256 and row count of each CSV).
+
+Units: holdings and targets in shares of the underlying (what a live system
+trades), time as days left to the hedging horizon, moneyness as spot divided
+by the reference spot of the sidecar. The README section "Hedge tables"
+describes the format for readers in other languages; :mod:`rehedge.tables.export`
+writes tables.
+
+This module imports numpy, json and the standard library only: ``rehedge advise``
+and a live process load tables without scikit-learn, pandas, gymnasium or pickle.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from rehedge.errors import UserError
+
+FORMAT = "rehedge-hedge-table"
+FORMAT_VERSION = 1
+SIDECAR = "table.json"
+TARGETS_FILE = "targets.csv"
+BAND_FILE = "band.csv"
+TARGET_COLUMNS = ("days_left", "moneyness", "holding_shares", "target_shares")
+BAND_COLUMNS = ("days_left", "moneyness", "band_lower_shares", "band_upper_shares",
+                "target_below_shares", "target_above_shares")
+
+INTERPOLATION_RULE = (
+    "target: trilinear interpolation of target_shares in (days_left, moneyness, holding_shares) "
+    "between the grid nodes around the point; band edges: bilinear in (days_left, moneyness); "
+    "a holding inside [band_lower_shares, band_upper_shares] keeps its holding (trade 0); "
+    "each coordinate outside the domain is clamped to it and the decision flagged as clamped"
+)
+
+class TableError(UserError):
+    """A hedge table that cannot be written, read or trusted; ``str(error)`` is one line."""
+
+
+@dataclass(frozen=True)
+class TableDecision:
+    """Decisions of a hedge table at many points (arrays of one shape), shares.
+
+    ``inside_band`` rows keep their holding. ``clamped`` is True where any of
+    ``days_left``, moneyness or holding was outside the table's domain and was
+    moved to its edge before the lookup (``clamped_days_left`` etc. say which).
+    Band edges are NaN where the policy has no no-trade region at that point.
+    """
+
+    target_shares: np.ndarray
+    trade_shares: np.ndarray
+    band_lower_shares: np.ndarray
+    band_upper_shares: np.ndarray
+    inside_band: np.ndarray
+    clamped_days_left: np.ndarray
+    clamped_moneyness: np.ndarray
+    clamped_holding: np.ndarray
+
+    @property
+    def clamped(self) -> np.ndarray:
+        return self.clamped_days_left | self.clamped_moneyness | self.clamped_holding
+
+
+# ---------------------------------------------------------------------------------------------
+# Reading
+# ---------------------------------------------------------------------------------------------
+
+
+def _sidecar_path(path: Path) -> Path:
+    return path / SIDECAR if path.is_dir() else path
+
+
+def _sha256(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def _read_csv(folder: Path, entry: dict, columns: tuple[str, ...], what: str) -> np.ndarray:
+    """A CSV file named in the sidecar, checked against its SHA-256, header and row count."""
+    name = entry.get("name")
+    if not isinstance(name, str) or Path(name).name != name:
+        raise TableError(f"{folder / SIDECAR}: files.{what}.name must be a file name in the table folder")
+    path = folder / name
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise TableError(f"{path}: cannot read ({exc.strerror or exc})") from None
+    digest = _sha256(data)
+    if digest != entry.get("sha256"):
+        raise TableError(f"{path}: SHA-256 {digest[:12]}... does not match the sidecar's "
+                         f"{str(entry.get('sha256'))[:12]}...: the file was changed or is incomplete; "
+                         "export the table again")
+    header, _, body = data.partition(b"\n")
+    if header.decode("ascii", "replace").strip() != ",".join(columns):
+        raise TableError(f"{path}: header must be {','.join(columns)}")
+    try:
+        values = np.loadtxt(io.BytesIO(body), delimiter=",", dtype=float, ndmin=2)
+    except ValueError as exc:
+        raise TableError(f"{path}: not a numeric CSV ({exc})") from None
+    if values.shape != (entry.get("rows"), len(columns)):
+        raise TableError(f"{path}: {values.shape[0]} rows of {values.shape[1]} columns, the sidecar says "
+                         f"{entry.get('rows')} rows of {len(columns)}")
+    return values
+
+
+def _check_axis_column(values: np.ndarray, nodes: np.ndarray, name: str, path: Path) -> None:
+    if not np.allclose(values, nodes, rtol=1e-9, atol=0.0):
+        raise TableError(f"{path}: column {name} does not follow the sidecar's grid in row order "
+                         "(days_left slowest, then moneyness, holding_shares fastest)")
+
+
+class HedgeTable:
+    """A hedge table read back from disk: ``decide`` in shares, ``act`` as a Policy.
+
+    Use :meth:`load`. Attributes: ``meta`` (the sidecar dict), ``path`` (the
+    table folder), the grid nodes ``days_left``, ``moneyness``,
+    ``holding_shares`` (ascending), ``targets`` (days x moneyness x holding,
+    shares), ``band_lower`` and ``band_upper`` (days x moneyness, shares),
+    ``reference_spot``, ``notional_shares``, ``days_per_year``, ``name``.
+    """
+
+    def __init__(self, meta: dict, path: Path, targets: np.ndarray, band: np.ndarray) -> None:
+        self.meta, self.path = meta, path
+        grid = meta["grid"]
+        self.days_left = np.asarray(grid["days_left"], dtype=float)
+        self.moneyness = np.asarray(grid["moneyness"], dtype=float)
+        self.holding_shares = np.asarray(grid["holding_shares"], dtype=float)
+        shape = (self.days_left.size, self.moneyness.size, self.holding_shares.size)
+        self.targets = targets.reshape(shape)
+        self.band_lower, self.band_upper = band[0].reshape(shape[:2]), band[1].reshape(shape[:2])
+        self.target_below, self.target_above = band[2].reshape(shape[:2]), band[3].reshape(shape[:2])
+        self.reference_spot = float(meta["book"]["reference_spot"])
+        self.notional_shares = float(meta["book"]["notional_shares"])
+        self.days_per_year = float(meta["marks"]["days_per_year"])
+        self.horizon_days = float(meta["schedule"]["horizon_days"])
+        self.policy_name = str(meta["policy"]["name"])
+        self.name = f"{self.policy_name}.table"
+
+    @classmethod
+    def load(cls, path: str | Path) -> HedgeTable:
+        """Read a table folder (or its ``table.json``); refuses, with a :class:`TableError`, a
+        table of another format version or whose CSVs fail their SHA-256 or shape checks."""
+        sidecar = _sidecar_path(Path(path))
+        folder = sidecar.parent
+        try:
+            meta = json.loads(sidecar.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise TableError(f"{sidecar}: no hedge table here (no {SIDECAR})") from None
+        except OSError as exc:
+            raise TableError(f"{sidecar}: cannot read ({exc.strerror or exc})") from None
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise TableError(f"{sidecar}: not valid JSON ({exc})") from None
+        if not isinstance(meta, dict) or meta.get("format") != FORMAT:
+            raise TableError(f"{sidecar}: not a hedge table sidecar (format must be {FORMAT!r})")
+        version = meta.get("format_version")
+        if version != FORMAT_VERSION:
+            raise TableError(f"{sidecar}: format_version {version!r} is not supported by this reader "
+                             f"(reads version {FORMAT_VERSION}); export the table again with this version")
+        try:
+            files, grid = meta["files"], meta["grid"]
+            days, money, hold = (np.asarray(grid[k], dtype=float)
+                                 for k in ("days_left", "moneyness", "holding_shares"))
+            for key in ("reference_spot", "notional_shares"):
+                float(meta["book"][key])
+            float(meta["marks"]["days_per_year"]), float(meta["schedule"]["horizon_days"])
+            meta["policy"]["name"]
+        except (KeyError, TypeError, ValueError) as exc:
+            raise TableError(f"{sidecar}: sidecar field missing or malformed ({exc})") from None
+        for name, nodes in (("days_left", days), ("moneyness", money), ("holding_shares", hold)):
+            if nodes.ndim != 1 or nodes.size < 1 or not np.all(np.diff(nodes) > 0):
+                raise TableError(f"{sidecar}: grid.{name} must be a list of increasing numbers")
+        targets = _read_csv(folder, files.get("targets", {}), TARGET_COLUMNS, "targets")
+        band = _read_csv(folder, files.get("band", {}), BAND_COLUMNS, "band")
+        n_days, n_money, n_hold = days.size, money.size, hold.size
+        if targets.shape[0] != n_days * n_money * n_hold or band.shape[0] != n_days * n_money:
+            raise TableError(f"{sidecar}: the CSV row counts do not match the grid sizes")
+        t_path, b_path = folder / files["targets"]["name"], folder / files["band"]["name"]
+        _check_axis_column(targets[:, 0], np.repeat(days, n_money * n_hold), "days_left", t_path)
+        _check_axis_column(targets[:, 1], np.tile(np.repeat(money, n_hold), n_days), "moneyness", t_path)
+        _check_axis_column(targets[:, 2], np.tile(hold, n_days * n_money), "holding_shares", t_path)
+        _check_axis_column(band[:, 0], np.repeat(days, n_money), "days_left", b_path)
+        _check_axis_column(band[:, 1], np.tile(money, n_days), "moneyness", b_path)
+        if not np.isfinite(targets[:, 3]).all():
+            raise TableError(f"{t_path}: target_shares must be finite numbers")
+        return cls(meta, folder, targets[:, 3].copy(), band[:, 2:].T.copy())
+
+    # --- decisions ------------------------------------------------------------------------------
+
+    @property
+    def domain(self) -> dict[str, tuple[float, float]]:
+        """Validity domain per coordinate (days left, moneyness, spot, holding in shares)."""
+        low, high = self.moneyness[0], self.moneyness[-1]
+        return {
+            "days_left": (float(self.days_left[0]), float(self.days_left[-1])),
+            "moneyness": (float(low), float(high)),
+            "spot": (float(low * self.reference_spot), float(high * self.reference_spot)),
+            "holding_shares": (float(self.holding_shares[0]), float(self.holding_shares[-1])),
+        }
+
+    def decide(self, spot, days_left, holding) -> TableDecision:
+        """Target holding at spot (currency), days left to the horizon and current holding (shares).
+
+        Inputs broadcast against each other; the trilinear rule of
+        :data:`INTERPOLATION_RULE` applies. Raises TableError for a spot that
+        is not a positive number or a non-finite time or holding.
+        """
+        spot, days, held = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (spot, days_left, holding)))
+        if not (np.all(spot > 0) and np.all(np.isfinite(spot))):
+            raise TableError("spot must be a positive finite number")
+        if not (np.all(np.isfinite(days)) and np.all(np.isfinite(held))):
+            raise TableError("days_left and holding must be finite numbers")
+        shape = spot.shape
+        days, money, held = days.ravel(), spot.ravel() / self.reference_spot, held.ravel()
+        (i, wi, ci), (j, wj, cj), (k, wk, ck) = (
+            _locate(self.days_left, days), _locate(self.moneyness, money), _locate(self.holding_shares, held))
+        n_money, n_hold = self.moneyness.size, self.holding_shares.size
+        # Flat-index steps to the upper neighbour on each axis (0 on an axis of one node).
+        next_day = n_money * n_hold if self.days_left.size > 1 else 0
+        next_money = n_hold if n_money > 1 else 0
+        next_hold = 1 if n_hold > 1 else 0
+        flat = self.targets.ravel()
+        base = (i * n_money + j) * n_hold + k
+        target = np.zeros(days.size)
+        for day_step, day_weight in ((0, 1.0 - wi), (next_day, wi)):
+            for money_step, money_weight in ((0, 1.0 - wj), (next_money, wj)):
+                corner = base + day_step + money_step
+                target += day_weight * money_weight * ((1.0 - wk) * flat[corner] + wk * flat[corner + next_hold])
+        lower, upper = (
+            _bilinear_corners(edge.ravel(), i * n_money + j, wi, wj, next_day // n_hold, next_money // n_hold)
+            for edge in (self.band_lower, self.band_upper))
+        inside = (held >= lower) & (held <= upper)  # NaN edges (no band) compare False
+        target = np.where(inside, held, target)
+        return TableDecision(
+            target.reshape(shape), (target - held).reshape(shape), lower.reshape(shape), upper.reshape(shape),
+            inside.reshape(shape), ci.reshape(shape), cj.reshape(shape), ck.reshape(shape))
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        """Policy protocol: observation rows ``[spot / reference spot, years to horizon, holding /
+        notional]`` -> target per share of notional. The rows must come from a problem with this
+        table's book, reference spot and schedule (see :meth:`check_problem`)."""
+        obs = np.asarray(obs, dtype=float)
+        decision = self.decide(obs[:, 0] * self.reference_spot, obs[:, 1] * self.days_per_year,
+                               obs[:, 2] * self.notional_shares)
+        return decision.target_shares / self.notional_shares
+
+    def check_problem(self, problem) -> None:
+        """Raise TableError unless ``problem`` (a hedge_env HedgingProblem) has this table's book,
+        reference spot, year basis and schedule: its observations are scaled by them."""
+        meta = self.meta
+        legs = [_leg_dict(leg) for leg in problem.book.legs]
+        checks = (
+            ("book", legs, meta["book"]["legs"]),
+            ("reference spot", float(problem.reference_spot), self.reference_spot),
+            ("days per year", float(problem.marks.days_per_year), self.days_per_year),
+            ("horizon days", float(problem.schedule.horizon_days), self.horizon_days),
+        )
+        for what, here, there in checks:
+            if here != there:
+                raise TableError(f"{self.path}: the table was exported for another {what} "
+                                 f"({there!r}) than this problem's ({here!r})")
+
+
+def _leg_dict(leg) -> dict:
+    return {"kind": leg.kind, "strike": float(leg.strike), "expiry_days": float(leg.expiry_days),
+            "quantity": float(leg.quantity), "multiplier": float(leg.multiplier)}
+
+
+def _locate(nodes: np.ndarray, x: np.ndarray):
+    """Lower node index, weight of the upper node and the clamped flag of each point."""
+    low, high = nodes[0], nodes[-1]
+    clamped = (x < low) | (x > high)
+    x = np.clip(x, low, high)
+    if nodes.size == 1:
+        return np.zeros(x.size, dtype=np.intp), np.zeros(x.size), clamped
+    index = np.clip(np.searchsorted(nodes, x, side="right") - 1, 0, nodes.size - 2)
+    left = nodes[index]
+    weight = (x - left) / (nodes[index + 1] - left)
+    return index, weight, clamped
+
+
+def _bilinear_corners(flat, base, wi, wj, step_i: int, step_j: int) -> np.ndarray:
+    """Bilinear interpolation of a flattened (days, moneyness) array from each point's lower corner."""
+    return ((1 - wi) * ((1 - wj) * flat[base] + wj * flat[base + step_j])
+            + wi * ((1 - wj) * flat[base + step_i] + wj * flat[base + step_i + step_j]))
+
+
+def tables_as_policies(paths, problem) -> tuple[dict[str, HedgeTable], dict[str, str]]:
+    """Hedge tables to score next to a problem's policies: name -> table, and name -> kind ``table``.
+
+    Each table must fit the problem (:meth:`HedgeTable.check_problem`); two
+    tables of one name are told apart by a numeric suffix.
+    """
+    tables = {}
+    for path in paths:
+        table = HedgeTable.load(path)
+        table.check_problem(problem)
+        name, n = table.name, 2
+        while name in tables:
+            name, n = f"{table.name}{n}", n + 1
+        table.name = name
+        tables[name] = table
+    return tables, {name: "table" for name in tables}
+
+
+def advice(table: HedgeTable, spot: float, days_left: float, holding: float) -> dict:
+    """One decision of ``table`` as a JSON-ready record: target, trade, band, clamping notes."""
+    decision = table.decide(spot, days_left, holding)
+    domain = table.domain
+    notes = []
+    for axis, value, flag in (("days_left", days_left, decision.clamped_days_left),
+                              ("spot", spot, decision.clamped_moneyness),
+                              ("holding_shares", holding, decision.clamped_holding)):
+        if bool(flag):
+            low, high = domain[axis]
+            edge = low if value < low else high
+            notes.append(f"{axis} {value:g} is outside the table's domain [{low:g}, {high:g}]: "
+                         f"decided at {edge:g}")
+    lower, upper = float(decision.band_lower_shares), float(decision.band_upper_shares)
+    meta = table.meta
+    return {
+        "table": str(table.path),
+        "policy": meta["policy"]["name"],
+        "config": meta.get("config", {}).get("name"),
+        "created": meta.get("created"),
+        "spot": float(spot),
+        "moneyness": float(spot) / table.reference_spot,
+        "days_left": float(days_left),
+        "holding_shares": float(holding),
+        "target_shares": float(decision.target_shares),
+        "trade_shares": float(decision.trade_shares),
+        "band_lower_shares": None if math.isnan(lower) else lower,
+        "band_upper_shares": None if math.isnan(upper) else upper,
+        "inside_band": bool(decision.inside_band),
+        "clamped": bool(decision.clamped),
+        "clamping": notes,
+        "currency": meta.get("units", {}).get("currency"),
+    }
