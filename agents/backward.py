@@ -36,6 +36,7 @@ from collections.abc import Callable, Iterable
 
 import numpy as np
 from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_is_fitted
 
 from agents.dataset import Transitions
 from agents.features import StateFeatures, basis_columns, hedge_move, state_features
@@ -209,7 +210,8 @@ class BackwardQAgent(BaseEstimator):
         return self._best(np.asarray(obs, dtype=float), k)[1]
 
     def act(self, obs: np.ndarray) -> np.ndarray:
-        """Greedy target holdings per share of notional (Policy protocol)."""
+        """Greedy target holdings per share of notional (Policy protocol); NotFittedError before ``fit``."""
+        check_is_fitted(self)
         obs = np.asarray(obs, dtype=float)
         k = decision_index(self.problem, obs)
         if (k == k[0]).all():

@@ -24,9 +24,9 @@ from pathlib import Path
 import numpy as np
 
 from agents.features import hedge_move
-from hedge_env.market import MarketPaths, PathGenerator
+from hedge_env.market import MARK_VOLATILITY_FACTOR, MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
-from hedge_env.rollout import MARK_VOLATILITY_FACTOR, as_market, check_observed_marks
+from hedge_env.rollout import as_market, check_observed_marks
 from hedge_env.step import HedgeState, hedge_step, initial_state, observe
 
 

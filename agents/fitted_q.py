@@ -118,8 +118,9 @@ class FittedQAgent(BackwardQAgent):
         check_terms(self.terms, tuple(self.factor_names))
         steps = self.problem.schedule.steps
         self.regressors_: list = [None] * steps
-        # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself.
-        tabulable = all(
+        # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself,
+        # and so does an observed mark volatility: the hedge and gamma of a row then depend on it too.
+        tabulable = not self.problem.mark_volatility_observed and all(
             factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
         self.tables_: list | None = [None] * steps if tabulable else None
         self._rows: list[tuple[np.ndarray, np.ndarray]] = []

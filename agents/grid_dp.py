@@ -19,20 +19,17 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numpy.polynomial.hermite_e import hermegauss
-from numpy.polynomial.legendre import leggauss
 from scipy.interpolate import CubicSpline
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
+from agents.grid_numerics import evaluate_spline, normal_quadrature, q_columns, reward_coefficients, rows_by_time
 from agents.policy import decode
 from hedge_env.problem import HedgingProblem
 from hedge_env.step import HedgeState, hedge_step
 
 # Elements per hedge_step call and per (spot, holding, action) block: keeps temporaries near 10 MB each.
 _CHUNK_ELEMENTS = 1 << 18
-# Half-width, in standard normal units, of the Gauss-Legendre rule used on steps where options settle.
-_SETTLEMENT_QUADRATURE_HALF_WIDTH = 8.0
 # Widths of the windows of grid targets, around the targets of a row's four grid states, over which
 # act evaluates Q exactly: within a cell the best target moves by a few grid steps (a band edge
 # moving with spot), more near expiry where gamma is high. Each row gets the narrowest that fits.
@@ -170,7 +167,7 @@ class GridDPAgent(BaseEstimator):
         self._validate_parameters()
         problem = self.problem
         steps = problem.schedule.steps
-        self.reward_coefficients_ = _reward_coefficients(problem)
+        self.reward_coefficients_ = reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
         spots = np.exp(self.log_spots_)
         self.holdings_ = self._holding_grid(spots)
@@ -239,35 +236,14 @@ class GridDPAgent(BaseEstimator):
         return np.exp((self.drift - 0.5 * self.volatility**2) * dt + self.volatility * math.sqrt(dt) * nodes)
 
     def _quadrature(self, k: int, spots: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Standard normal nodes and weights per grid spot, each (spot_points, n), weights summing to 1.
-
-        Gauss-Hermite on smooth steps. On a step where options settle the
-        integrand has kinks (payoffs) or jumps (delivered shares) at the
-        strikes, where Gauss-Hermite converges slowly; there the real line, cut
-        to +-8, is split into 8 pieces of width 2 and further at each strike's
-        node, and every piece gets a Gauss-Legendre rule of
-        ``quadrature_nodes // 2`` (at least 4) nodes against the normal density.
-        """
-        n = self.quadrature_nodes
+        """Standard normal nodes and weights per grid spot for the move over step ``k``
+        (:func:`~agents.grid_numerics.normal_quadrature`: split at the strikes of options settling then)."""
         schedule, book = self.problem.schedule, self.problem.book
         t_now, t_next = schedule.time_days(k), schedule.time_days(k + 1)
         strikes = sorted({leg.strike for leg in book.live_legs(t_now) if not leg.live_at(t_next)})
-        if not strikes:
-            nodes, weights = hermegauss(n)
-            weights = weights / weights.sum()
-            return np.broadcast_to(nodes, (spots.size, n)), np.broadcast_to(weights, (spots.size, n))
         dt = self.problem.dt_years
         mean, scale = (self.drift - 0.5 * self.volatility**2) * dt, self.volatility * math.sqrt(dt)
-        edge = _SETTLEMENT_QUADRATURE_HALF_WIDTH
-        kinks = (np.log(np.asarray(strikes)[None, :] / spots[:, None]) - mean) / scale
-        fixed = np.broadcast_to(np.linspace(-edge, edge, 9), (spots.size, 9))
-        bounds = np.sort(np.concatenate([fixed, np.clip(kinks, -edge, edge)], axis=1), axis=1)
-        unit_nodes, unit_weights = leggauss(max(4, n // 2))
-        middle = 0.5 * (bounds[:, 1:] + bounds[:, :-1])
-        half = 0.5 * (bounds[:, 1:] - bounds[:, :-1])
-        nodes = (middle[:, :, None] + half[:, :, None] * unit_nodes).reshape(spots.size, -1)
-        weights = (half[:, :, None] * unit_weights).reshape(spots.size, -1) * np.exp(-0.5 * nodes**2)
-        return nodes, weights / weights.sum(axis=1, keepdims=True)
+        return normal_quadrature(self.quadrature_nodes, spots, strikes, mean, scale)
 
     def _grid_state(self, k: int, spots, holdings, repeats: tuple[int, ...] = ()) -> HedgeState:
         """HedgeState at t_k, wealth set to 0 (the one approximation), as flat arrays.
@@ -378,7 +354,7 @@ class GridDPAgent(BaseEstimator):
         if value_next is None:
             return 0.0
         spline = CubicSpline(self.log_spots_, value_next, axis=0)
-        values = _evaluate_spline(spline, np.log(next_spots).ravel()).reshape(*next_spots.shape, -1)
+        values = evaluate_spline(spline, np.log(next_spots).ravel()).reshape(*next_spots.shape, -1)
         return np.einsum("iqa,iq->ia", values, weights)
 
     def _induct_separated(self, k, spots, next_spots, weights, value_next) -> None:
@@ -414,7 +390,7 @@ class GridDPAgent(BaseEstimator):
             outcome = hedge_step(self.problem, state, actions[action_index], exogenous)
             total = outcome.reward
             if spline is not None:
-                total = total + _evaluate_spline(spline, np.log(outcome.state.spot), action_index)
+                total = total + evaluate_spline(spline, np.log(outcome.state.spot), action_index)
             q = (total.reshape(shape) * weights[block, None, None, :]).sum(axis=3)
             best = q.argmax(axis=2)
             self.policy_[k, block] = actions[best]
@@ -426,11 +402,11 @@ class GridDPAgent(BaseEstimator):
         """Target holding per share of notional for observation rows (Policy protocol).
 
         The decisions of :meth:`act_exact`, read from the ``policy_`` table
-        where that is exact up to interpolation (see the class notes).
+        where that is exact up to interpolation (see the class docstring).
         """
         decoded, times = self._decode(obs)
         targets = np.empty(times.size)
-        for k, rows in _rows_by_time(times):
+        for k, rows in rows_by_time(times):
             spot, held = decoded.spot[rows], decoded.holding_shares[rows]
             if self.problem.frictions.permanent_impact:
                 targets[rows] = self._interpolate_tables(k, spot, held)[0]
@@ -460,7 +436,7 @@ class GridDPAgent(BaseEstimator):
         targets, values = np.empty(n_rows), np.empty(n_rows)
         rows_per_chunk = max(1, _CHUNK_ELEMENTS // (8 * self.holdings_.size))
         exact = not self.problem.frictions.permanent_impact
-        for k, rows in _rows_by_time(times):
+        for k, rows in rows_by_time(times):
             rows = np.arange(n_rows)[rows]
             for start in range(0, rows.size, rows_per_chunk):
                 chunk = rows[start : start + rows_per_chunk]
@@ -561,11 +537,11 @@ class GridDPAgent(BaseEstimator):
         step = actions[1] - actions[0]
         middle = np.clip(np.rint((held - actions[0]) / step).astype(int), 1, actions.size - 2)
         if columns is None:
-            level, slope = _q_columns(table, np.log(spot))
+            level, slope = q_columns(table, np.log(spot))
             choices = np.broadcast_to(actions, level.shape)
         else:
             # The three targets nearest the holding (for "no trade") in the same read, at the end.
-            level, slope = _q_columns(table, np.log(spot), np.hstack([columns, middle[:, None] + np.arange(-1, 2)]))
+            level, slope = q_columns(table, np.log(spot), np.hstack([columns, middle[:, None] + np.arange(-1, 2)]))
             nearest, level, slope = level[:, -3:], level[:, :-3], slope[:, :-3]
             choices = actions[columns]
         charge = self._trade_charge(spot[:, None], np.abs(choices - held[:, None]))
@@ -601,73 +577,3 @@ class GridDPAgent(BaseEstimator):
                     + u * ((1 - v) * table[i + 1, j] + v * table[i + 1, j + 1]))
 
         return bilinear(self.policy_[k]), bilinear(self.value_[k])
-
-
-def _reward_coefficients(problem: HedgingProblem) -> tuple[float, float]:
-    """``(c1, c2)`` with ``objective.reward(x) = c1 x + c2 x**2``; the DP needs a reward quadratic in the P&L."""
-    reward = problem.objective.reward
-    up, down = float(reward(1.0)), float(reward(-1.0))
-    c1, c2 = 0.5 * (up - down), 0.5 * (up + down)
-    for x in (0.0, 0.5, 3.0, -2.0):
-        if not math.isclose(float(reward(x)), c1 * x + c2 * x * x, rel_tol=1e-12, abs_tol=1e-12):
-            raise ValueError("GridDPAgent needs a per-step reward quadratic in the step P&L (mean-variance)")
-    return c1, c2
-
-
-def _rows_by_time(times: np.ndarray):
-    """(k, rows) per decision time present; rows is a slice when all rows share one time (a rollout)."""
-    if times.size and (times == times[0]).all():
-        return [(int(times[0]), slice(None))]
-    return [(int(k), np.flatnonzero(times == k)) for k in np.unique(times)]
-
-
-def _q_columns(table, points: np.ndarray, columns: np.ndarray | None = None):
-    """Level and slope of the Q spline ``table`` (see ``GridDPAgent._q_table``) at ``points`` (rows,),
-    continued linearly beyond the grid ends: two arrays (rows, targets), of every target or of
-    ``columns`` (rows, m) only."""
-    knots, coef = table
-    n_targets = coef.shape[1]
-    inside = np.clip(points, knots[0], knots[-1])
-    interval = np.clip(np.searchsorted(knots, inside, side="right") - 1, 0, knots.size - 2)
-    t = inside - knots[interval]
-    # Each (row, target) reads its 8 coefficients in one piece; the cubic is a batched product
-    # with (t^3, t^2, t, 1), plus (3 t^2, 2 t, 1, 0) times the distance beyond the grid.
-    powers = np.stack([t * t * t, t * t, t, np.ones_like(t)], axis=1)
-    beyond = points - inside
-    if beyond.any():
-        powers += beyond[:, None] * np.stack([3.0 * t * t, 2.0 * t, np.ones_like(t), np.zeros_like(t)], axis=1)
-    flat = coef.reshape(-1, 8)
-    if columns is None:
-        gathered = flat.reshape(-1, n_targets * 8)[interval]
-        m = n_targets
-    else:
-        gathered = flat[(interval * n_targets)[:, None] + columns]
-        m = columns.shape[1]
-    value = np.matmul(gathered.reshape(points.size, 2 * m, 4), powers[:, :, None]).reshape(points.size, m, 2)
-    return value[..., 0], value[..., 1]
-
-
-def _evaluate_spline(spline: CubicSpline, points: np.ndarray, columns: np.ndarray | None = None) -> np.ndarray:
-    """Spline values at ``points``, continued linearly beyond the grid ends.
-
-    Without ``columns``: every column of the spline's values, shape
-    ``(len(points), *columns_shape)``. With ``columns`` (an integer array like
-    ``points``): only that column at each point, shape like ``points``.
-    """
-    knots = spline.x
-    inside = np.clip(points, knots[0], knots[-1])
-    beyond = points - inside
-    outside = np.flatnonzero(beyond)
-    if columns is None:
-        value = spline(inside)
-        if outside.size:
-            slope = spline(inside[outside], 1)
-            value[outside] += slope * beyond[outside].reshape((-1,) + (1,) * (slope.ndim - 1))
-        return value
-    interval = np.clip(np.searchsorted(knots, inside, side="right") - 1, 0, knots.size - 2)
-    c = spline.c[:, interval, columns]
-    t = inside - knots[interval]
-    value = ((c[0] * t + c[1]) * t + c[2]) * t + c[3]
-    if outside.size:
-        value = value + ((3.0 * c[0] * t + 2.0 * c[1]) * t + c[2]) * beyond
-    return value

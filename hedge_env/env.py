@@ -13,10 +13,9 @@ from gymnasium.vector.utils import batch_space
 
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
-from hedge_env.market import BLOCK_PATHS, GBMMarket, GivenPaths, MarketPaths, PathGenerator
+from hedge_env.market import BLOCK_PATHS, MARK_VOLATILITY_FACTOR, GBMMarket, GivenPaths, MarketPaths, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
-from hedge_env.rollout import MARK_VOLATILITY_FACTOR
 from hedge_env.step import HedgeState, StepOutcome, hedge_step, initial_state, observe
 
 # A European book's delta per share of notional lies in [-1, 1], so no hedge needs more.

@@ -40,10 +40,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from hedge_env.market import GivenPaths, MarketPaths, SimulatedMarket
+from hedge_env.market import MARK_VOLATILITY_FACTOR, GivenPaths, MarketPaths, SimulatedMarket
 
-# The factor name the rollout reads as the mark volatility (hedge_env.rollout.MARK_VOLATILITY_FACTOR).
-MARK_VOLATILITY = "mark_volatility"
 
 # Plausible implied volatilities per unit: (low, high, low inclusive).
 _VOLATILITY_RANGE = {"decimal": (0.0, 5.0, False), "percent": (1.0, 500.0, True)}
@@ -332,7 +330,7 @@ def rolling_windows(history: History, steps: int, step_rows: int, stride_rows: i
     paths[:, 0] = spot  # exactly the configured spot
     factors = {}
     if implied_marks:
-        factors[MARK_VOLATILITY] = _implied(history)[index]
+        factors[MARK_VOLATILITY_FACTOR] = _implied(history)[index]
     return MarketPaths(paths, factors)
 
 
@@ -357,7 +355,7 @@ class HistoricalWindows(GivenPaths):
     def build(cls, history: History, steps: int, step_rows: int, stride_rows: int, spot: float,
               implied_marks: bool = False, role: str = "held-out") -> HistoricalWindows:
         paths = rolling_windows(history, steps, step_rows, stride_rows, spot, implied_marks)
-        observed = (MARK_VOLATILITY,) if implied_marks else ()
+        observed = (MARK_VOLATILITY_FACTOR,) if implied_marks else ()
         return cls(paths, observed, history, stride_rows, role)
 
     def describe(self) -> dict:
@@ -420,8 +418,8 @@ class StationaryBootstrap(SimulatedMarket):
             raise ValueError(f"mean_block_rows must be >= 1, got {self.mean_block_rows}")
         if self.implied_marks:
             _implied(self.history)
-            object.__setattr__(self, "factor_names", (MARK_VOLATILITY,))
-            object.__setattr__(self, "observed_factors", (MARK_VOLATILITY,))
+            object.__setattr__(self, "factor_names", (MARK_VOLATILITY_FACTOR,))
+            object.__setattr__(self, "observed_factors", (MARK_VOLATILITY_FACTOR,))
 
     def _simulate(self, rng: np.random.Generator, n_paths: int, n_steps: int, dt_years: float) -> MarketPaths:
         returns = self.history.log_returns
@@ -438,7 +436,7 @@ class StationaryBootstrap(SimulatedMarket):
             daily = np.empty((n_paths, n_days + 1))
             daily[:, 0] = implied[index[:, 0]]
             daily[:, 1:] = implied[index + 1]
-            factors[MARK_VOLATILITY] = np.ascontiguousarray(daily[:, :: self.step_rows])
+            factors[MARK_VOLATILITY_FACTOR] = np.ascontiguousarray(daily[:, :: self.step_rows])
         return MarketPaths(spot, factors)
 
     def describe(self) -> dict:

@@ -28,6 +28,11 @@ BLOCK_PATHS = 4096
 QE_PSI_SWITCH = 1.5
 
 
+# The factor a path source names when it supplies the mark volatility per path and time (an implied
+# volatility): rollouts and envs mark the book at it, and it is the first observed factor when seen.
+MARK_VOLATILITY_FACTOR = "mark_volatility"
+
+
 @dataclass(frozen=True)
 class MarketPaths:
     """Spot paths and named factor paths, all of shape (n_paths, n_steps + 1).

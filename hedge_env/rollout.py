@@ -13,13 +13,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from hedge_env.market import GivenPaths, MarketPaths, PathGenerator
+from hedge_env.market import MARK_VOLATILITY_FACTOR, GivenPaths, MarketPaths, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem
 from hedge_env.step import StepOutcome, hedge_step, initial_state, observe
 
-# A factor of this name, when a market supplies it, is the mark volatility per path and time.
-MARK_VOLATILITY_FACTOR = "mark_volatility"
 
 _TOTALS = ("pnl", "reward", "hedge_gain", "book_change", "financing", "trading_cost", "impact_cost",
            "traded_shares", "trades")
@@ -163,7 +161,7 @@ def rollout_many(
         order = _hedging_order(chunk.spot)
         rows = slice(begin, begin + chunk.n_paths)
         for name, policy in policies.items():
-            part = _rollout_chunk(problem, policy, chunk, order, market.observed_factors, keep_holdings, name)
+            part = _rollout_chunk(problem, policy, chunk, order, market.observed_factors, keep_holdings, name, begin)
             if name not in results:
                 results[name] = _allocate(part, n_paths)
                 step_cost_sums[name] = 0
@@ -226,6 +224,11 @@ def _time_major(values: np.ndarray, order: np.ndarray) -> np.ndarray:
     return out
 
 
+class PolicyOutputError(ValueError):
+    """A policy named a target that is not a finite number (NaN or infinite); the message is one line
+    naming the policy, the decision time and the path."""
+
+
 def _in_path_order(values: np.ndarray, order: np.ndarray) -> np.ndarray:
     """Rows hedged in ``order`` back in path order."""
     out = np.empty_like(values)
@@ -237,7 +240,8 @@ def _in_path_order(values: np.ndarray, order: np.ndarray) -> np.ndarray:
 _OUTCOME_INDEX = tuple(StepOutcome._fields.index(key) for key in _TOTALS)
 
 
-def _rollout_chunk(problem, policy, paths: MarketPaths, order, observed, keep_holdings, name) -> HedgeResult:
+def _rollout_chunk(problem, policy, paths: MarketPaths, order, observed, keep_holdings, name,
+                   first_path: int = 0) -> HedgeResult:
     n, steps = paths.n_paths, problem.schedule.steps
     if paths.n_steps != steps:
         raise ValueError(f"paths have {paths.n_steps} steps, the schedule has {steps}")
@@ -260,6 +264,10 @@ def _rollout_chunk(problem, policy, paths: MarketPaths, order, observed, keep_ho
     for k in range(steps):
         observe(problem, state, [factors[f][k] for f in observed], out=obs)
         target = (act_with_delta(obs, state.delta) if act_with_delta else policy.act(obs)) * notional
+        if not np.isfinite(target).all():
+            row = int(np.flatnonzero(~np.isfinite(target))[0])
+            raise PolicyOutputError(f"policy {name!r} named a target of {target[row]} shares at decision {k} of "
+                                    f"path {first_path + int(order[row])}: targets must be finite numbers")
         outcome = hedge_step(
             problem, state, target, spot[k + 1], None if mark_vol is None else mark_vol[k + 1]
         )

@@ -17,7 +17,8 @@ from hedge_env.book import Book
 
 from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
-from hedge_env.rollout import HedgeResult, rollout_many
+from hedge_env.rollout import HedgeResult, PolicyOutputError, rollout_many
+from rehedge.errors import PolicyError
 
 
 def paired_bootstrap(differences: dict[str, np.ndarray], samples: int = 2000, seed: int = 0,
@@ -105,8 +106,12 @@ def evaluate_policies(
 ) -> Evaluation:
     """Hedge the same ``n_paths`` held-out paths with every policy; differences are paired
     against ``reference`` (a policy name) path by path, with a bootstrap over paths seeded
-    from the held-out seed."""
-    results = rollout_many(problem, policies, source, n_paths, seed, chunk_paths, progress=progress)
+    from the held-out seed. A policy that names a non-finite target stops the comparison with a
+    PolicyError (one line: the policy, the decision and the path)."""
+    try:
+        results = rollout_many(problem, policies, source, n_paths, seed, chunk_paths, progress=progress)
+    except PolicyOutputError as error:
+        raise PolicyError(str(error)) from None
     return Evaluation(results, kinds or {}, seed, reference, bootstrap_samples, bootstrap_seed=seed + 1)
 
 

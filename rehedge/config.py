@@ -96,14 +96,27 @@ def parse_config(data: dict, source: str = "<config>", base_dir: str | Path | No
     try:
         return Config.model_validate(data, context={"base_dir": base_dir})
     except ValidationError as exc:
-        errors = exc.errors()
-        problems = tuple(_format_error(err) for err in errors)
+        problems = _ordered(tuple(_format_error(err) for err in exc.errors()))
         key, _, _ = problems[0].partition(": ")
         message = problems[0]
         if len(problems) > 1:
             more = len(problems) - 1
             message += f" (and {more} more error{'s' if more > 1 else ''})"
         raise ConfigError(message, source=source, key=key, problems=problems) from None
+
+
+def _ordered(problems: tuple[str, ...]) -> tuple[str, ...]:
+    """Unknown keys first, and a key reported missing dropped where an unknown key beside it is its
+    misspelling (``cost_rat``: "did you mean 'cost_rate'?" says it all)."""
+    meant = set()
+    for problem in problems:
+        key, _, rule = problem.partition(": ")
+        hint = re.search(r"\(did you mean '([^']+)'\?\)$", rule)
+        if rule.startswith("unknown key") and hint:
+            meant.add(key.rpartition(".")[0] + "." + hint.group(1) if "." in key else hint.group(1))
+    kept = [p for p in problems
+            if not (p.endswith(": required key missing") and p.partition(": ")[0] in meant)]
+    return tuple(sorted(kept, key=lambda p: not p.partition(": ")[2].startswith("unknown key")))
 
 
 def config_hash(config: Config) -> str:

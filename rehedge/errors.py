@@ -42,3 +42,7 @@ class RunFolderError(UserError):
 
     def __init__(self, message: str) -> None:
         super().__init__(one_line(message))
+
+
+class PolicyError(UserError):
+    """A policy that cannot be trusted with a decision (it named a NaN or infinite target), in one line."""

@@ -10,7 +10,9 @@ killed outright leaves only a ``.partial`` folder, which nothing reads as a run.
 from __future__ import annotations
 
 import json
+import os
 import shutil
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -19,6 +21,21 @@ from rehedge.compare import Evaluation, evaluate_with_quotes, write_metrics
 from rehedge.build import path_count
 from rehedge.training import ProgressStart, Training, no_progress, train
 from rehedge.run_folder import finish_run, write_run
+
+
+# Tests that stop a run part-way name a file here: the run then stops before its held-out stage, with
+# its training written, until that file is removed (it first writes FILE.reached), so the moment a
+# signal arrives is the test's choice, not a guess about how fast the machine is.
+PAUSE_ENVIRONMENT = "REHEDGE_PAUSE_BEFORE_HELDOUT"
+
+
+def _pause_if_asked() -> None:
+    pause = os.environ.get(PAUSE_ENVIRONMENT)
+    if not pause:
+        return
+    Path(pause + ".reached").touch()
+    while Path(pause).exists():
+        time.sleep(0.01)
 
 
 @dataclass
@@ -58,6 +75,7 @@ def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_p
     training = train(config, start)
     staging = write_run(training, config_text, Path(runs_dir), extra, finish=False)
     try:
+        _pause_if_asked()
         market = training.heldout_market or training.market
         n_paths = path_count(market, heldout_paths or config.data.heldout_paths)
         seed = config.data.heldout_seed

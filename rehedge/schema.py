@@ -700,6 +700,15 @@ class Config(_Spec):
                 f"option expiry ({last_expiry:g} days)", "schedule", "steps"
             )
 
+        # A trade of the whole book's notional moves the price by at most a factor e: beyond that the
+        # model (every later price times exp(gamma d / ADV)) leaves any market a desk trades in, and a
+        # policy that trades a few notionals would overflow the factor.
+        impact = self.frictions.permanent_impact * self.notional_shares / self.frictions.adv_shares
+        if impact > 1:
+            raise _rule(f"permanent_impact x notional shares / adv_shares must be <= 1 (a trade of the whole "
+                        f"book moves the price by at most a factor e), got {impact:.4g}", "frictions",
+                        "permanent_impact")
+
         for i, agent in enumerate(self.agents):
             if agent.kind == "grid_dp" and self.market.model != "gbm":
                 raise _rule(f"grid_dp solves a one-factor GBM market only, got market.model = "

@@ -29,7 +29,7 @@ from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 from hedge_env.rollout import rollout_many
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def reference_like(cost_rate: float = 0.005) -> HedgingProblem:
@@ -257,49 +257,7 @@ def test_advise_imports_neither_scikit_learn_nor_pandas_matplotlib_gymnasium(exp
     assert done.stdout.strip().splitlines()[-1] == "[]"
 
 
-CONFIG = """
-name = "table-test"
-seed = 5
-
-[market]
-model = "gbm"
-spot = 100.0
-volatility = 0.2
-
-[[book.options]]
-kind = "call"
-strike = 100.0
-expiry_days = 8
-quantity = -2
-multiplier = 50
-
-[schedule]
-steps = 8
-
-[frictions]
-cost_rate = 0.002
-
-[objective]
-risk_aversion = 0.01
-
-[data]
-train_paths = 400
-heldout_paths = 1000
-chunk_paths = 500
-
-[[baselines]]
-kind = "delta"
-
-[[baselines]]
-kind = "whalley_wilmott"
-risk_aversion = "tune"
-
-[export]
-policy = "whalley_wilmott"
-moneyness_points = 61
-holding_points = 21
-currency = "EUR"
-"""
+from tests.scenarios import TABLE as CONFIG
 
 
 def test_export_grid_settings_are_validated_with_their_key():

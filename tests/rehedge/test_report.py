@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from rehedge.errors import ConfigError, RunFolderError
+from rehedge.errors import RunFolderError
 from rehedge.config import load_variants
 from rehedge.compare import evaluate_with_quotes, write_metrics
 from agents.baselines import DeltaHedge
@@ -23,65 +23,7 @@ from rehedge.training import train
 from rehedge.run_folder import load_run, write_run
 
 # Two variants (10 and 50 bps) of a short 8-day call: seconds to train and score.
-TINY = """
-name = "report-test"
-seed = 5
-
-[market]
-model = "gbm"
-spot = 100.0
-volatility = 0.2
-
-[[book.options]]
-kind = "call"
-strike = 100.0
-expiry_days = 8
-quantity = -1
-
-[schedule]
-steps = 8
-
-[frictions]
-cost_rate = 0.001
-
-[objective]
-risk_aversion = 1.0
-
-[data]
-train_paths = 400
-heldout_paths = 800
-chunk_paths = 400
-
-[[baselines]]
-kind = "no_hedge"
-
-[[baselines]]
-kind = "delta"
-
-[[baselines]]
-kind = "whalley_wilmott"
-risk_aversion = "tune"
-
-[[agents]]
-kind = "linear"
-
-[[agents]]
-kind = "fitted_q"
-regressor = "hist_gradient_boosting"
-regressor_params = { max_iter = 5 }
-
-[[agents]]
-kind = "grid_dp"
-spot_points = 21
-holding_points = 21
-quadrature_nodes = 4
-
-[report]
-bootstrap_samples = 200
-
-[sweep]
-"frictions.cost_rate" = [0.001, 0.005]
-"""
+from tests.scenarios import TINY
 
 VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
 

@@ -16,52 +16,9 @@ from rehedge.cli import app
 from rehedge.errors import ConfigError
 from rehedge.sweep import run_sweep, sweep_cells
 
-SWEEP = """
-name = "tiny-sweep"
-seed = 3
+from tests.scenarios import sweep_scenario
 
-[market]
-model = "gbm"
-spot = 100.0
-volatility = 0.2
-
-[[book.options]]
-kind = "call"
-strike = 100.0
-expiry_days = 10
-quantity = -1
-
-[schedule]
-steps = 10
-
-[frictions]
-cost_rate = 0.001
-
-[objective]
-risk_aversion = 1.0
-
-[data]
-train_paths = 600
-heldout_paths = 1500
-chunk_paths = 250
-
-[[baselines]]
-kind = "delta"
-
-[[baselines]]
-kind = "fixed_band"
-half_width = "tune"
-
-[[agents]]
-kind = "linear"
-
-[report]
-bootstrap_samples = 200
-
-[sweep]
-"frictions.cost_rate" = [0.001, 0.004]
-seed = [1, 2]
-"""
+SWEEP = sweep_scenario()
 
 POLICIES = 3
 
@@ -182,7 +139,7 @@ def test_resume_reruns_a_cell_whose_folder_is_incomplete_and_a_fresh_run_refuses
 
 def test_sweep_command_prints_the_combined_table_as_json_and_writes_each_cell_report(tmp_path):
     config = tmp_path / "two.toml"
-    config.write_text(SWEEP.replace("seed = [1, 2]\n", ""))  # two cells
+    config.write_text(sweep_scenario(seeds=False))  # two cells
     runner = CliRunner()
     out = runner.invoke(app, ["sweep", str(config), "--sweep-dir", str(tmp_path / "s"), "--quiet", "--json",
                               "--paths", "500"])

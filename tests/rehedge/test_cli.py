@@ -13,57 +13,9 @@ import pytest
 
 from rehedge.run_folder import load_run
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
-SMALL = """
-name = "small-test"
-seed = 3
-
-[market]
-model = "gbm"
-spot = 100.0
-volatility = 0.2
-
-[[book.options]]
-kind = "call"
-strike = 100.0
-expiry_days = 10
-quantity = -1
-
-[schedule]
-steps = 10
-
-[frictions]
-cost_rate = 0.001
-
-[objective]
-risk_aversion = 1.0
-
-[data]
-train_paths = 600
-heldout_paths = 1500
-chunk_paths = 500
-
-[[baselines]]
-kind = "delta"
-
-[[baselines]]
-kind = "fixed_band"
-half_width = "tune"
-
-[[agents]]
-kind = "linear"
-
-[[agents]]
-kind = "fitted_q"
-regressor = "hist_gradient_boosting"
-regressor_params = { max_iter = 10 }
-
-[[agents]]
-kind = "grid_dp"
-spot_points = 41
-holding_points = 41
-"""
+from tests.scenarios import SMALL
 
 
 def rehedge(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
@@ -148,7 +100,7 @@ def test_bad_config_is_one_line_with_key_and_rule_and_exit_code_2(tmp_path):
 @pytest.mark.parametrize("command", ["check-config", "train"])
 def test_unknown_regressor_parameter_names_the_key_when_the_config_is_loaded(tmp_path, command):
     bad = tmp_path / "bad.toml"
-    bad.write_text(SMALL.replace("regressor_params = { max_iter = 10 }", "regressor_params = { max_iters = 10 }"))
+    bad.write_text(SMALL.replace("max_iter = 10", "max_iters = 10"))
     extra = ["--runs-dir", str(tmp_path / "runs"), "--quiet"] if command == "train" else []
     done = rehedge(command, str(bad), *extra)
     assert done.returncode == 2

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import tomllib
 from pathlib import Path
 
 import pytest
@@ -10,7 +11,7 @@ from rehedge.errors import ConfigError
 from rehedge.config import config_hash, load_config, parse_config
 from rehedge.schema import Config, DeltaBaseline, LelandBaseline
 
-DEMO = Path(__file__).resolve().parents[1] / "configs" / "demo.toml"
+DEMO = Path(__file__).resolve().parents[2] / "configs" / "demo.toml"
 
 # A small valid config; each bad case below changes exactly one thing in it.
 MINIMAL = """\
@@ -343,3 +344,28 @@ def test_config_error_is_a_value_error_and_records_its_source(tmp_path):
 def test_non_table_input_is_rejected():
     with pytest.raises(ConfigError, match="must be a table"):
         parse_config([1, 2, 3])  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize("change, message", [
+    # Issue: grid_dp on a Merton market passed check-config and failed in training.
+    ({"market": {"model": "merton", "spot": 100.0, "volatility": 0.2, "jump_intensity": 1.0, "jump_mean": -0.05,
+                 "jump_std": 0.1}, "agents": [{"kind": "grid_dp"}]},
+     "agents[0].kind: grid_dp solves a one-factor GBM market only, got market.model = 'merton'"),
+    ({"agents": [{"kind": "fitted_q", "regressor": "extra_trees", "regressor_params": {"n_estimator": 5}}]},
+     "agents[0].regressor_params: unknown parameter 'n_estimator' for extra_trees (did you mean 'n_estimators'?)"),
+    ({"frictions": {"cost_rate": 0.001, "permanent_impact": 2.0, "adv_shares": 1000.0}},
+     "frictions.permanent_impact: permanent_impact x notional shares / adv_shares must be <= 1 (a trade of the "
+     "whole book moves the price by at most a factor e), got 3"),
+])
+def test_rules_that_training_relies_on_are_checked_when_the_config_is_loaded(change, message):
+    data = tomllib.loads(MINIMAL)
+    data.update(change)
+    with pytest.raises(ConfigError) as error:
+        parse_config(data)
+    assert str(error.value) == message
+
+
+def test_a_misspelt_key_is_named_with_the_closest_valid_one():
+    with pytest.raises(ConfigError) as error:
+        parse_config(tomllib.loads(MINIMAL.replace("cost_rate = ", "cost_rat = ")))
+    assert str(error.value) == "frictions.cost_rat: unknown key 'cost_rat' (did you mean 'cost_rate'?)"

@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from agents.baselines import DeltaHedge, FixedBand, NoHedge
 from rehedge.compare import evaluate_policies, paired_bootstrap
+from rehedge.errors import PolicyError
 from hedge_env.env import default_problem
 
 
@@ -86,3 +88,31 @@ def test_quotes_of_a_zero_cost_delta_hedge_tend_to_the_black_scholes_price_as_re
         assert 2.5 < a0 / a1 < 6.0 and 2.5 < b0 / b1 < 6.0
     ask, bid, se = excess[-1]
     assert abs(ask - 0.5 * (ask + bid)) < 4 * se  # at N = 128 the two sides are symmetric within MC error
+
+
+class _BrokenAfter:
+    """Delta hedging until decision ``k``, then ``value`` on one row."""
+
+    def __init__(self, problem, k: int, row: int, value: float):
+        self.delta, self.k, self.row, self.value, self.name = DeltaHedge(problem), k, row, value, "broken"
+        self.problem = problem
+
+    def act(self, obs):
+        targets = self.delta.act(obs)
+        if np.isclose(obs[0, 1], self.problem.years_to_horizon(self.k)):
+            targets = targets.copy()
+            targets[self.row] = self.value
+        return targets
+
+
+@pytest.mark.parametrize("value", [np.nan, np.inf, -np.inf])
+def test_a_policy_naming_a_non_finite_target_stops_the_comparison_in_one_line(value):
+    problem, market = default_problem()
+    policies = {"delta": DeltaHedge(problem), "broken": _BrokenAfter(problem, 3, 17, value)}
+    with pytest.raises(PolicyError) as error:
+        evaluate_policies(problem, policies, market, 3000, seed=5, chunk_paths=1000)
+    message = str(error.value)
+    assert "\n" not in message
+    assert message.startswith(f"policy 'broken' named a target of {value * problem.notional_shares} shares at "
+                              "decision 3 of path ")
+    assert message.endswith(": targets must be finite numbers")

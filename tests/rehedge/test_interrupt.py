@@ -4,6 +4,7 @@ and the next run is unaffected; the same config and seed give a byte-identical m
 from __future__ import annotations
 
 import json
+import os
 import signal
 import subprocess
 import sys
@@ -12,27 +13,35 @@ from pathlib import Path
 
 import pytest
 
-from tests.test_cli import SMALL
+from rehedge.runner import PAUSE_ENVIRONMENT
+from tests.scenarios import SMALL
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
-def start_run(config: Path, runs: Path) -> subprocess.Popen:
+def start_run(config: Path, runs: Path, pause: Path | None = None) -> subprocess.Popen:
+    """``rehedge run`` in a process of its own; with ``pause``, it stops before its held-out stage for as
+    long as that file exists (rehedge.runner.PAUSE_ENVIRONMENT)."""
+    environment = dict(os.environ)
+    if pause is not None:
+        pause.touch()
+        environment[PAUSE_ENVIRONMENT] = str(pause)
     return subprocess.Popen([sys.executable, "-c", "from rehedge.cli import main; main()", "run", str(config),
                              "--runs-dir", str(runs), "--quiet", "--json"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT, env=environment)
 
 
-def wait_for_staging(process: subprocess.Popen, runs: Path, timeout_s: float = 300.0) -> Path:
-    """The run's .partial folder, once training is written and held-out scoring has begun."""
+def wait_until_paused(process: subprocess.Popen, runs: Path, pause: Path, timeout_s: float = 600.0) -> Path:
+    """The run's .partial folder once the run has stopped at its pause: training written, held-out
+    scoring not begun. The deadline only ends a hung test; nothing here depends on speed."""
+    reached = Path(str(pause) + ".reached")
     deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        found = [p for p in runs.glob("*.partial") if (p / "manifest.json").is_file()]
-        if found:
-            return found[0]
+    while not reached.exists():
         assert process.poll() is None, process.communicate()
+        assert time.monotonic() < deadline, "the run never reached its held-out stage"
         time.sleep(0.05)
-    raise AssertionError("the run never reached its held-out stage")
+    (staging,) = [p for p in runs.glob("*.partial") if (p / "manifest.json").is_file()]
+    return staging
 
 
 def complete_runs(runs: Path) -> list[Path]:
@@ -42,15 +51,14 @@ def complete_runs(runs: Path) -> list[Path]:
 @pytest.fixture
 def config(tmp_path) -> Path:
     path = tmp_path / "small.toml"
-    # More held-out paths, so the held-out stage lasts long enough to be interrupted in.
-    path.write_text(SMALL.replace("heldout_paths = 1500", "heldout_paths = 60000"))
+    path.write_text(SMALL)
     return path
 
 
 def test_a_killed_run_leaves_only_a_partial_folder_that_nothing_reads_and_the_next_run_completes(config, tmp_path):
     runs = tmp_path / "runs"
-    process = start_run(config, runs)
-    staging = wait_for_staging(process, runs)
+    process = start_run(config, runs, tmp_path / "pause")
+    staging = wait_until_paused(process, runs, tmp_path / "pause")
     process.send_signal(signal.SIGKILL)
     process.communicate()
     assert complete_runs(runs) == []
@@ -76,8 +84,8 @@ def test_a_killed_run_leaves_only_a_partial_folder_that_nothing_reads_and_the_ne
 
 def test_ctrl_c_removes_the_unfinished_folder_and_says_so_in_one_line(config, tmp_path):
     runs = tmp_path / "runs"
-    process = start_run(config, runs)
-    wait_for_staging(process, runs)
+    process = start_run(config, runs, tmp_path / "pause")
+    wait_until_paused(process, runs, tmp_path / "pause")
     process.send_signal(signal.SIGINT)
     _, stderr = process.communicate(timeout=120)
     assert process.returncode == 130

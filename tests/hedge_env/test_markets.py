@@ -33,7 +33,7 @@ from hedge_env.market import BLOCK_PATHS, HestonMarket, MertonMarket
 
 ql = pytest.importorskip("QuantLib")
 
-CONFIGS = Path(__file__).resolve().parent.parent / "configs"
+CONFIGS = Path(__file__).resolve().parents[2] / "configs"
 RATE, DIVIDEND = 0.03, 0.01
 DT_YEARS = 1.0 / 365.0
 DAYS = 60

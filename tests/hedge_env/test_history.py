@@ -19,6 +19,7 @@ import pandas as pd
 import pytest
 
 from agents.baselines import DeltaHedge
+from agents.registry import LEARNED_FROM_TRANSITIONS
 from rehedge.errors import ConfigError
 from rehedge.config import parse_config
 from rehedge.compare import evaluate_policies
@@ -37,7 +38,7 @@ from hedge_env.history import (
 from hedge_env.problem import HedgingProblem, Schedule
 from hedge_env.rollout import rollout
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 DAYS_PER_YEAR = 252
 
 
@@ -346,12 +347,16 @@ def test_shipped_history_config_loads_with_implied_marks():
     assert path_count(heldout, config.data.heldout_paths) == heldout.max_paths < config.data.heldout_paths
 
 
-def test_linear_agent_trains_and_evaluates_on_the_historical_config(tmp_path):
+def test_every_learned_agent_trains_and_evaluates_on_the_historical_config_with_implied_marks(tmp_path):
+    # The shipped config marks at each date's implied volatility, which the agents observe.
     data = tomllib.loads((ROOT / "configs" / "historical.toml").read_text())
+    assert data["market"]["marks"] == "implied"
     data["market"]["csv"] = str(ROOT / "configs" / "data" / "nwtp-history.csv")
     data["data"].update(train_paths=400, chunk_paths=200)
     data["baselines"] = [{"kind": "no_hedge"}, {"kind": "delta"}]
-    data["agents"] = [{"kind": "linear"}]
+    learned = sorted(LEARNED_FROM_TRANSITIONS)
+    data["agents"] = [{"kind": kind, **({"regressor_params": {"max_iter": 10}} if kind == "fitted_q" else {})}
+                      for kind in learned]
     config = parse_config(data)
     training = train(config)
     assert training.sizes["train_paths"] == 400
@@ -359,12 +364,21 @@ def test_linear_agent_trains_and_evaluates_on_the_historical_config(tmp_path):
     n_paths = path_count(heldout, config.data.heldout_paths)
     evaluation = evaluate_policies(training.problem, training.policies, heldout, n_paths, config.data.heldout_seed)
     table = evaluation.table
-    assert set(table.index) == {"no_hedge", "delta", "linear"}
+    assert set(table.index) == {"no_hedge", "delta", *learned}
     assert (table["paths"] == heldout.max_paths).all()
     assert np.isfinite(table["objective"]).all()
     # Hedging beats not hedging on the held-out history (a 40-contract spread, 21 daily rehedges).
-    assert table.loc["delta", "std_pnl"] < table.loc["no_hedge", "std_pnl"]
-    assert table.loc["linear", "std_pnl"] < table.loc["no_hedge", "std_pnl"]
+    for name in ("delta", *learned):
+        assert table.loc[name, "std_pnl"] < table.loc["no_hedge", "std_pnl"]
+
+
+def test_the_grid_optimum_is_refused_on_a_history_when_the_config_is_loaded():
+    data = tomllib.loads((ROOT / "configs" / "historical.toml").read_text())
+    data["market"]["csv"] = str(ROOT / "configs" / "data" / "nwtp-history.csv")
+    data["agents"] = [{"kind": "grid_dp"}]
+    with pytest.raises(ConfigError, match=r"^agents\[0\]\.kind: grid_dp solves a one-factor GBM market only, "
+                                          r"got market.model = 'historical'$"):
+        parse_config(data)
 
 
 def test_run_folder_states_both_date_ranges(tmp_path):

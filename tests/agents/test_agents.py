@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import RegularGridInterpolator
 from sklearn.base import clone
+from sklearn.exceptions import NotFittedError
 from sklearn.linear_model import Ridge
 from sklearn.neighbors import KNeighborsRegressor
 from threadpoolctl import threadpool_limits
@@ -36,6 +37,7 @@ from agents.features import POLYNOMIAL_BASIS, basis_columns, combination, hedge_
 from agents.fitted_q import FittedQAgent
 from agents.fitted_q import _bilinear as table_bilinear
 from agents.linear import LinearBasisAgent
+from agents.registry import AGENTS as AGENT_KINDS
 from hedge_env.env import default_problem
 from hedge_env.frictions import Frictions
 from hedge_env.rollout import rollout, rollout_many
@@ -397,3 +399,11 @@ def test_same_seed_gives_identical_transitions_and_another_seed_does_not():
     for name in ("obs", "actions", "rewards", "next_obs", "next_holding"):
         assert np.array_equal(getattr(first, name), getattr(again, name))
         assert not np.array_equal(getattr(first, name), getattr(other, name))
+
+
+@pytest.mark.parametrize("kind", sorted(AGENT_KINDS))
+def test_an_unfitted_agent_refuses_to_act_with_scikit_learns_not_fitted_error(kind):
+    # scikit-learn's convention (common practice, no source): predicting before fit raises NotFittedError.
+    problem, _ = default_problem()
+    with pytest.raises(NotFittedError):
+        AGENT_KINDS[kind](problem).act(np.array([[1.0, problem.horizon_years, 0.0]]))
