@@ -32,8 +32,11 @@ class Frictions:
     permanent_impact : float
         gamma: after a trade of ``d`` shares every later price is multiplied
         by ``exp(gamma * d / adv)``; the hedger's own trades move the market.
-        The trade itself fills halfway through that move (a cost, counted
-        with the impact cost).
+        The trade itself fills halfway through that move. The step reports
+        as impact cost what the desk loses to its own impact, net: that fill
+        cost less the gain its own move of the price adds to the holding it
+        keeps, which the hedge gain then leaves out. A buy-then-sell round
+        trip with no market move nets zero P&L and reports zero impact cost.
     adv_shares : float
         Average daily volume, shares.
     cash_rate : float

@@ -218,6 +218,14 @@ def hedge_step(
         cash += settled
     pnl = hedge_gain + book_change
     pnl -= paid
+    if plan.permanent_impact:
+        # What the desk loses to its own impact, net: the fill cost less what the trade's own move of
+        # the price adds to the holding it keeps (target x S' x (1 - 1/factor)). A round trip with no
+        # market move then reports zero here, as its P&L is, and the parts still add up to the P&L.
+        own_gain = spot_next - spot_next / factor
+        own_gain *= target
+        hedge_gain = hedge_gain - own_gain
+        impact_cost = impact_cost - own_gain
     if plan.financing:
         pnl += financing
         cash += financing

@@ -161,30 +161,36 @@ def evaluate(
     seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+    threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
     tables: list[Path] = typer.Option(
         None, "--table", help="Also score this hedge table (folder or table.json; repeatable); it must be "
                               "exported for the same book, reference spot and schedule."),
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
-    cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet, tables or ())
+    cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet, tables or (), threads)
     _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
 
 
-def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=()):
+def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=(), threads: int | None = None):
     """Policies of a config or run folder (and hedge tables) on its held-out paths, with CIs and quotes."""
+    from threadpoolctl import threadpool_limits
+
     from rehedge.compare import evaluate_with_quotes
     from rehedge.tables.reader import tables_as_policies
 
     with _progress(quiet) as start:
-        cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
+        # Loading and tuning run before the config's own thread count is read: one thread, or --threads.
+        with threadpool_limits(limits=threads or 1):
+            cfg, problem, market, policies, tuning, kinds = _policies_of(source, start)
         loaded, table_kinds = tables_as_policies(tables, problem)
         policies, kinds = {**policies, **loaded}, {**kinds, **table_kinds}
         n_paths, seed = _heldout(cfg, market, paths, seed)
-        evaluation = evaluate_with_quotes(
-            problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
-            progress=start("hedging held-out paths (both sides of the book)", n_paths),
-            reference=_reference(cfg, policies), bootstrap_samples=cfg.report.bootstrap_samples,
-        )
+        with threadpool_limits(limits=threads or cfg.compute.threads):
+            evaluation = evaluate_with_quotes(
+                problem, policies, market, n_paths, seed, kinds=kinds, chunk_paths=cfg.data.chunk_paths,
+                progress=start("hedging held-out paths (both sides of the book)", n_paths),
+                reference=_reference(cfg, policies), bootstrap_samples=cfg.report.bootstrap_samples,
+            )
     return cfg, evaluation, tuning, n_paths, seed
 
 
@@ -192,12 +198,12 @@ def _reference(cfg, policies) -> str | None:
     return cfg.report.reference_policy if cfg.report.reference_policy in policies else None
 
 
-def _train(cfg, config: Path, runs_dir: Path, quiet: bool):
+def _train(cfg, config: Path, runs_dir: Path, quiet: bool, threads: int | None):
     from rehedge.training import train
     from rehedge.run_folder import write_run
 
     with _progress(quiet) as start:
-        training = train(cfg, start)
+        training = train(cfg, start, threads)
     return training, write_run(training, config.read_text(), runs_dir)
 
 
@@ -206,13 +212,14 @@ def train_command(
     config: Path = typer.Argument(..., help="TOML config file."),
     runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where run folders are written."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+    threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
 ) -> None:
     """Tune the baselines and fit every agent of CONFIG on its training paths; write a run folder
     (one per variant when the config has a sweep)."""
     from rehedge.config import load_variants
 
     for cfg in load_variants(config):
-        training, run_dir = _train(cfg, config, runs_dir, quiet)
+        training, run_dir = _train(cfg, config, runs_dir, quiet, threads)
         for line in training.log:
             console.print(line, highlight=False)
         console.print(f"run folder: {run_dir}", highlight=False)
@@ -225,6 +232,7 @@ def run(
     runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where run folders are written."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+    threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
 ) -> None:
     """The main job: train every agent, then score agents and baselines on the same held-out paths
     (each variant in turn when the config has a sweep)."""
@@ -236,7 +244,7 @@ def run(
     sweep = len(variants) > 1
     for cfg in variants:
         with _progress(quiet) as start:
-            outcome = run_config(cfg, config.read_text(), runs_dir, paths, start, report=not sweep)
+            outcome = run_config(cfg, config.read_text(), runs_dir, paths, start, report=not sweep, threads=threads)
         run_dirs.append(outcome.run_dir)
         _records_out(cfg, outcome.heldout_paths, outcome.heldout_seed, outcome.evaluation,
                      outcome.training.tuning, as_json, outcome.run_dir)
@@ -252,10 +260,11 @@ def quote(
         None, "--table", help="Also quote with this hedge table (folder or table.json; repeatable)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+    threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
 
-    cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or ())
+    cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or (), threads)
 
     rows = evaluation.to_records()
     if as_json:

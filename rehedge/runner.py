@@ -16,11 +16,13 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from rehedge.schema import Config
-from rehedge.compare import Evaluation, evaluate_with_quotes, write_metrics
+from threadpoolctl import threadpool_limits
+
 from rehedge.build import path_count
-from rehedge.training import ProgressStart, Training, no_progress, train
+from rehedge.compare import Evaluation, evaluate_with_quotes, write_metrics
 from rehedge.run_folder import finish_run, write_run
+from rehedge.schema import Config
+from rehedge.training import ProgressStart, Training, no_progress, train
 
 
 # Tests that stop a run part-way name a file here: the run then stops before its held-out stage, with
@@ -50,7 +52,8 @@ class RunOutcome:
 
 
 def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_paths: int | None = None,
-               start: ProgressStart = no_progress, report: bool = True, extra: dict | None = None) -> RunOutcome:
+               start: ProgressStart = no_progress, report: bool = True, extra: dict | None = None,
+               threads: int | None = None) -> RunOutcome:
     """Train every agent of ``config``, score all policies on the same held-out paths (paired CIs
     and quotes) and write the run folder under ``runs_dir``.
 
@@ -68,7 +71,14 @@ def run_config(config: Config, config_text: str, runs_dir: str | Path, heldout_p
         Build ``report.html`` (a sweep's cells may skip it).
     extra : dict, optional
         More entries for ``manifest.json``.
+    threads : int, optional
+        BLAS and OpenMP threads (default ``compute.threads``); the numbers do not depend on it.
     """
+    with threadpool_limits(limits=threads or config.compute.threads):
+        return _run_config(config, config_text, runs_dir, heldout_paths, start, report, extra)
+
+
+def _run_config(config, config_text, runs_dir, heldout_paths, start, report, extra) -> RunOutcome:
     from rehedge.report import build_report
     from rehedge.tables.export import export_policy
 

@@ -599,6 +599,13 @@ AgentSpec = Annotated[
 ]
 
 
+class ComputeSpec(_Spec):
+    """How much of the machine a run uses."""
+
+    threads: int = Field(1, ge=1, description="BLAS and OpenMP threads of training and scoring: 1 keeps a busy "
+                                              "machine from oversubscribing; results are the same at any count.")
+
+
 class ReportSpec(_Spec):
     """Held-out report settings."""
 
@@ -641,6 +648,7 @@ class Config(_Spec):
     )
     agents: list[AgentSpec] = Field(default_factory=list, description="Learned policies to train.")
     report: ReportSpec = Field(default_factory=ReportSpec, description="Report settings.")
+    compute: ComputeSpec = Field(default_factory=ComputeSpec, description="Threads of native code.")
     export: ExportSpec = Field(default_factory=ExportSpec, description="Export settings.")
     sweep: dict[str, Annotated[list[Any], Field(min_length=1)]] = Field(
         default_factory=dict,

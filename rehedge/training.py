@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from agents.dataset import Exploration, TransitionStore, Transitions, collect
 from agents.registry import LEARNED_FROM_TRANSITIONS
@@ -62,8 +63,14 @@ class Training:
         self.log.append(f"{datetime.now(timezone.utc).isoformat(timespec='seconds')} {line}")
 
 
-def train(config: Config, start: ProgressStart = no_progress) -> Training:
-    """Tune the baselines and fit every agent of ``config`` on its training paths."""
+def train(config: Config, start: ProgressStart = no_progress, threads: int | None = None) -> Training:
+    """Tune the baselines and fit every agent of ``config`` on its training paths, with BLAS and OpenMP
+    limited to ``threads`` threads (default ``compute.threads``; the fit does not depend on it)."""
+    with threadpool_limits(limits=threads or config.compute.threads):
+        return _train(config, start)
+
+
+def _train(config: Config, start: ProgressStart) -> Training:
     problem = build_problem(config)
     market, heldout_market = build_markets(config)
     agents = {spec.name: build_agent(spec, problem, market) for spec in config.agents}

@@ -94,6 +94,9 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     impact1 = 1.0 * math.exp(PERMANENT_GAMMA * trade / ADV_SHARES)
     s1 = x[1] * impact1
     cash_after_trade = cash0 - trade * s0 - cost - impact_cost
+    # Reported: the holding's gain from the trade's own move of the price is netted out of the impact
+    # cost and left out of the hedge gain (frictions.py).
+    own_gain = a[0] * (s1 - s1 / math.exp(PERMANENT_GAMMA * trade / ADV_SHARES))
     financing = (cash_after_trade * interest + a[0] * s0 * DIVIDEND_YIELD * dt
                  - BORROW_FEE * max(-a[0], 0.0) * s0 * dt)
     call1, call_delta1 = _call(s1, 7.0)
@@ -103,8 +106,8 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     step0 = dict(
         spot=s1, impact=impact1, holding=a[0], held=a[0], cash=cash1, mark=mark1,
         delta=-call_delta1 + put_delta1,
-        hedge_gain=a[0] * (s1 - s0), book_change=mark1 - mark0, financing=financing,
-        trading_cost=cost, impact_cost=impact_cost, traded_shares=abs(trade), trades=int(trade != 0),
+        hedge_gain=a[0] * (s1 - s0) - own_gain, book_change=mark1 - mark0, financing=financing,
+        trading_cost=cost, impact_cost=impact_cost - own_gain, traded_shares=abs(trade), trades=int(trade != 0),
         pnl=(cash1 + a[0] * s1 + mark1) - (cash0 + 0.0 * s0 + mark0),  # wealth change
     )
 
@@ -117,6 +120,7 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     impact2 = impact1 * math.exp(PERMANENT_GAMMA * trade / ADV_SHARES)
     s2 = x[2] * impact2
     cash_after_trade = cash1 - trade * s1 - cost - impact_cost
+    own_gain = a[1] * (s2 - s2 / math.exp(PERMANENT_GAMMA * trade / ADV_SHARES))
     financing = (cash_after_trade * interest + a[1] * s1 * DIVIDEND_YIELD * dt
                  - BORROW_FEE * max(-a[1], 0.0) * s1 * dt)
     put_payoff = max(PUT_STRIKE - s2, 0.0)  # long one put: received
@@ -125,8 +129,8 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     cash2 = cash_after_trade + put_payoff + financing
     step1 = dict(
         spot=s2, impact=impact2, holding=a[1], held=a[1], cash=cash2, mark=mark2, delta=-call_delta2,
-        hedge_gain=a[1] * (s2 - s1), book_change=(mark2 + put_payoff) - mark1, financing=financing,
-        trading_cost=cost, impact_cost=impact_cost, traded_shares=abs(trade), trades=int(trade != 0),
+        hedge_gain=a[1] * (s2 - s1) - own_gain, book_change=(mark2 + put_payoff) - mark1, financing=financing,
+        trading_cost=cost, impact_cost=impact_cost - own_gain, traded_shares=abs(trade), trades=int(trade != 0),
         pnl=(cash2 + a[1] * s2 + mark2) - (cash1 + a[0] * s1 + mark1),
     )
 
@@ -139,6 +143,7 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     impact3 = impact2 * math.exp(PERMANENT_GAMMA * trade / ADV_SHARES)
     s3 = x[3] * impact3
     cash_after_trade = cash2 - trade * s2 - cost - impact_cost
+    own_gain = a[2] * (s3 - s3 / math.exp(PERMANENT_GAMMA * trade / ADV_SHARES))
     financing = (cash_after_trade * interest + a[2] * s2 * DIVIDEND_YIELD * dt
                  - BORROW_FEE * max(-a[2], 0.0) * s2 * dt)
     call_in_the_money = s3 > CALL_STRIKE
@@ -159,8 +164,8 @@ def hand_path(x: list[float], a: list[float], settlement: str) -> tuple[dict, li
     mark3 = 0.0
     step2 = dict(
         spot=s3, impact=impact3, holding=0.0, held=a[2], cash=cash3, mark=mark3, delta=0.0,
-        hedge_gain=a[2] * (s3 - s2), book_change=-max(s3 - CALL_STRIKE, 0.0) - mark2, financing=financing,
-        trading_cost=cost + unwind_cost, impact_cost=impact_cost + unwind_impact,
+        hedge_gain=a[2] * (s3 - s2) - own_gain, book_change=-max(s3 - CALL_STRIKE, 0.0) - mark2, financing=financing,
+        trading_cost=cost + unwind_cost, impact_cost=impact_cost + unwind_impact - own_gain,
         traded_shares=abs(trade) + unwind, trades=int(trade != 0) + int(unwind != 0),
         pnl=cash3 - (cash2 + a[1] * s2 + mark2),  # holding 0 and no book left after the horizon
     )
@@ -362,3 +367,48 @@ def test_position_limit_clips_targets_in_vector_and_scalar_steps():
     assert hedge_step(problem, scalar, 2.0, 100.0, scalar=True).held == 0.5
     assert hedge_step(problem, scalar, -3.0, 100.0, scalar=True).held == -0.5
     assert hedge_step(problem, scalar, 0.2, 100.0, scalar=True).held == 0.2
+
+
+@pytest.mark.parametrize("scalar", [False, True])
+def test_a_round_trip_with_no_market_move_nets_zero_pnl_and_zero_impact_in_every_part(scalar):
+    # Permanent impact model (common practice, no source: the linear-in-trade log impact of the
+    # market-impact literature): buy d, every later price times f = exp(gamma d / ADV), the buy fills
+    # at the mean of the mids; sell d back, the price returns. A material impact: gamma d / ADV = 0.1.
+    gamma, adv, shares, spot = 0.1, 1000.0, 1000.0, 100.0
+    problem = HedgingProblem(
+        book=Book((OptionLeg("put", 1.0, 30.0, quantity=-1.0),)),  # worth 0 at every spot here
+        marks=MarkParameters(0.2, 0.0, 0.0, 365.0),
+        frictions=Frictions(permanent_impact=gamma, adv_shares=adv),
+        objective=Objective(risk_aversion=0.0),
+        schedule=Schedule(steps=2, step_days=1.0, settlement="liquidate"),
+        reference_spot=spot,
+    )
+    f = math.exp(gamma * shares / adv)
+    if scalar:
+        state = initial_state(problem, spot, scalar=True)
+        buy = hedge_step(problem, state, shares, spot, scalar=True)
+        sell = hedge_step(problem, buy.state, 0.0, spot, scalar=True)
+    else:
+        state = initial_state(problem, np.array([spot]))
+        buy = hedge_step(problem, state, np.array([shares]), np.array([spot]))
+        sell = hedge_step(problem, buy.state, np.array([0.0]), np.array([spot]))
+    assert _one(buy.state.spot) == pytest.approx(spot * f, rel=1e-14)
+    assert _one(sell.state.spot) == pytest.approx(spot, rel=1e-14)
+    # The buy's step P&L: the holding is marked at the mid its own buying raised, less the fill cost.
+    assert _one(buy.pnl) == pytest.approx(0.5 * shares * spot * (f - 1.0), rel=1e-12)
+    # Reported: no hedge gain (the market did not move); the own move of the price, net of the fill,
+    # is in the impact cost, which over the round trip is zero, as the P&L is.
+    for outcome in (buy, sell):
+        assert _one(outcome.hedge_gain) == pytest.approx(0.0, abs=1e-9)
+        assert _one(outcome.book_change) == 0.0 and _one(outcome.trading_cost) == 0.0
+        parts = outcome.hedge_gain + outcome.book_change + outcome.financing - outcome.trading_cost - outcome.impact_cost
+        assert _one(parts) == pytest.approx(_one(outcome.pnl), rel=1e-12, abs=1e-9)
+    assert _one(buy.impact_cost) == pytest.approx(-0.5 * shares * spot * (f - 1.0), rel=1e-12)
+    assert _one(sell.impact_cost) == pytest.approx(0.5 * shares * spot * (f - 1.0), rel=1e-12)
+    assert _one(buy.pnl + sell.pnl) == pytest.approx(0.0, abs=1e-9)
+    assert _one(buy.impact_cost + sell.impact_cost) == pytest.approx(0.0, abs=1e-9)
+
+
+def _one(value) -> float:
+    """The single number of a float or a one-path array."""
+    return float(np.asarray(value).reshape(-1)[0])
