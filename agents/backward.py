@@ -38,7 +38,7 @@ import numpy as np
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
-from agents.dataset import Transitions
+from agents.dataset import Transitions, replayed_impact, replayed_next_spots
 from agents.features import StateFeatures, basis_columns, hedge_move, state_features
 from hedge_env.problem import HedgingProblem
 
@@ -101,9 +101,13 @@ def _chunks(data: TransitionSource) -> Iterable[Transitions]:
     return [data] if isinstance(data, Transitions) else data()
 
 
-def return_moment_sums(chunk: Transitions) -> tuple[float, float, int]:
-    """Sum and sum of squares of the one-step simple returns of a chunk, and their count."""
-    simple = chunk.next_obs[..., 0] / chunk.obs[..., 0] - 1.0
+def return_moment_sums(chunk: Transitions, problem: HedgingProblem) -> tuple[float, float, int]:
+    """Sum and sum of squares of the one-step simple returns of a chunk's market (without the
+    behaviour's own impact, under permanent impact), and their count."""
+    simple = chunk.next_obs[..., 0] / chunk.obs[..., 0]
+    if problem.frictions.permanent_impact:
+        simple = simple / np.stack([replayed_impact(problem, chunk, k)[:, 0] for k in range(chunk.steps)])
+    simple = simple - 1.0
     return float(simple.sum()), float((simple * simple).sum()), simple.size
 
 
@@ -127,7 +131,7 @@ class BackwardQAgent(BaseEstimator):
         """Fit from transitions: a Transitions block, or a callable returning an iterable of blocks
         (called once per decision time, so the data may be streamed from paths)."""
         steps = self.problem.schedule.steps
-        self._begin_fit([return_moment_sums(chunk) for chunk in _chunks(data)])
+        self._begin_fit([return_moment_sums(chunk, self.problem) for chunk in _chunks(data)])
         for k in reversed(range(steps)):
             self._start_step(k)
             for chunk in _chunks(data):
@@ -166,14 +170,29 @@ class BackwardQAgent(BaseEstimator):
         X = basis_columns(self.terms, state, targets)
         y = chunk.rewards[k] - self._known(state, targets)
         notional, spot = problem.notional_shares, state.spot
-        move = chunk.next_obs[k, :, 0] * problem.reference_spot - spot
-        move_surprise = move - spot * np.expm1(self.drift_ * problem.dt_years)
-        square_surprise = move * move - spot * spot * self.mean_squared_return_
         gap_shares = (targets - state.hedge[:, None]) * notional
-        y = y - targets * (notional * move_surprise)[:, None]
-        y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise[:, None]
+        factors = replayed_impact(problem, chunk, k)
+        growth = np.expm1(self.drift_ * problem.dt_years)
+        if factors is None:
+            # Every tried target sees the same market move.
+            move = chunk.next_obs[k, :, 0] * problem.reference_spot - spot
+            move_surprise = (move - spot * growth)[:, None]
+            square_surprise = (move * move - spot * spot * self.mean_squared_return_)[:, None]
+            next_moneyness = None
+        else:
+            # Each target moved the market by its own factor f: E[S' | s, a] = S f (1 + m1) and
+            # E[(S' - S)^2 | s, a] = S^2 (f^2 E[R^2] - 2 f (1 + m1) + 1), R the market's return.
+            next_spots = replayed_next_spots(problem, chunk, k)
+            move = next_spots - spot[:, None]
+            move_surprise = move - spot[:, None] * (factors * (1.0 + growth) - 1.0)
+            second = self.mean_squared_return_ + 2.0 * growth + 1.0
+            square_surprise = move * move - (spot * spot)[:, None] * (
+                factors * factors * second - 2.0 * factors * (1.0 + growth) + 1.0)
+            next_moneyness = next_spots / problem.reference_spot
+        y = y - targets * (notional * move_surprise)
+        y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise
         if not chunk.done(k):
-            y = y + self.value(chunk.next_observations(k), k + 1).reshape(y.shape)
+            y = y + self.value(chunk.next_observations(k, next_moneyness), k + 1).reshape(y.shape)
         return X, y
 
     # -- using the fitted Q ------------------------------------------------------------------

@@ -90,11 +90,16 @@ class Transitions:
     def done(self, k: int) -> bool:
         return k == self.steps - 1
 
-    def next_observations(self, k: int) -> np.ndarray:
-        """(n * M, n_obs) next observations of every tried action at step ``k`` (row-major in (n, M))."""
+    def next_observations(self, k: int, next_moneyness: np.ndarray | None = None) -> np.ndarray:
+        """(n * M, n_obs) next observations of every tried action at step ``k`` (row-major in (n, M)).
+
+        ``next_moneyness`` (n, M): each tried target's own next spot over the reference spot, where
+        the target moves the market (permanent impact; :func:`replayed_next_spots`)."""
         n, m = self.actions.shape[1:]
         tiled = np.repeat(self.next_obs[k], m, axis=0)
         tiled[:, 2] = self.next_holding[k].reshape(n * m)
+        if next_moneyness is not None:
+            tiled[:, 0] = next_moneyness.reshape(n * m)
         return tiled
 
     def flat(self) -> dict[str, np.ndarray]:
@@ -156,6 +161,28 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
         state = _first_rows(outcome.state, n)  # the trajectory follows the behaviour action
         next_obs[k] = observe(problem, state, [factors[f][k + 1] for f in observed])
     return Transitions(obs, actions, rewards, next_obs, next_holding)
+
+
+def replayed_impact(problem: HedgingProblem, chunk: Transitions, k: int) -> np.ndarray | None:
+    """(n, M) factor ``exp(gamma d / ADV)`` by which each tried target's own trade at step ``k`` moves
+    every later price (hedge_env.frictions.Frictions.impact_factor of the clipped trade); None
+    without permanent impact, where every target sees the same next spot."""
+    frictions = problem.frictions
+    if not frictions.permanent_impact:
+        return None
+    notional = problem.notional_shares
+    trade = frictions.clip_target(chunk.actions[k] * notional) - (chunk.obs[k, :, 2] * notional)[:, None]
+    return frictions.impact_factor(trade, np.exp)
+
+
+def replayed_next_spots(problem: HedgingProblem, chunk: Transitions, k: int) -> np.ndarray:
+    """(n, M) next spot of every tried target at step ``k``: the behaviour's (column 0) where targets do
+    not move the market, else rescaled by each target's impact factor over the behaviour's."""
+    behaviour = chunk.next_obs[k, :, 0] * problem.reference_spot
+    factors = replayed_impact(problem, chunk, k)
+    if factors is None:
+        return np.broadcast_to(behaviour[:, None], chunk.actions[k].shape)
+    return behaviour[:, None] * (factors / factors[:, :1])
 
 
 def collect_chunks(problem: HedgingProblem, source: PathGenerator | MarketPaths, n_paths: int, seed: int,

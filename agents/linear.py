@@ -130,7 +130,7 @@ class LinearBasisAgent(BackwardQAgent):
         coefficients fitted so far, summed in chunk order and solved: the numbers
         of :meth:`fit` streaming the same chunks.
         """
-        self._begin_fit(map_chunks(return_moment_sums))
+        self._begin_fit(map_chunks(return_moment_sums, self.problem))
         for k in reversed(range(self.problem.schedule.steps)):
             self._start_step(k)
             for statistics in map_chunks(chunk_statistics, self, k):

@@ -32,7 +32,7 @@ from threadpoolctl import threadpool_limits
 
 from agents.backward import DEFAULT_BAND_WIDTHS, candidate_targets
 from agents.baselines import DeltaHedge
-from agents.dataset import Exploration, Transitions, collect_chunks
+from agents.dataset import Exploration, Transitions, collect_chunks, replayed_next_spots
 from agents.features import POLYNOMIAL_BASIS, basis_columns, combination, hedge_move, state_features
 from agents.fitted_q import FittedQAgent
 from agents.fitted_q import _bilinear as table_bilinear
@@ -383,6 +383,42 @@ def test_dataset_rewards_are_the_step_function_rewards_of_every_tried_target():
             np.testing.assert_allclose(data.next_holding[k, :, j], outcome.state.holding / notional, rtol=0,
                                        atol=1e-12)
         state = hedge_step(problem, state, data.actions[k, :, 0] * notional, paths.spot[:, k + 1]).state
+
+
+def test_under_permanent_impact_every_replayed_target_gets_the_next_spot_hedge_step_gives_it():
+    # A material impact: a trade of one notional moves every later price by exp(0.1) (about 10.5%).
+    # Each tried target moves the market differently, so its next spot, its next observation and its
+    # reward must be hedge_step's for that target (the step's accounting, hedge_env/step.py).
+    problem, market = reference(0.001)
+    notional = problem.notional_shares
+    problem = replace(problem, frictions=Frictions(cost_rate=0.001, permanent_impact=0.1, adv_shares=notional))
+    data = small_data(problem, market)
+    paths = market.generate(SMALL_PATHS, problem.schedule.steps, problem.dt_years, SMALL_SEED)
+    n, m = data.n_states, data.actions.shape[2]
+    state = initial_state(problem, paths.spot[:, 0])
+    largest_gap = 0.0
+    for k in range(problem.schedule.steps):
+        spots = replayed_next_spots(problem, data, k)
+        next_obs = data.next_observations(k, spots / problem.reference_spot).reshape(n, m, -1)
+        for j in range(m):
+            outcome = hedge_step(problem, state, data.actions[k, :, j] * notional, paths.spot[:, k + 1])
+            np.testing.assert_allclose(data.rewards[k, :, j], outcome.reward, rtol=0, atol=1e-9)
+            np.testing.assert_allclose(spots[:, j], outcome.state.spot, rtol=1e-13, atol=0)
+            np.testing.assert_allclose(next_obs[:, j, 0], outcome.state.spot / problem.reference_spot,
+                                       rtol=1e-13, atol=0)
+            np.testing.assert_allclose(next_obs[:, j, 2], outcome.state.holding / notional, rtol=0, atol=1e-12)
+        largest_gap = max(largest_gap, float(np.max(np.abs(spots / spots[:, :1] - 1.0))))
+        state = hedge_step(problem, state, data.actions[k, :, 0] * notional, paths.spot[:, k + 1]).state
+    assert largest_gap > 0.01  # the targets really do move the market apart
+
+
+def test_a_learned_agent_fits_and_acts_under_permanent_impact():
+    problem, market = reference(0.001)
+    notional = problem.notional_shares
+    problem = replace(problem, frictions=Frictions(cost_rate=0.001, permanent_impact=0.1, adv_shares=notional))
+    agent = LinearBasisAgent(problem).fit(small_data(problem, market))
+    result = rollout(problem, agent, market, 2000, HELD_OUT_SEED)
+    assert np.isfinite(agent.coef_).all() and np.isfinite(result.reward).all()
 
 
 def test_delta_only_exploration_rewards_sum_to_the_delta_rollout_rewards_path_by_path():
