@@ -36,7 +36,8 @@ import numpy as np
 from rehedge.errors import UserError
 
 FORMAT = "rehedge-hedge-table"
-FORMAT_VERSION = 1
+# 2: a target outside the band is moved onto its nearer edge (the reading rule's step 4).
+FORMAT_VERSION = 2
 SIDECAR = "table.json"
 TARGETS_FILE = "targets.csv"
 BAND_FILE = "band.csv"
@@ -47,7 +48,8 @@ BAND_COLUMNS = ("days_left", "moneyness", "band_lower_shares", "band_upper_share
 INTERPOLATION_RULE = (
     "target: trilinear interpolation of target_shares in (days_left, moneyness, holding_shares) "
     "between the grid nodes around the point; band edges: bilinear in (days_left, moneyness); "
-    "a holding inside [band_lower_shares, band_upper_shares] keeps its holding (trade 0); "
+    "a holding inside [band_lower_shares, band_upper_shares] keeps its holding (trade 0), and from "
+    "outside it a target beyond the band is moved onto its nearer edge; "
     "each coordinate outside the domain is clamped to it and the decision flagged as clamped"
 )
 
@@ -246,6 +248,12 @@ class HedgeTable:
             _bilinear_corners(edge.ravel(), i * n_money + j, wi, wj, next_day // n_hold, next_money // n_hold)
             for edge in (self.band_lower, self.band_upper))
         inside = (held >= lower) & (held <= upper)  # NaN edges (no band) compare False
+        # Interpolated separately, the targets can fall outside the interpolated band (both are
+        # exact at the nodes only); a target is moved onto the nearer edge, so asking again from it
+        # trades no more.
+        banded = np.isfinite(lower) & np.isfinite(upper)
+        target = np.where(banded, np.clip(target, np.where(banded, lower, -np.inf), np.where(banded, upper, np.inf)),
+                          target)
         target = np.where(inside, held, target)
         return TableDecision(
             target.reshape(shape), (target - held).reshape(shape), lower.reshape(shape), upper.reshape(shape),

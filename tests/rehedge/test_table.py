@@ -14,7 +14,10 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from agents.baselines import DeltaHedge, FixedBand, WhalleyWilmottBand
+from agents.baselines import DeltaHedge, FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand
+from agents.dataset import Exploration, Transitions, collect_chunks
+from agents.fitted_q import FittedQAgent, default_regressor
+from agents.linear import LinearBasisAgent
 from rehedge.cli import CAUTION, app
 from rehedge.errors import ConfigError
 from rehedge.config import parse_config
@@ -76,7 +79,7 @@ def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
     problem, _, tables, _ = exported
     table = tables["grid_dp"]
     meta = table.meta
-    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 1
+    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 2
     n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
     assert (n_days, n_money, n_hold) == (10, 101, 41)
     assert meta["grid"]["days_left"] == [float(d) for d in range(1, 11)]  # days left at each rehedge
@@ -165,10 +168,51 @@ def test_another_format_version_is_refused(exported, tmp_path):
     _, _, tables, _ = exported
     copy = _copy(tables["fixed_band"], tmp_path)
     meta = json.loads((copy / "table.json").read_text())
-    meta["format_version"] = 2
+    meta["format_version"] = 1  # the version whose targets could fall outside their own band
     (copy / "table.json").write_text(json.dumps(meta))
-    with pytest.raises(TableError, match="format_version 2 is not supported by this reader"):
+    with pytest.raises(TableError, match="format_version 1 is not supported by this reader"):
         HedgeTable.load(copy / "table.json")
+
+
+@pytest.fixture(scope="module")
+def every_kind(exported, tmp_path_factory):
+    """A table of every policy kind on the small reference case: the exported ones, the other baselines
+    and both learned agents (fitted on a few hundred paths: a table must agree with itself whatever
+    its policy is worth)."""
+    problem, _, tables, _ = exported
+    folder = tmp_path_factory.mktemp("kinds")
+    market = GBMMarket(spot=100.0, volatility=0.2)
+    data = Transitions.concat(list(collect_chunks(problem, market, 400, 3, Exploration())))
+    sources = {
+        "no_hedge": NoHedge(problem), "delta": DeltaHedge(problem), "leland": LelandDelta(problem, cost_rate=0.005),
+        "linear": LinearBasisAgent(problem).fit(data),
+        "fitted_q": FittedQAgent(problem, regressor=default_regressor().set_params(max_iter=10)).fit(data),
+    }
+    made = {name: HedgeTable.load(export_table(policy, problem, folder / name, kind=name))
+            for name, policy in sources.items()}
+    return problem, {**tables, **made}
+
+
+@pytest.mark.parametrize("kind", ["no_hedge", "delta", "leland", "whalley_wilmott", "fixed_band", "grid_dp",
+                                  "linear", "fitted_q"])
+def test_a_table_target_lies_in_its_own_band_and_asking_again_from_it_trades_nothing(every_kind, kind):
+    problem, tables = every_kind
+    table = tables[kind]
+    rng = np.random.default_rng(17)
+    n = 4000
+    days_low, days_high = table.domain["days_left"]
+    spot_low, spot_high = table.domain["spot"]
+    hold_low, hold_high = table.domain["holding_shares"]
+    spot = rng.uniform(spot_low, spot_high, n)
+    days = rng.uniform(days_low, days_high, n)
+    held = rng.uniform(hold_low, hold_high, n)
+    first = table.decide(spot, days, held)
+    banded = np.isfinite(first.band_lower_shares) & np.isfinite(first.band_upper_shares)
+    target = first.target_shares
+    assert ((target[banded] >= first.band_lower_shares[banded]) & (target[banded] <= first.band_upper_shares[banded])).all()
+    again = table.decide(spot, days, target)
+    assert np.array_equal(again.trade_shares[banded], np.zeros(banded.sum()))
+    assert banded.mean() > 0.5 or kind == "no_hedge"
 
 
 def test_a_failed_export_writes_nothing(tmp_path):
