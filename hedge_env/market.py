@@ -138,7 +138,8 @@ class GBMMarket(SimulatedMarket):
     spot : float
         Starting spot, currency per share.
     drift : float
-        Annual drift of the price (real-world, includes any dividend effect).
+        Annual expected growth of the price, real-world: E[S_t] = S_0 exp(drift t). Dividends are
+        not in it: the step pays them to a long holding on top.
     volatility : float
         Annual volatility, decimal.
     """

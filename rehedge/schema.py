@@ -136,7 +136,7 @@ class GBMMarket(_Spec):
 
     model: Literal["gbm"] = Field(description="Price model of the underlying.")
     spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world drift of the underlying, annual decimal.")
+    drift: float = Field(0.0, description="Real-world expected growth of the price, annual decimal (E[S_t] = S_0 exp(drift t)); dividends are paid on top.")
     volatility: float = Field(gt=0, description="Real-world volatility of the underlying, annual decimal.")
     rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
     dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
@@ -160,7 +160,7 @@ class HestonMarket(_Spec):
 
     model: Literal["heston"] = Field(description="Price model of the underlying.")
     spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world expected return of the underlying, annual decimal.")
+    drift: float = Field(0.0, description="Real-world expected growth of the price, annual decimal (E[S_t] = S_0 exp(drift t)); dividends are paid on top.")
     initial_variance: float = Field(ge=0, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
     mean_reversion: float = Field(ge=0, description="Mean-reversion speed kappa of the variance, per year.")
     long_run_variance: float = Field(ge=0, description="Long-run variance theta, annual decimal^2.")
@@ -192,7 +192,7 @@ class MertonMarket(_Spec):
 
     model: Literal["merton"] = Field(description="Price model of the underlying.")
     spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world expected return, jumps included, annual decimal.")
+    drift: float = Field(0.0, description="Real-world expected growth of the price, jumps included, annual decimal (E[S_t] = S_0 exp(drift t)); dividends are paid on top.")
     volatility: float = Field(gt=0, description="Volatility of the diffusion part, annual decimal.")
     jump_intensity: float = Field(ge=0, description="Expected number of jumps per year.")
     jump_mean: float = Field(description="Mean of the log jump size (-0.05: a typical jump of about -5%).")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import tomllib
 from pathlib import Path
 
@@ -9,6 +10,7 @@ import pytest
 
 from rehedge.errors import ConfigError
 from rehedge.config import config_hash, load_config, parse_config
+from rehedge.build import build_markets, build_problem
 from rehedge.schema import Config, DeltaBaseline, LelandBaseline
 
 DEMO = Path(__file__).resolve().parents[2] / "configs" / "demo.toml"
@@ -369,3 +371,26 @@ def test_a_misspelt_key_is_named_with_the_closest_valid_one():
     with pytest.raises(ConfigError) as error:
         parse_config(tomllib.loads(MINIMAL.replace("cost_rate = ", "cost_rat = ")))
     assert str(error.value) == "frictions.cost_rat: unknown key 'cost_rat' (did you mean 'cost_rate'?)"
+
+
+@pytest.mark.parametrize("market", [
+    {"model": "gbm", "spot": 100.0, "volatility": 0.2},
+    {"model": "heston", "spot": 100.0, "initial_variance": 0.04, "mean_reversion": 2.0, "long_run_variance": 0.04,
+     "vol_of_vol": 0.5, "correlation": -0.7},
+    {"model": "merton", "spot": 100.0, "volatility": 0.15, "jump_intensity": 2.0, "jump_mean": -0.05,
+     "jump_std": 0.1},
+])
+def test_market_drift_is_the_growth_of_the_price_whatever_the_dividend_yield(market):
+    # market.drift means one thing: E[S_t] = S_0 exp(drift t) (README, "Market models"); the dividend
+    # yield is paid to a long holding on top, never taken out of the price path. A Monte Carlo mean,
+    # bounded by 4 standard errors of its own sample.
+    data = tomllib.loads(MINIMAL)
+    data["market"] = {**market, "drift": 0.12, "dividend_yield": 0.05, "rate": 0.02}
+    config = parse_config(data)
+    problem, (source, _) = build_problem(config), build_markets(config)
+    paths = source.generate(40_000, problem.schedule.steps, problem.dt_years, 3)
+    growth = paths.spot[:, -1] / paths.spot[:, 0]
+    expected = math.exp(0.12 * problem.horizon_years)
+    assert abs(growth.mean() - expected) <= 4 * growth.std(ddof=1) / math.sqrt(growth.size)
+    # The same test tells a price drift of drift - dividend_yield apart: 5% a year over 30 days.
+    assert abs(expected - math.exp((0.12 - 0.05) * problem.horizon_years)) > 8 * growth.std(ddof=1) / math.sqrt(growth.size)
