@@ -3,7 +3,7 @@ the step function and scikit-learn's conventions. The grid DP has its own tests 
 
 References, named beside each check:
 - Black and Scholes (1973): with free trading the variance-minimising hedge of an option is its delta.
-- DESIGN.md, "What measurement already taught us" (our own earlier measurement): under proportional
+- docs/references.md, "The grid optimum and the reference case" (our own earlier measurement): under proportional
   costs the optimum beats plain delta hedging on the reference case; paired differences on the same
   held-out paths, 95% confidence interval from their own standard error.
 - Least squares (identity): normal equations X'X, X'y of disjoint blocks of rows add up to those of
@@ -168,7 +168,7 @@ def test_zero_cost_fitted_q_agent_holds_the_black_scholes_delta_within_two_hedge
 
 
 def test_both_agents_beat_delta_hedging_at_10_bps_on_held_out_paths():
-    # DESIGN.md (our measurement): under costs the optimum gains over delta on the objective. Paired
+    # docs/references.md, "The grid optimum and the reference case" (our measurement): under costs the optimum gains over delta on the objective. Paired
     # per-path summed reward, agent minus delta, on held-out paths: the 95% CI lies above 0.
     problem, market = default_problem()
     policies = {kind: fitted(kind, 0.001) for kind in AGENTS} | {"delta": DeltaHedge(problem)}

@@ -31,7 +31,6 @@ from rehedge.run_folder import write_run
 from hedge_env import pricing
 from hedge_env.market import BLOCK_PATHS, HestonMarket, MertonMarket
 
-ql = pytest.importorskip("QuantLib")
 
 CONFIGS = Path(__file__).resolve().parents[2] / "configs"
 RATE, DIVIDEND = 0.03, 0.01
@@ -62,6 +61,7 @@ def one_thread_per_numerical_library():
 
 def quantlib_heston_call(strike: float, days: int, spot: float, params: dict) -> float:
     """AnalyticHestonEngine price of a European call, flat Actual365Fixed curves."""
+    ql = pytest.importorskip("QuantLib")  # only the checks against QuantLib skip without it
     today = ql.Date(15, ql.January, 2026)
     ql.Settings.instance().evaluationDate = today
     counter = ql.Actual365Fixed()
@@ -81,6 +81,7 @@ def quantlib_merton_call(strike: float, days: int, spot: float, market: MertonMa
     have no JumpDiffusionEngine, and Bates (1996) is Heston plus Merton's lognormal jumps, so with the
     variance started at its long-run level and a vanishing vol of vol (1e-4) it is Merton's model
     (the gap is of order vol of vol squared, about 1e-9 here)."""
+    ql = pytest.importorskip("QuantLib")  # only the checks against QuantLib skip without it
     today = ql.Date(15, ql.January, 2026)
     ql.Settings.instance().evaluationDate = today
     counter = ql.Actual365Fixed()

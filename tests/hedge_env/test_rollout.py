@@ -126,14 +126,14 @@ def test_kamal_derman_std_of_discrete_delta_hedge_within_its_known_approximation
     # Kamal and Derman (1999), "When you cannot hedge continuously: the corrections to
     # Black-Scholes", Risk, January 1999, from memory: std of the P&L of a short ATM
     # option delta-hedged N times without costs ~ sqrt(pi/4) * vol * vega / sqrt(N).
-    # REFERENCES.md: the formula overstates the simulated std by about 8% at N = 4, 3-4% at
+    # docs/references.md, "Discrete delta hedging": the formula overstates the simulated std by about 8% at N = 4, 3-4% at
     # N = 30 and 2% at N = 80. So the ratio simulated / formula must lie in
     # [1 - gap bound - 4 se, 1 + 4 se], and the gap must shrink with N.
     maturity_days, volatility, n = 30.0, 0.2, 150_000
     gap_bound = {4: 0.08, 30: 0.04, 120: 0.02}  # at 120 the 80-rehedge figure bounds it (the gap shrinks)
     # One set of 120-step paths, sampled every 30, 4 and 1 steps: the same Brownian paths at every N,
     # so the std estimates are correlated. 150k paths make the expected gap difference between
-    # N = 30 and N = 120 (about 0.02, REFERENCES.md) some 7 standard errors (about 0.0028).
+    # N = 30 and N = 120 (about 0.02, docs/references.md) some 7 standard errors (about 0.0028).
     fine = GBMMarket(spot=100.0, drift=0.0, volatility=volatility).generate(
         n, 120, maturity_days / 120 / 365.0, seed=21)
     vega = float(pricing.vega(100.0, 100.0, maturity_days / 365.0, volatility))
@@ -158,7 +158,7 @@ def test_zero_cost_hedging_error_shrinks_like_one_over_sqrt_n():
     # Boyle and Emanuel (1980), Kamal and Derman (1999), from memory: the hedging error of discrete
     # delta hedging has std proportional to 1/sqrt(N). The fitted slope of log std on log N is
     # -0.5 plus the slope of log(ratio to the Kamal-Derman formula); that ratio rises
-    # monotonically towards 1 (checked in the test above; REFERENCES.md: about 0.92 at N = 4),
+    # monotonically towards 1 (checked in the test above; docs/references.md: about 0.92 at N = 4),
     # so over N >= 8 it adds between 0 and (sum of the positive regression weights) * -log(0.92).
     maturity_days, volatility, n = 32.0, 0.2, 40_000
     rehedges = np.array([8, 16, 32, 64, 128])

@@ -1,7 +1,7 @@
 """The accounting step (hedge_env.step): every P&L part against arithmetic written out by hand.
 
 The reference numbers here are computed in the test itself, step by step, from
-the accounting of DESIGN.md ("Accounting (exact)") and the formulas in the
+the accounting of docs/references.md ("Accounting") and the formulas in the
 module docstring of hedge_env/step.py; only Black-Scholes prices and deltas
 come from hedge_env.pricing (checked against QuantLib in its own tests).
 """
