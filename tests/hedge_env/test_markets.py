@@ -318,17 +318,18 @@ def test_default_pricing_volatility_is_the_expected_mean_variance_for_heston_and
 # ---------------------------------------------------------------------------
 
 
-FAST_TREES = {"max_iter": 10, "max_leaf_nodes": 7}
+FAST_TREES = {"max_iter": 40, "max_leaf_nodes": 15}
 
 
 def small_config(name: str, **market) -> dict:
-    """A shipped config at small sizes (10 daily rehedges of its book): delta, no hedge and a fixed
+    """A shipped config at small sizes (10 daily rehedges of its book, 20,000 training paths: with 5,000 the
+    linear agent on the Merton book hedged no better than no hedge at all): delta, no hedge and a fixed
     band; linear and fitted-Q agents."""
     data = config_data(name)
     data.pop("sweep", None)
     data["market"].update(market)
     data["schedule"]["steps"] = 10
-    data["data"] = {"train_paths": 1_500, "heldout_paths": 2_000, "chunk_paths": 2_048}
+    data["data"] = {"train_paths": 20_000, "heldout_paths": 5_000, "chunk_paths": 5_000}
     data["baselines"] = [{"kind": "no_hedge"}, {"kind": "delta"}, {"kind": "fixed_band", "half_width": 0.05}]
     data["agents"] = [{"kind": "linear"}, {"kind": "fitted_q", "regressor_params": FAST_TREES}]
     data["report"] = {"reference_policy": "delta", "bootstrap_samples": 200}
@@ -346,9 +347,11 @@ def trained_and_evaluated(data: dict):
 def check_agents_learned_to_hedge(table) -> None:
     assert set(table.index) == {"no_hedge", "delta", "fixed_band", "linear", "fitted_q"}
     assert np.all(np.isfinite(table["objective"])) and np.all(np.isfinite(table["vs_reference_mean"]))
-    # Hedging at all beats not hedging by far on these books: the agents learned something of the hedge.
+    # Each learned agent beats delta hedging on the objective: the paired bootstrap 95% interval of
+    # its per-path difference from delta on the same held-out paths lies above zero (under costs the
+    # optimum gains over delta: docs/references.md, "The grid optimum and the reference case").
     for agent in ("linear", "fitted_q"):
-        assert table.loc[agent, "objective"] > table.loc["no_hedge", "objective"]
+        assert table.loc[agent, "vs_reference_ci_low"] > 0, agent
         assert 0.0 < table.loc[agent, "turnover"] < 2.0 * table.loc["delta", "turnover"]
 
 
@@ -362,6 +365,7 @@ def test_agents_train_and_evaluate_unchanged_on_every_market_model(name):
 
 def test_agents_observe_the_heston_variance_and_can_use_it_in_their_basis(tmp_path):
     data = small_config("heston.toml", variance_observed=True)
+    data["data"]["train_paths"] = 5_000  # a fitted-Q basis with the variance is evaluated tree by tree: slow
     data["agents"] = [{"kind": "linear", "basis": ["gap", "gap^2", "gap^2*variance", "abs_gap", "abs_gap*variance"]},
                       {"kind": "fitted_q", "basis": ["moneyness", "hedge", "gap", "abs_gap", "variance"],
                        "regressor_params": FAST_TREES}]
