@@ -131,15 +131,21 @@ class _Spec(BaseModel):
 # ---------------------------------------------------------------------------
 
 
-class GBMMarket(_Spec):
+class _SimulatedMarketSpec(_Spec):
+    """What every simulated model has: the start, the real-world growth of the price, rate and dividends."""
+
+    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, description="Real-world expected growth of the price (jumps included), annual "
+                                          "decimal: E[S_t] = S_0 exp(drift t); dividends are paid on top.")
+    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+
+
+class GBMMarket(_SimulatedMarketSpec):
     """Geometric Brownian motion for the underlying."""
 
     model: Literal["gbm"] = Field(description="Price model of the underlying.")
-    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world expected growth of the price, annual decimal (E[S_t] = S_0 exp(drift t)); dividends are paid on top.")
     volatility: float = Field(gt=0, description="Real-world volatility of the underlying, annual decimal.")
-    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
-    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
 
     def pricing_volatility(self, horizon_years: float) -> float:
         """Default mark volatility (pricing.volatility when not given): the model's volatility."""
@@ -155,12 +161,10 @@ def _pct(value: float) -> str:
     return f"{100 * value:g}%"
 
 
-class HestonMarket(_Spec):
+class HestonMarket(_SimulatedMarketSpec):
     """Heston stochastic volatility for the underlying (simulated with Andersen's QE scheme)."""
 
     model: Literal["heston"] = Field(description="Price model of the underlying.")
-    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world expected growth of the price, annual decimal (E[S_t] = S_0 exp(drift t)); dividends are paid on top.")
     initial_variance: float = Field(ge=0, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
     mean_reversion: float = Field(ge=0, description="Mean-reversion speed kappa of the variance, per year.")
     long_run_variance: float = Field(ge=0, description="Long-run variance theta, annual decimal^2.")
@@ -168,8 +172,6 @@ class HestonMarket(_Spec):
     correlation: float = Field(ge=-1, le=1, description="Correlation rho of price and variance shocks, in [-1, 1].")
     variance_observed: bool = Field(
         False, description="Whether the hedger observes the current variance (appended to its observation).")
-    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
-    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
 
     def pricing_volatility(self, horizon_years: float) -> float:
         """Default mark volatility: the root of the expected mean variance over the horizon,
@@ -187,18 +189,14 @@ class HestonMarket(_Spec):
                 f"dividend yield {_pct(self.dividend_yield)} (annual)")
 
 
-class MertonMarket(_Spec):
+class MertonMarket(_SimulatedMarketSpec):
     """Merton jump diffusion for the underlying: GBM plus lognormal jumps at Poisson times."""
 
     model: Literal["merton"] = Field(description="Price model of the underlying.")
-    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world expected growth of the price, jumps included, annual decimal (E[S_t] = S_0 exp(drift t)); dividends are paid on top.")
     volatility: float = Field(gt=0, description="Volatility of the diffusion part, annual decimal.")
     jump_intensity: float = Field(ge=0, description="Expected number of jumps per year.")
     jump_mean: float = Field(description="Mean of the log jump size (-0.05: a typical jump of about -5%).")
     jump_std: float = Field(ge=0, description="Standard deviation of the log jump size.")
-    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
-    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
 
     def pricing_volatility(self, horizon_years: float) -> float:
         """Default mark volatility: the total volatility of log returns, diffusion and jumps,
