@@ -95,7 +95,11 @@ class Frictions:
         if not self.impact_coefficient:
             return 0.0
         beta = self.impact_exponent
-        return self.impact_coefficient * spot * size ** (1.0 + beta) / self.adv_shares**beta
+        # The square-root law (beta = 0.5) as size * sqrt(size): numpy's power with exponent 0.5 is a
+        # square root, about 12 times faster than the general power on the learners' (rows, candidates)
+        # arrays (it differs from size ** 1.5 in the last bit at most).
+        grown = size * size**0.5 if beta == 0.5 else size ** (1.0 + beta)
+        return self.impact_coefficient * spot * grown / self.adv_shares**beta
 
     def impact_factor(self, trade, exp):
         """Multiplier of all later prices after a signed trade (``exp`` is math.exp or np.exp)."""
