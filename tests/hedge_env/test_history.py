@@ -120,7 +120,7 @@ def test_column_names_date_format_and_percent_unit_are_configurable(tmp_path):
 def test_cli_reports_a_bad_csv_in_one_line_with_exit_code_2(tmp_path):
     (tmp_path / "bad.csv").write_text("date,close,implied_vol\n2024-01-02,10,0.2\n2024-01-03,-4,0.2\n")
     text = (ROOT / "configs" / "historical.toml").read_text()
-    text = text.replace('csv = "data/nwtp-history.csv"', 'csv = "bad.csv"')
+    text = text.replace('csv = "data/bktp-history.csv"', 'csv = "bad.csv"')
     config = tmp_path / "bad.toml"
     config.write_text(text)
     done = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "check-config", str(config)],
@@ -339,7 +339,7 @@ def test_shipped_history_config_loads_with_implied_marks():
     from rehedge.config import load_config
 
     config = load_config(ROOT / "configs" / "historical.toml")
-    assert Path(config.market.csv).is_file() and (ROOT / "configs" / "data" / "nwtp-history.csv").stat().st_size < 1e6
+    assert Path(config.market.csv).is_file() and (ROOT / "configs" / "data" / "bktp-history.csv").stat().st_size < 1e6
     train, heldout = build_markets(config)
     problem = build_problem(config)
     assert problem.mark_volatility_observed and train.observed_factors == ("mark_volatility",)
@@ -351,7 +351,7 @@ def test_every_learned_agent_trains_and_evaluates_on_the_historical_config_with_
     # The shipped config marks at each date's implied volatility, which the agents observe.
     data = tomllib.loads((ROOT / "configs" / "historical.toml").read_text())
     assert data["market"]["marks"] == "implied"
-    data["market"]["csv"] = str(ROOT / "configs" / "data" / "nwtp-history.csv")
+    data["market"]["csv"] = str(ROOT / "configs" / "data" / "bktp-history.csv")
     data["data"].update(train_paths=400, chunk_paths=200)
     data["baselines"] = [{"kind": "no_hedge"}, {"kind": "delta"}]
     learned = sorted(LEARNED_FROM_TRANSITIONS)
@@ -374,7 +374,7 @@ def test_every_learned_agent_trains_and_evaluates_on_the_historical_config_with_
 
 def test_the_grid_optimum_is_refused_on_a_history_when_the_config_is_loaded():
     data = tomllib.loads((ROOT / "configs" / "historical.toml").read_text())
-    data["market"]["csv"] = str(ROOT / "configs" / "data" / "nwtp-history.csv")
+    data["market"]["csv"] = str(ROOT / "configs" / "data" / "bktp-history.csv")
     data["agents"] = [{"kind": "grid_dp"}]
     with pytest.raises(ConfigError, match=r"^agents\[0\]\.kind: grid_dp solves a one-factor GBM market only, "
                                           r"got market.model = 'historical'$"):
@@ -383,7 +383,7 @@ def test_the_grid_optimum_is_refused_on_a_history_when_the_config_is_loaded():
 
 def test_run_folder_states_both_date_ranges(tmp_path):
     text = (ROOT / "configs" / "historical.toml").read_text()
-    text = text.replace('csv = "data/nwtp-history.csv"', f'csv = "{ROOT / "configs" / "data" / "nwtp-history.csv"}"')
+    text = text.replace('csv = "data/bktp-history.csv"', f'csv = "{ROOT / "configs" / "data" / "bktp-history.csv"}"')
     text = text.replace("train_paths = 20_000", "train_paths = 300").replace("chunk_paths = 8_192", "chunk_paths = 300")
     text = text.split("[[baselines]]")[0] + '[[baselines]]\nkind = "delta"\n\n[[agents]]\nkind = "linear"\n'
     config = tmp_path / "small.toml"
@@ -406,7 +406,7 @@ def test_run_folder_states_both_date_ranges(tmp_path):
 
 def test_a_split_leaving_too_few_heldout_rows_is_a_config_error(tmp_path):
     data = tomllib.loads((ROOT / "configs" / "historical.toml").read_text())
-    data["market"]["csv"] = str(ROOT / "configs" / "data" / "nwtp-history.csv")
+    data["market"]["csv"] = str(ROOT / "configs" / "data" / "bktp-history.csv")
     data["market"]["split_date"] = "2024-12-02"
     with pytest.raises(ConfigError, match=r"^market.split_date: .*held-out rows; one horizon of 21 trading days"):
         build_markets(parse_config(data))

@@ -1,6 +1,6 @@
-"""Write nwtp-history.csv: an INVENTED daily price history of Northwind Tidal Power (NWTP).
+"""Write bktp-history.csv: an INVENTED daily price history of Brackwater Tidal Power (BKTP).
 
-Demo data only, no real prices. Run once (``python configs/data/make_nwtp_history.py``); the
+Demo data only, no real prices. Run once (``python configs/data/make_bktp_history.py``); the
 CSV is committed and read by configs/historical.toml. The model: business days 2016-2024,
 a log price with 6% annual drift and a stochastic variance (mean-reverting square root,
 long-run volatility 24%, variance shocks correlated -0.6 with the price), and an implied
@@ -40,7 +40,7 @@ def main() -> None:
     implied = np.clip(implied, 0.08, None)
     table = pd.DataFrame({"date": dates.strftime("%Y-%m-%d"), "close": np.round(np.exp(log_price), 2),
                           "implied_vol": np.round(implied, 4)})
-    out = Path(__file__).with_name("nwtp-history.csv")
+    out = Path(__file__).with_name("bktp-history.csv")
     table.to_csv(out, index=False)
     print(f"{out}: {n} rows, {table['date'].iloc[0]} .. {table['date'].iloc[-1]}, "
           f"close {table['close'].min():.2f} .. {table['close'].max():.2f}")
