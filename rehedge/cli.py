@@ -38,6 +38,9 @@ app = typer.Typer(
     name="rehedge",
     help="Train, compare and export option-hedging policies under trading costs, impact and financing.",
     no_args_is_help=True,
+    # Plain help text: option types as click names them (no <bool> tags), and brackets such as
+    # [sweep] shown as written, not read as markup.
+    rich_markup_mode=None,
     add_completion=False,
     pretty_exceptions_enable=False,
 )
@@ -83,6 +86,20 @@ def _print_table(title: str, records: list[dict]) -> None:
         label = record["name"] if record["kind"] in ("", record["name"]) else f"{record['name']} ({record['kind']})"
         table.add_row(label, *(column.format(record[column.key]) for column in columns))
     console.print(table)
+
+
+def _print_version(asked: bool) -> None:
+    if asked:
+        from importlib.metadata import version
+
+        console.print(f"rehedge {version('rehedge')}", highlight=False)
+        raise typer.Exit(0)
+
+
+@app.callback()
+def _options(version: bool = typer.Option(False, "--version", is_eager=True, callback=_print_version,
+                                          help="Print the version and exit.")) -> None:
+    """Train, compare and export option-hedging policies under trading costs, impact and financing."""
 
 
 @app.command("check-config")
@@ -163,7 +180,7 @@ def evaluate(
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
     threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
     tables: list[Path] = typer.Option(
-        None, "--table", help="Also score this hedge table (folder or table.json; repeatable); it must be "
+        None, "--table", metavar="TABLE", help="Also score this hedge table (folder or table.json; repeatable); it must be "
                               "exported for the same book, reference spot and schedule."),
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
@@ -257,7 +274,7 @@ def quote(
     source: Path = typer.Argument(..., help="TOML config file, or a run folder."),
     paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
     tables: list[Path] = typer.Option(
-        None, "--table", help="Also quote with this hedge table (folder or table.json; repeatable)."),
+        None, "--table", metavar="TABLE", help="Also quote with this hedge table (folder or table.json; repeatable)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
     threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
@@ -446,8 +463,10 @@ def _policies_of(source: Path, start):
 def main() -> None:
     """Console entry point: usage errors and errors a user can cause (config, run folder, hedge table,
     CSV) end in one line on stderr and exit code 2."""
+    if len(sys.argv) == 1:  # `rehedge` alone: the help, and a clean exit
+        sys.argv.append("--help")
     try:
-        code = app(standalone_mode=False)
+        code = app(standalone_mode=False, prog_name="rehedge")
     except typer.Abort:
         sys.exit(1)
     except typer.TyperException as error:  # usage errors: bad option values, missing arguments, unknown commands

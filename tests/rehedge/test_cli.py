@@ -134,3 +134,27 @@ def test_evaluate_json_on_the_demo_has_every_baseline():
     out = json.loads(done.stdout)
     assert {p["name"] for p in out["policies"]} == {"no_hedge", "delta", "leland", "whalley_wilmott", "fixed_band"}
     assert out["caution"].startswith("Decision support, not advice")
+
+
+def test_rehedge_alone_prints_the_help_and_exits_0():
+    done = rehedge()
+    assert done.returncode == 0 and done.stderr == ""
+    assert done.stdout.startswith("Usage: rehedge [OPTIONS] COMMAND [ARGS]...")
+    assert "error" not in done.stdout
+
+
+def test_version_prints_the_installed_version():
+    from importlib.metadata import version
+
+    done = rehedge("--version")
+    assert done.returncode == 0 and done.stdout.strip() == f"rehedge {version('rehedge')}"
+
+
+@pytest.mark.parametrize("command", ["check-config", "evaluate", "train", "run", "quote", "report", "export",
+                                     "advise", "sweep", "bench"])
+def test_help_shows_brackets_as_written_and_no_python_type_tags(command):
+    done = rehedge(command, "--help")
+    assert done.returncode == 0
+    assert "<bool>" not in done.stdout and "list[" not in done.stdout
+    if command == "sweep":
+        assert "[sweep]" in done.stdout
