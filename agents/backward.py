@@ -39,7 +39,7 @@ from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
 from agents.dataset import Transitions, replayed_impact, replayed_next_spots
-from agents.features import StateFeatures, basis_columns, hedge_move, state_features
+from agents.features import StateFeatures, basis_columns, check_terms, hedge_move, state_features
 from hedge_env.problem import HedgingProblem
 
 # Band edges around the hedge, in hedge moves (the typical one-step change of the hedge).
@@ -119,12 +119,20 @@ class BackwardQAgent(BaseEstimator):
     ``_predict(k, X)`` for an array of shape (..., n_basis).
     """
 
-    name: str
-    problem: HedgingProblem
-    terms: tuple[str, ...]
-    band_widths: tuple[float, ...]
-    partial_moves: tuple[float, ...]
-    factor_names: tuple[str, ...]
+    def __init__(self, problem: HedgingProblem, basis, band_widths, partial_moves, factor_names, drift, name):
+        # The parameters every backward agent has, stored unchanged (scikit-learn's convention); a
+        # subclass's __init__ names them with its own defaults and adds its own.
+        self.problem = problem
+        self.basis = basis
+        self.band_widths = band_widths
+        self.partial_moves = partial_moves
+        self.factor_names = factor_names
+        self.drift = drift
+        self.name = name
+
+    @property
+    def terms(self) -> tuple[str, ...]:
+        return tuple(self.basis)
 
     # -- fitting ------------------------------------------------------------------------------
     def fit(self, data: TransitionSource, progress: Callable[[int], None] | None = None):
@@ -151,6 +159,7 @@ class BackwardQAgent(BaseEstimator):
         """Reset learned state and set the return moments from each chunk's
         :func:`return_moment_sums` (summed in chunk order)."""
         self.move_ = hedge_move(self.problem)
+        check_terms(self.terms, tuple(self.factor_names))
         self._setup()
         total = total_squared = 0.0
         count = 0

@@ -21,7 +21,7 @@ from sklearn.base import clone
 from sklearn.ensemble import HistGradientBoostingRegressor
 
 from agents.backward import DEFAULT_PARTIAL_MOVES, BackwardQAgent
-from agents.features import HATS, TREE_BASIS, basis, check_terms, state_features
+from agents.features import HATS, TREE_BASIS, basis, state_features
 from hedge_env.problem import HedgingProblem
 
 # Fewer band edges than the linear agent: every candidate costs a tree-ensemble prediction.
@@ -100,22 +100,11 @@ class FittedQAgent(BackwardQAgent):
     def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, max_rows_per_step: int = 2_000_000, name: str = "fitted_q"):
-        self.problem = problem
+        super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, name)
         self.regressor = regressor
-        self.basis = basis
-        self.band_widths = band_widths
-        self.partial_moves = partial_moves
-        self.factor_names = factor_names
-        self.drift = drift
         self.max_rows_per_step = max_rows_per_step
-        self.name = name
-
-    @property
-    def terms(self) -> tuple[str, ...]:
-        return tuple(self.basis)
 
     def _setup(self) -> None:
-        check_terms(self.terms, tuple(self.factor_names))
         steps = self.problem.schedule.steps
         self.regressors_: list = [None] * steps
         # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself,

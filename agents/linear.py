@@ -14,7 +14,7 @@ import numpy as np
 
 from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent, return_moment_sums
 from agents.dataset import Transitions
-from agents.features import POLYNOMIAL_BASIS, check_terms, combination
+from agents.features import POLYNOMIAL_BASIS, combination
 from hedge_env.problem import HedgingProblem
 
 
@@ -82,22 +82,11 @@ class LinearBasisAgent(BackwardQAgent):
     def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6, smoothing: float = 0.0,
                  band_widths=DEFAULT_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, name: str = "linear"):
-        self.problem = problem
-        self.basis = basis
+        super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, name)
         self.ridge = ridge
         self.smoothing = smoothing
-        self.band_widths = band_widths
-        self.partial_moves = partial_moves
-        self.factor_names = factor_names
-        self.drift = drift
-        self.name = name
-
-    @property
-    def terms(self) -> tuple[str, ...]:
-        return tuple(self.basis)
 
     def _setup(self) -> None:
-        check_terms(self.terms, tuple(self.factor_names))
         self.coef_ = np.zeros((self.problem.schedule.steps, len(self.terms)))
         self.statistics_: dict[int, NormalEquations] = {}
 
