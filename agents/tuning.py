@@ -42,9 +42,19 @@ def search_space(problem: HedgingProblem, parameter: str) -> tuple[np.ndarray, b
     raise ValueError(f"no search space for parameter {parameter!r}")
 
 
+# Evaluations of the bounded search after the grid, at most.
+REFINE_TRIALS = 12
+
+
+def trial_count(problem: HedgingProblem, parameter: str) -> int:
+    """The most trials :func:`tune_parameter` makes for ``parameter``: its grid, then the refinement."""
+    return len(search_space(problem, parameter)[0]) + REFINE_TRIALS
+
+
 def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: MarketPaths | PathSet,
-                   chunk_paths: int = 8192) -> TuningResult:
-    """The value of ``policy.parameter`` that maximises the objective on ``paths``."""
+                   chunk_paths: int = 8192, progress=None) -> TuningResult:
+    """The value of ``policy.parameter`` that maximises the objective on ``paths``; ``progress(1)`` is
+    called after each trial (at most :func:`trial_count` of them)."""
     grid, log_space = search_space(problem, parameter)
     trials: dict[float, float] = {}
 
@@ -53,6 +63,8 @@ def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: Marke
         if value not in trials:
             trial = replace(policy, **{parameter: value})
             trials[value] = rollout(problem, trial, paths, paths.n_paths, chunk_paths=chunk_paths).objective_value
+            if progress is not None:
+                progress(1)
         return trials[value]
 
     scores = [objective(v) for v in grid]
@@ -63,7 +75,7 @@ def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: Marke
     if high > low:
         found = minimize_scalar(
             lambda x: -objective(from_x(x)), bounds=(to_x(low), to_x(high)), method="bounded",
-            options={"xatol": 0.02 * (to_x(high) - to_x(low)), "maxiter": 12},
+            options={"xatol": 0.02 * (to_x(high) - to_x(low)), "maxiter": REFINE_TRIALS},
         )
         objective(from_x(found.x))
     value, score = max(trials.items(), key=lambda item: item[1])

@@ -11,7 +11,7 @@ import numpy as np
 from rehedge.errors import ConfigError
 from rehedge.schema import Config
 from agents.registry import AGENTS, BASELINES
-from agents.tuning import tune_parameter
+from agents.tuning import trial_count, tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
 from hedge_env.history import (
@@ -180,19 +180,24 @@ def training_path_set(config: Config, market: PathGenerator, problem: HedgingPro
     return PathSet(market, n_paths, problem.schedule.steps, problem.dt_years, config.data.train_seed)
 
 
-def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGenerator, train=None):
+def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGenerator, train=None, start=None):
     """Every configured baseline, with parameters set to "tune" fitted on the training paths.
 
     Returns ``(policies, tuning)``: name -> policy, and name -> TuningResult
-    for the tuned ones. ``train`` are the training paths if already drawn.
+    for the tuned ones. ``train`` are the training paths if already drawn;
+    ``start(label, total) -> advance(n)`` reports the tuning trials.
     """
     policies = {spec.name: build_baseline(spec, problem) for spec in config.baselines}
     tuning = {}
     wanted = tuned_parameters(config)
     if wanted:
         train = training_path_set(config, market, problem) if train is None else train
+        total = sum(trial_count(problem, parameter) for parameter in wanted.values())
+        advance = start("tuning baselines on training paths (trials)", total) if start else None
         for name, parameter in wanted.items():
-            result = tune_parameter(problem, policies[name], parameter, train, config.data.chunk_paths)
+            result = tune_parameter(problem, policies[name], parameter, train, config.data.chunk_paths, advance)
             policies[name] = replace(policies[name], **{parameter: result.value})
             tuning[name] = result
+        if advance is not None:  # the refinement may stop early: the bar ends full
+            advance(total - sum(len(result.trials) for result in tuning.values()))
     return policies, tuning

@@ -455,8 +455,7 @@ def _policies_of(source: Path, start):
     cfg = load_config(source)
     problem = build_problem(cfg)
     market, heldout_market = build_markets(cfg)
-    start("tuning baselines on training paths", 1)
-    policies, tuning = prepare_baselines(cfg, problem, market)
+    policies, tuning = prepare_baselines(cfg, problem, market, start=start)
     return cfg, problem, heldout_market, policies, tuning, {spec.name: spec.kind for spec in cfg.baselines}
 
 

@@ -96,12 +96,17 @@ def _run_config(config, config_text, runs_dir, heldout_paths, start, report, ext
                                                                 n_paths),
             reference=reference if reference in training.policies else None,
             bootstrap_samples=config.report.bootstrap_samples)
+        parts = ["metrics"] + (["hedge table"] if config.export.policy is not None else []) + (["report"] if report else [])
+        advance = start(f"writing {', '.join(parts)}", len(parts))
         write_metrics(evaluation, staging)
+        advance(1)
         if config.export.policy is not None:
             name = config.export.policy
             export_policy(config, training.problem, training.policies, name, staging / "tables" / name)
+            advance(1)
         if report:
             build_report(staging, staging=True)
+            advance(1)
         run_dir = finish_run(staging)
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)

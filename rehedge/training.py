@@ -86,8 +86,7 @@ def _train(config: Config, start: ProgressStart) -> Training:
                      f"({facts['rows']} trading days)")
 
     clock = time.perf_counter()
-    start("tuning baselines", 1)
-    outcome.baselines, outcome.tuning = prepare_baselines(config, problem, market, train=paths)
+    outcome.baselines, outcome.tuning = prepare_baselines(config, problem, market, train=paths, start=start)
     outcome.timings["tune_s"] = time.perf_counter() - clock
     for name, result in outcome.tuning.items():
         outcome.note(f"tuned {name}.{result.parameter} = {result.value:.6g} (train objective {result.objective:.6g})")

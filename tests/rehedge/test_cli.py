@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import tomllib
 import subprocess
 import sys
 from pathlib import Path
@@ -158,3 +159,24 @@ def test_help_shows_brackets_as_written_and_no_python_type_tags(command):
     assert "<bool>" not in done.stdout and "list[" not in done.stdout
     if command == "sweep":
         assert "[sweep]" in done.stdout
+
+
+def test_every_progress_bar_of_a_run_counts_its_work_and_ends_full(tmp_path):
+    # The tuning bar used to be opened with a total of 1 and never advance; writing the metrics, the
+    # table and the report showed nothing.
+    from rehedge.config import parse_config
+    from rehedge.runner import run_config
+
+    bars = {}
+
+    def start(label, total):
+        bars[label] = [total, 0]
+
+        def advance(n):
+            bars[label][1] += n
+        return advance
+
+    run_config(parse_config(tomllib.loads(SMALL)), SMALL, tmp_path, start=start)
+    assert bars["tuning baselines on training paths (trials)"][0] > 1
+    assert "writing metrics, report" in bars
+    assert all(done == total for total, done in bars.values()), bars
