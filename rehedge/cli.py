@@ -13,10 +13,11 @@ from typer.core import TyperGroup
 from rich import box
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.measure import Measurement
 from rich.table import Table
 
 from rehedge.errors import UserError
-from rehedge.formats import CAUTION, format_count, format_money, metric_columns
+from rehedge.formats import CAUTION, format_count, format_interval, format_money, metric_columns
 
 # Library modules are imported inside the commands that use them: `rehedge advise` answers from a
 # hedge table with numpy alone, without starting scikit-learn, pandas, matplotlib or gymnasium.
@@ -45,7 +46,8 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 # Tables are wide: when the output is not a terminal, do not fold them at 80 columns.
-console = Console(width=None if sys.stdout.isatty() else 160)
+# Not a terminal (a file, a pipe): tables up to 160 columns, and prose is never broken mid-sentence.
+console = Console(width=None if sys.stdout.isatty() else 160, soft_wrap=not sys.stdout.isatty())
 errors = Console(stderr=True, soft_wrap=True)
 
 
@@ -76,30 +78,31 @@ def _progress(quiet: bool):
         yield start
 
 
-def _print_table(title: str, records: list[dict]) -> None:
-    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
-    table.add_column("policy", no_wrap=True)
-    columns = [c for c in metric_columns(records[0]) if c.on_terminal]
+def _print_table(title: str, records: list[dict], wide: bool = False) -> None:
+    """The ranked table: the terminal's columns (every column with ``wide``), split into as many tables
+    as the console's width needs, so no number and no policy name is ever cut."""
+    columns = [c for c in metric_columns(records[0]) if wide or c.on_terminal]
+    labels = [r["name"] if r["kind"] in ("", r["name"], "table") else f"{r['name']} ({r['kind']})" for r in records]
+
+    def table_of(group) -> Table:
+        table = Table(box=box.SIMPLE_HEAD, pad_edge=False)
+        table.add_column("policy", no_wrap=True)
+        for column in group:
+            table.add_column(column.short, justify="right", no_wrap=True)
+        for label, record in zip(labels, records):
+            table.add_row(label, *(column.format(record[column.key]) for column in group))
+        return table
+
+    groups = [[]]
     for column in columns:
-        table.add_column(column.short, justify="right", no_wrap=True)
-    for record in records:
-        label = record["name"] if record["kind"] in ("", record["name"]) else f"{record['name']} ({record['kind']})"
-        table.add_row(label, *(column.format(record[column.key]) for column in columns))
-    console.print(table)
-
-
-def _print_version(asked: bool) -> None:
-    if asked:
-        from importlib.metadata import version
-
-        console.print(f"rehedge {version('rehedge')}", highlight=False)
-        raise typer.Exit(0)
-
-
-@app.callback()
-def _options(version: bool = typer.Option(False, "--version", is_eager=True, callback=_print_version,
-                                          help="Print the version and exit.")) -> None:
-    """Train, compare and export option-hedging policies under trading costs, impact and financing."""
+        wider = table_of(groups[-1] + [column])
+        natural = Measurement.get(console, console.options.update_width(10**6), wider).maximum
+        if groups[-1] and natural > console.width:
+            groups.append([])
+        groups[-1].append(column)
+    console.print(title, highlight=False)
+    for group in groups:
+        console.print(table_of(group))
 
 
 @app.command("check-config")
@@ -126,7 +129,8 @@ def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -
                           f"rows {facts['first_row']}-{facts['last_row']}), {count}", highlight=False)
 
 
-def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json: bool, run_dir=None) -> None:
+def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json: bool, run_dir=None,
+                 wide: bool = False) -> None:
     records = evaluation.to_records()
     if as_json:
         out = {
@@ -144,8 +148,8 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
         return
     _print_table(
         f"{cfg.name}: {n_paths:,} held-out paths, seed {seed}; money in currency units, "
-        "costs per path, turnover in notionals",
-        records,
+        "costs per path" + (", turnover in notionals" if wide else ""),
+        records, wide,
     )
     reference = evaluation.reference
     if reference in evaluation.results:
@@ -155,7 +159,7 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
             if record["name"] != reference:
                 v = record["vs_reference"]
                 verdict = "above" if v["ci_low"] > 0 else "below" if v["ci_high"] < 0 else "not distinguishable"
-                console.print(f"  {record['name']:<18} {v['mean']:+.4g}  [{v['ci_low']:+.4g}, {v['ci_high']:+.4g}]"
+                console.print(f"  {record['name']:<18} {format_interval(v['mean'], v['ci_low'], v['ci_high'])}"
                               f"  {verdict}", highlight=False)
     for name, result in tuning.items():
         console.print(f"tuned on training paths: {name}.{result.parameter} = {result.value:.6g}", highlight=False)
@@ -177,6 +181,8 @@ def evaluate(
     paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
     seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    wide: bool = typer.Option(False, "--wide", help="Every measure (VaR, entropic risk, turnover, quotes), "
+                                                     "in as many tables as the width needs."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
     threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
     tables: list[Path] = typer.Option(
@@ -185,7 +191,7 @@ def evaluate(
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
     cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet, tables or (), threads)
-    _records_out(cfg, n_paths, seed, evaluation, tuning, as_json)
+    _records_out(cfg, n_paths, seed, evaluation, tuning, as_json, wide=wide)
 
 
 def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=(), threads: int | None = None):
@@ -248,6 +254,8 @@ def run(
     paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
     runs_dir: Path = typer.Option(Path("runs"), "--runs-dir", help="Where run folders are written."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
+    wide: bool = typer.Option(False, "--wide", help="Every measure (VaR, entropic risk, turnover, quotes), "
+                                                     "in as many tables as the width needs."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
     threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
 ) -> None:
@@ -264,7 +272,7 @@ def run(
             outcome = run_config(cfg, config.read_text(), runs_dir, paths, start, report=not sweep, threads=threads)
         run_dirs.append(outcome.run_dir)
         _records_out(cfg, outcome.heldout_paths, outcome.heldout_seed, outcome.evaluation,
-                     outcome.training.tuning, as_json, outcome.run_dir)
+                     outcome.training.tuning, as_json, outcome.run_dir, wide)
     if sweep:
         report_variants(run_dirs)
 

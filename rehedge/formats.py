@@ -36,6 +36,11 @@ def format_signed_money(value: float | None) -> str:
     return text if text.startswith("-") or text == "n/a" else "+" + text
 
 
+def format_interval(mean: float, low: float, high: float) -> str:
+    """A signed difference with its interval, as the report shows it: ``+50.42 [+41.00, +59.92]``."""
+    return f"{format_signed_money(mean)} [{format_signed_money(low)}, {format_signed_money(high)}]"
+
+
 def format_count(value: float | None) -> str:
     """Turnover, trades per path and volatility points: two decimals."""
     if value is None or not math.isfinite(value):
@@ -75,7 +80,8 @@ def metric_columns(record: dict) -> list[MetricColumn]:
                      on_terminal=False),
         MetricColumn("mean_cost", "cost", "mean cost (currency per path)", format_money),
         MetricColumn("mean_impact", "impact", "mean impact (currency per path)", format_money),
-        MetricColumn("turnover", "turnover", "turnover (shares traded per share of notional)", format_count),
+        MetricColumn("turnover", "turnover", "turnover (shares traded per share of notional)", format_count,
+                     on_terminal=False),
         MetricColumn("trades", "trades", "trades (per path)", format_count),
         MetricColumn("quote_bid", "bid", "bid (currency)", format_money, on_terminal=False),
         MetricColumn("quote_ask", "ask", "ask (currency)", format_money, on_terminal=False),

@@ -180,3 +180,30 @@ def test_every_progress_bar_of_a_run_counts_its_work_and_ends_full(tmp_path):
     assert bars["tuning baselines on training paths (trials)"][0] > 1
     assert "writing metrics, report" in bars
     assert all(done == total for total, done in bars.values()), bars
+
+
+@pytest.mark.parametrize("width", [60, 80, 100])
+@pytest.mark.parametrize("wide", [False, True])
+def test_the_ranked_table_never_cuts_a_number_or_a_name_at_any_width(monkeypatch, width, wide):
+    from rich.console import Console
+
+    from rehedge import cli
+    from rehedge.formats import metric_columns
+
+    record = {"name": "whalley_wilmott", "kind": "whalley_wilmott", "objective": -43605.2, "mean_pnl": -525.9,
+              "std_pnl": 6624.0, "var_95": 11000.0, "cvar_95": 13240.0, "var_99": 12000.0, "cvar_99": 13240.5,
+              "entropic_risk": 2.5e4, "mean_cost": 379.0, "mean_impact": 147.0, "turnover": 0.96, "trades": 24.19,
+              "quote_bid": -38317.0, "quote_ask": 48515.0, "spread_bid_vol_points": 376.1,
+              "spread_ask_vol_points": 12.5}
+    records = [record, {**record, "name": "a_much_longer_policy_name", "kind": "linear", "objective": -1.25}]
+    console = Console(width=width, record=True, file=open("/dev/null", "w"))
+    monkeypatch.setattr(cli, "console", console)
+    cli._print_table("title", records, wide=wide)
+    text = console.export_text()
+    assert "…" not in text
+    for r in records:
+        assert (r["name"] if r["kind"] == r["name"] else f"{r['name']} ({r['kind']})") in text
+        for column in metric_columns(r):
+            if wide or column.on_terminal:
+                assert column.format(r[column.key]) in text, column.key
+    assert max(len(line) for line in text.splitlines()) <= width
