@@ -105,6 +105,20 @@ def _print_table(title: str, records: list[dict], wide: bool = False) -> None:
         console.print(table_of(group))
 
 
+def _print_version(asked: bool) -> None:
+    if asked:
+        from importlib.metadata import version
+
+        console.print(f"rehedge {version('rehedge')}", highlight=False)
+        raise typer.Exit(0)
+
+
+@app.callback()
+def _options(version: bool = typer.Option(False, "--version", is_eager=True, callback=_print_version,
+                                          help="Print the version and exit.")) -> None:
+    """Train, compare and export option-hedging policies under trading costs, impact and financing."""
+
+
 @app.command("check-config")
 def check_config(config: Path = typer.Argument(..., help="TOML config file.")) -> None:
     """Validate a config file; print what it describes, or the first error in one line."""
@@ -294,23 +308,37 @@ def quote(
     rows = evaluation.to_records()
     if as_json:
         keys = ("mark", "quote_bid", "quote_ask", "cvar_bid", "cvar_ask", "spread_bid", "spread_ask",
-                "spread_bid_vol_points", "spread_ask_vol_points")
+                "spread_bid_vol_points", "spread_ask_vol_points", "vega_per_vol_point")
         out = {"config": cfg.name, "heldout_paths": n_paths, "heldout_seed": seed,
-               "quotes": [{"name": r["name"], **{k: r[k] for k in keys}} for r in rows], "caution": CAUTION}
+               "quotes": [{"name": r["name"], "kind": r["kind"], **{k: r[k] for k in keys}} for r in rows],
+               "caution": CAUTION}
         sys.stdout.write(json.dumps(out, indent=2) + "\n")
         return
-    table = Table(title=f"{cfg.name}: premium for the book as configured (ask) and the opposite book (bid), "
-                        f"{n_paths:,} held-out paths; Black-Scholes mark {rows[0]['mark']:,.4g}",
-                  title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
-    for header in ("policy", "bid", "ask", "spread bid/ask (vol pts)", "CVaR-95 bid", "CVaR-95 ask"):
+    console.print(f"{cfg.name}: premiums in currency for the whole book, {n_paths:,} held-out paths; Black-Scholes "
+                  f"mark {format_money(rows[0]['mark'])}; book vega {format_money(rows[0]['vega_per_vol_point'])} "
+                  "per volatility point", highlight=False)
+    table = Table(box=box.SIMPLE_HEAD, pad_edge=False)
+    for header in ("policy", "bid", "ask", "spread bid / ask (vol points)", "CVaR-95 bid", "CVaR-95 ask"):
         table.add_column(header, justify="left" if header == "policy" else "right", no_wrap=True)
     for r in rows:
+        if r["kind"] == "no_hedge":  # the risk of an unhedged book is no basis for a hedged quote
+            table.add_row(r["name"] + " *", *["-"] * 5)
+            continue
         table.add_row(r["name"], format_money(r["quote_bid"]), format_money(r["quote_ask"]),
                       f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}",
                       format_money(r["cvar_bid"]), format_money(r["cvar_ask"]))
     console.print(table)
-    console.print("bid and ask: mean-variance indifference premiums (mark -/+ the risk-adjusted cost of hedging); "
-                  "the bid mirrors each policy for the opposite book.", highlight=False)
+    # The mark is the configured position's liability: positive when the desk has sold value.
+    sold = rows[0]["mark"] > 0
+    console.print(("ask: the premium to receive for selling this book as configured" if sold else
+                   "ask: the premium for taking on this book as configured (negative: paid)")
+                  + " and hedging it with the policy, at which the desk is indifferent under its mean-variance "
+                  + ("objective; bid: the premium to pay for buying it back" if sold else "objective; bid: the same")
+                  + " (the opposite book, the policy mirrored). CVaR-95: the mark plus (ask) or minus (bid) the "
+                  "95% CVaR of the hedged loss.", highlight=False)
+    if any(r["kind"] == "no_hedge" for r in rows):
+        console.print("* not hedging: its premiums price the whole unhedged risk and mean nothing as a quote "
+                      "(see `rehedge evaluate`).", highlight=False)
     console.print(CAUTION, style="dim", highlight=False)
 
 

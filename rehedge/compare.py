@@ -184,6 +184,7 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
             "quote_bid": mark + other.objective_value,
             "cvar_ask": mark + float(mine["cvar_95"]),
             "cvar_bid": mark - float(theirs["cvar_95"]),
+            "vega_per_vol_point": vega_point,
         }
         for side in ("ask", "bid"):
             spread = abs(row[f"quote_{side}"] - mark)

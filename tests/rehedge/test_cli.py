@@ -207,3 +207,19 @@ def test_the_ranked_table_never_cuts_a_number_or_a_name_at_any_width(monkeypatch
             if wide or column.on_terminal:
                 assert column.format(r[column.key]) in text, column.key
     assert max(len(line) for line in text.splitlines()) <= width
+
+
+def test_quote_screen_gives_units_the_books_vega_what_bid_and_ask_mean_and_no_quote_without_a_hedge(tmp_path):
+    from tests.scenarios import DELTA, small_gbm
+
+    config = tmp_path / "quote.toml"
+    config.write_text(small_gbm("quote-test", 3, 10, train=300, heldout=600, chunk=300,
+                                baselines=({"kind": "no_hedge"}, DELTA)))
+    done = rehedge("quote", str(config), "--quiet")
+    assert done.returncode == 0, done.stderr
+    text = " ".join(done.stdout.split())
+    assert "premiums in currency for the whole book" in text and "per volatility point" in text
+    assert "ask: the premium to receive for selling this book as configured" in text  # a short call
+    (row,) = [line for line in done.stdout.splitlines() if line.strip().startswith("no_hedge")]
+    assert row.split()[1:] == ["*", "-", "-", "-", "-", "-"]
+    assert "not hedging: its premiums price the whole unhedged risk" in text
