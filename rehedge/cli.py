@@ -17,7 +17,15 @@ from rich.measure import Measurement
 from rich.table import Table
 
 from rehedge.errors import UserError
-from rehedge.formats import CAUTION, format_count, format_interval, format_money, metric_columns
+from rehedge.formats import (
+    CAUTION,
+    format_count,
+    format_interval,
+    format_money,
+    heldout_text,
+    metric_columns,
+    tail_caution,
+)
 
 # Library modules are imported inside the commands that use them: `rehedge advise` answers from a
 # hedge table with numpy alone, without starting scikit-learn, pandas, matplotlib or gymnasium.
@@ -160,11 +168,14 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
         }
         sys.stdout.write(json.dumps(out, indent=2) + "\n")
         return
+    fixed = cfg.market.model == "historical"
     _print_table(
-        f"{cfg.name}: {n_paths:,} held-out paths, seed {seed}; money in currency units, "
+        f"{cfg.name}: {heldout_text(n_paths, cfg.data.heldout_paths, seed, fixed)}; money in currency units, "
         "costs per path" + (", turnover in notionals" if wide else ""),
         records, wide,
     )
+    if tail_caution(n_paths):
+        console.print(tail_caution(n_paths), highlight=False)
     reference = evaluation.reference
     if reference in evaluation.results:
         console.print(f"objective difference from {reference}, paired over paths, bootstrap 95% CI "

@@ -101,3 +101,24 @@ def format_days(value: float) -> str:
 def format_percent(value: float) -> str:
     """A rate as a percentage: 0.2 -> 20%."""
     return f"{100 * value:g}%"
+
+
+# Tail measures (VaR, CVaR) on fewer held-out paths than this rest on a handful of paths.
+TAIL_PATHS = 100
+
+
+def heldout_text(n_paths: int, asked: int, seed: int | None, fixed_windows: bool) -> str:
+    """What the held-out paths were: their count (and what the config asked for, when a history had
+    fewer windows) and the seed, which fixed windows of a history do not have."""
+    if fixed_windows:
+        text = f"{n_paths:,} held-out windows of the history"
+        return text + (f" (all it has; data.heldout_paths asks for {asked:,})" if n_paths < asked else "")
+    return f"{n_paths:,} held-out paths, seed {seed}"
+
+
+def tail_caution(n_paths: int) -> str | None:
+    """A warning when VaR and CVaR rest on fewer than :data:`TAIL_PATHS` paths, else None."""
+    if n_paths >= TAIL_PATHS:
+        return None
+    return (f"VaR and CVaR rest on {n_paths} paths (fewer than {TAIL_PATHS}): their tails are a handful of "
+            "paths; read them with care")

@@ -22,7 +22,16 @@ from pathlib import Path
 
 import matplotlib
 
-from rehedge.formats import CAUTION, format_days, format_money, format_percent, format_signed_money, metric_columns
+from rehedge.formats import (
+    CAUTION,
+    format_days,
+    format_money,
+    format_percent,
+    format_signed_money,
+    heldout_text,
+    metric_columns,
+    tail_caution,
+)
 from rehedge.report.figures import (
     STYLE,
     colors_of,
@@ -101,8 +110,10 @@ def _scenario_html(scored: Scored) -> str:
         ("objective", f"mean over paths of the summed step rewards dW - {objective.risk_aversion:g} / 2 dW^2 "
                       f"(risk aversion per currency unit); VaR/CVaR levels "
                       f"{', '.join(format_percent(v) for v in objective.var_levels)}"),
-        ("held-out paths", f"{paths:,} paths, seed {metrics.get('heldout_seed')}"
-                           + _dates_text(manifest, "heldout", config.horizon_days)),
+        ("held-out paths", heldout_text(paths, config.data.heldout_paths, metrics.get("heldout_seed"),
+                                        config.market.model == "historical")
+                           + _dates_text(manifest, "heldout", config.horizon_days)
+                           + (f"; {tail_caution(paths)}" if tail_caution(paths) else "")),
         ("training paths", f"{manifest.get('sizes', {}).get('train_paths', config.data.train_paths):,} paths, "
                            f"seed {config.data.train_seed}" + _dates_text(manifest, "train", config.horizon_days)),
         ("bootstrap", f"{metrics.get('bootstrap_samples')} paired resamples over paths, "

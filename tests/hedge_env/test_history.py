@@ -392,6 +392,16 @@ def test_run_folder_states_both_date_ranges(tmp_path):
                            "--runs-dir", str(tmp_path / "runs"), "--quiet", "--json"],
                           capture_output=True, text=True, cwd=ROOT)
     assert done.returncode == 0, done.stderr
+    # The screen says what the history could give: fewer windows than asked, tails on few paths, no seed.
+    screen = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "evaluate", str(config),
+                             "--quiet"], capture_output=True, text=True, cwd=ROOT)
+    assert screen.returncode == 0, screen.stderr
+    windows = json.loads(done.stdout)["heldout_paths"]
+    said = " ".join(screen.stdout.split())
+    assert f"{windows} held-out windows of the history (all it has; data.heldout_paths asks for 50,000)" in said
+    assert f"VaR and CVaR rest on {windows} paths (fewer than 100)" in said
+    title = screen.stdout.splitlines()[0]
+    assert "held-out windows" in title and "seed" not in title  # fixed windows have no seed
     run_dir = next((tmp_path / "runs").iterdir())
     manifest = json.loads((run_dir / "manifest.json").read_text())
     history = manifest["history"]
@@ -400,6 +410,9 @@ def test_run_folder_states_both_date_ranges(tmp_path):
     report = (run_dir / "report.html").read_text()
     for role in ("train", "heldout"):
         assert f"{history[role]['first_date']} to {history[role]['last_date']}" in report
+    windows = history["heldout"]["windows"]
+    assert f"{windows} held-out windows of the history (all it has; data.heldout_paths asks for 50,000)" in report
+    assert f"VaR and CVaR rest on {windows} paths (fewer than 100)" in report
     out = json.loads(done.stdout)
     assert out["heldout_paths"] == history["heldout"]["windows"]
 
