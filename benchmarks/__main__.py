@@ -53,9 +53,9 @@ def training_times(sizes: list[int]) -> dict[str, list[tuple[int, float, float]]
     from agents.dataset import Exploration, TransitionStore
     from agents.fitted_q import FittedQAgent
     from agents.linear import LinearBasisAgent
-    from rehedge.training import collect_training_chunks
     from hedge_env.env import default_problem
     from hedge_env.market import PathSet
+    from rehedge.training import collect_training_chunks
 
     problem, market = default_problem()
     out: dict[str, list[tuple[int, float, float]]] = {"linear": [], "fitted_q": []}

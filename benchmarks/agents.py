@@ -21,12 +21,12 @@ from pathlib import Path
 
 import numpy as np
 
-from rehedge.config import load_variants
 from agents.dataset import Exploration, collect
 from agents.linear import LinearBasisAgent
-from rehedge.build import training_path_set
-from rehedge.training import train
 from hedge_env.rollout import rollout_many
+from rehedge.build import training_path_set
+from rehedge.config import load_variants
+from rehedge.training import train
 
 BOOTSTRAP = 1000
 

@@ -15,8 +15,8 @@ import argparse
 import resource
 import time
 
-from rehedge.config import load_variants
 from rehedge.compare import evaluate_policies, evaluate_with_quotes
+from rehedge.config import load_variants
 from rehedge.training import train
 
 

@@ -19,9 +19,8 @@ measurement behind the choice of QE in hedge_env.market.HestonMarket.
 from __future__ import annotations
 
 import argparse
-import time
-
 import math
+import time
 
 import numpy as np
 from joblib import Parallel, delayed

@@ -34,8 +34,8 @@ def child(paths: int, agents: list[str], config_path: str) -> dict:
     """The measured job, in this process."""
     from rehedge.compare import evaluate_with_quotes, write_metrics
     from rehedge.report import build_report
-    from rehedge.training import train
     from rehedge.run_folder import write_run
+    from rehedge.training import train
 
     base = load_variants(config_path)[0].model_dump(mode="json")
     base.pop("sweep", None)

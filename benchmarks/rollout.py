@@ -65,8 +65,8 @@ def per_path_loop(problem, spot_paths: np.ndarray) -> dict[str, np.ndarray]:
 
 def memory_child(n_paths: int) -> None:
     """Run in a fresh process: evaluate every baseline on n_paths and print peak RSS in MB."""
-    from rehedge.compare import evaluate_policies
     from agents.baselines import FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand
+    from rehedge.compare import evaluate_policies
 
     problem, market = default_problem()
     policies = {p.name: p for p in (NoHedge(problem), DeltaHedge(problem), LelandDelta(problem),

@@ -24,11 +24,11 @@ from pathlib import Path
 
 import numpy as np
 
-from rehedge.config import load_variants
-from rehedge.tables.reader import HedgeTable
-from rehedge.tables.export import export_policy
-from rehedge.training import train
 from hedge_env.rollout import rollout_many
+from rehedge.config import load_variants
+from rehedge.tables.export import export_policy
+from rehedge.tables.reader import HedgeTable
+from rehedge.training import train
 
 
 def folder_size(folder: Path) -> int:

@@ -42,7 +42,6 @@ import pandas as pd
 
 from hedge_env.market import MARK_VOLATILITY_FACTOR, GivenPaths, MarketPaths, SimulatedMarket
 
-
 # Plausible implied volatilities per unit: (low, high, low inclusive).
 _VOLATILITY_RANGE = {"decimal": (0.0, 5.0, False), "percent": (1.0, 500.0, True)}
 _FIRST_ROW = 2  # spreadsheet numbering: the header is row 1

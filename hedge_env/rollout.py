@@ -18,7 +18,6 @@ from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem
 from hedge_env.step import StepOutcome, hedge_step, initial_state, observe
 
-
 _TOTALS = ("pnl", "reward", "hedge_gain", "book_change", "financing", "trading_cost", "impact_cost",
            "traded_shares", "trades")
 

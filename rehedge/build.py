@@ -8,15 +8,13 @@ from dataclasses import replace
 
 import numpy as np
 
-from rehedge.errors import ConfigError
-from rehedge.schema import Config
 from agents.registry import AGENTS, BASELINES
 from agents.tuning import trial_count, tune_parameter
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
 from hedge_env.history import (
-    History,
     HistoricalWindows,
+    History,
     HistoryError,
     StationaryBootstrap,
     load_history,
@@ -25,6 +23,8 @@ from hedge_env.history import (
 from hedge_env.market import MARKET_MODELS, PathGenerator, PathSet
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
+from rehedge.errors import ConfigError
+from rehedge.schema import Config
 
 
 def build_problem(config: Config) -> HedgingProblem:

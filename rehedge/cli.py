@@ -9,12 +9,12 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import typer
-from typer.core import TyperGroup
 from rich import box
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.measure import Measurement
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
+from typer.core import TyperGroup
 
 from rehedge.errors import UserError
 from rehedge.formats import (
@@ -247,8 +247,8 @@ def _reference(cfg, policies) -> str | None:
 
 
 def _train(cfg, config: Path, runs_dir: Path, quiet: bool, threads: int | None):
-    from rehedge.training import train
     from rehedge.run_folder import write_run
+    from rehedge.training import train
 
     with _progress(quiet) as start:
         training = train(cfg, start, threads)

@@ -14,7 +14,6 @@ from scipy.optimize import brentq
 from agents.policy import Mirrored
 from hedge_env import pricing
 from hedge_env.book import Book
-
 from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import HedgeResult, PolicyOutputError, rollout_many

@@ -24,7 +24,6 @@ from rehedge.run_folder import finish_run, write_run
 from rehedge.schema import Config
 from rehedge.training import ProgressStart, Training, no_progress, train
 
-
 # Tests that stop a run part-way name a file here: the run then stops before its held-out stage, with
 # its training written, until that file is removed (it first writes FILE.reached), so the moment a
 # signal arrives is the test's choice, not a guess about how fast the machine is.

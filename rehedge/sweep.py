@@ -44,8 +44,8 @@ from typing import Any
 
 import pandas as pd
 
-from rehedge.errors import ConfigError
 from rehedge.config import config_hash, load_config, load_variants
+from rehedge.errors import ConfigError
 from rehedge.schema import Config
 from rehedge.workers import THREADS_PER_TASK, run_each
 

@@ -13,11 +13,18 @@ from datetime import datetime, timezone
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from agents.dataset import Exploration, TransitionStore, Transitions, collect
+from agents.dataset import Exploration, Transitions, TransitionStore, collect
 from agents.registry import LEARNED_FROM_TRANSITIONS
 from hedge_env.market import PathGenerator, PathSet
 from hedge_env.problem import HedgingProblem
-from rehedge.build import build_agent, build_markets, build_problem, describe_markets, prepare_baselines, training_path_set
+from rehedge.build import (
+    build_agent,
+    build_markets,
+    build_problem,
+    describe_markets,
+    prepare_baselines,
+    training_path_set,
+)
 from rehedge.schema import Config
 
 # Reporter of progress: start(label, total) -> advance(n).

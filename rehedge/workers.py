@@ -28,7 +28,7 @@ from typing import Any
 
 from threadpoolctl import threadpool_limits
 
-from agents.dataset import Exploration, TransitionStore, Transitions, load_transitions, save_transitions
+from agents.dataset import Exploration, Transitions, TransitionStore, load_transitions, save_transitions
 from hedge_env.market import PathSet
 from hedge_env.problem import HedgingProblem
 

@@ -44,7 +44,6 @@ from rehedge.report.figures import (
 )
 from rehedge.report.scored import Scored, load_scored, read_sibling
 
-
 _CSS = """
 body { font-family: -apple-system, "Segoe UI", Helvetica, Arial, sans-serif; color: #2b2a27;
        max-width: 1120px; margin: 0 auto; padding: 18px 26px 40px; line-height: 1.45; font-size: 14px; }

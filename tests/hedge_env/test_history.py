@@ -20,11 +20,6 @@ import pytest
 
 from agents.baselines import DeltaHedge
 from agents.registry import LEARNED_FROM_TRANSITIONS
-from rehedge.errors import ConfigError
-from rehedge.config import parse_config
-from rehedge.compare import evaluate_policies
-from rehedge.build import build_markets, build_problem, historical_parts, path_count
-from rehedge.training import train
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.history import (
     HistoricalWindows,
@@ -37,6 +32,11 @@ from hedge_env.history import (
 )
 from hedge_env.problem import HedgingProblem, Schedule
 from hedge_env.rollout import rollout
+from rehedge.build import build_markets, build_problem, historical_parts, path_count
+from rehedge.compare import evaluate_policies
+from rehedge.config import parse_config
+from rehedge.errors import ConfigError
+from rehedge.training import train
 
 ROOT = Path(__file__).resolve().parents[2]
 DAYS_PER_YEAR = 252

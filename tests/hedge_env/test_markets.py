@@ -22,15 +22,14 @@ import numpy as np
 import pytest
 from threadpoolctl import threadpool_limits
 
-from rehedge.errors import ConfigError
-from rehedge.config import parse_config
-from rehedge.compare import evaluate_policies, write_metrics
-from rehedge.report import build_report
-from rehedge.training import train
-from rehedge.run_folder import write_run
 from hedge_env import pricing
 from hedge_env.market import BLOCK_PATHS, HestonMarket, MertonMarket
-
+from rehedge.compare import evaluate_policies, write_metrics
+from rehedge.config import parse_config
+from rehedge.errors import ConfigError
+from rehedge.report import build_report
+from rehedge.run_folder import write_run
+from rehedge.training import train
 
 CONFIGS = Path(__file__).resolve().parents[2] / "configs"
 RATE, DIVIDEND = 0.03, 0.01

@@ -14,7 +14,6 @@ import pytest
 from hedge_env import pricing as bs
 
 
-
 def _random_inputs(n: int, seed: int) -> dict:
     """Random inputs over the ranges the environment uses."""
     rng = np.random.default_rng(seed)

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 import json
-import tomllib
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import joblib

@@ -8,9 +8,9 @@ from pathlib import Path
 
 import pytest
 
-from rehedge.errors import ConfigError
-from rehedge.config import config_hash, load_config, parse_config
 from rehedge.build import build_markets, build_problem
+from rehedge.config import config_hash, load_config, parse_config
+from rehedge.errors import ConfigError
 from rehedge.schema import Config, DeltaBaseline, LelandBaseline
 
 DEMO = Path(__file__).resolve().parents[2] / "configs" / "demo.toml"

@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 
 from agents.baselines import DeltaHedge, FixedBand, NoHedge
+from hedge_env.env import default_problem
 from rehedge.compare import evaluate_policies, paired_bootstrap
 from rehedge.errors import PolicyError
-from hedge_env.env import default_problem
 
 
 def test_a_policy_against_itself_has_a_zero_width_interval_at_zero():
@@ -67,9 +67,9 @@ def test_quotes_of_a_zero_cost_delta_hedge_tend_to_the_black_scholes_price_as_re
     # falls like 1/N (Kamal and Derman 1999, from memory), and the bid sits below by as much.
     from dataclasses import replace
 
-    from rehedge.compare import evaluate_with_quotes
     from hedge_env.frictions import Frictions
     from hedge_env.problem import Schedule
+    from rehedge.compare import evaluate_with_quotes
 
     problem, market = default_problem()
     excess = []

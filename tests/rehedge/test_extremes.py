@@ -11,8 +11,8 @@ import math
 import numpy as np
 import pytest
 
-from rehedge.config import parse_config
 from rehedge.compare import evaluate_with_quotes, write_metrics
+from rehedge.config import parse_config
 from rehedge.training import train
 
 BASE = {

@@ -11,16 +11,16 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from rehedge.errors import RunFolderError
-from rehedge.config import load_variants
-from rehedge.compare import evaluate_with_quotes, write_metrics
-from agents.baselines import DeltaHedge
 from agents.band import NO_TRADE_TOLERANCE
+from agents.baselines import DeltaHedge
+from rehedge.compare import evaluate_with_quotes, write_metrics
+from rehedge.config import load_variants
+from rehedge.errors import RunFolderError
 from rehedge.formats import CAUTION, format_money
 from rehedge.report import build_report
 from rehedge.report.figures import policy_map
-from rehedge.training import train
 from rehedge.run_folder import load_run, write_run
+from rehedge.training import train
 
 # Two variants (10 and 50 bps) of a short 8-day call: seconds to train and score.
 from tests.scenarios import TINY

@@ -15,7 +15,6 @@ import rehedge.runner
 from rehedge.cli import app
 from rehedge.errors import ConfigError
 from rehedge.sweep import run_sweep, sweep_cells
-
 from tests.scenarios import sweep_scenario
 
 SWEEP = sweep_scenario()

@@ -17,20 +17,20 @@ from typer.testing import CliRunner
 from agents.baselines import DeltaHedge, FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand
 from agents.dataset import Exploration, Transitions, collect_chunks
 from agents.fitted_q import FittedQAgent, default_regressor
-from agents.linear import LinearBasisAgent
-from rehedge.cli import CAUTION, app
-from rehedge.errors import ConfigError
-from rehedge.config import parse_config
 from agents.grid_dp import GridDPAgent
+from agents.linear import LinearBasisAgent
 from agents.policy import Policy
-from rehedge.tables.reader import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError
-from rehedge.tables.export import TableGrid, export_table
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
 from hedge_env.market import GBMMarket
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 from hedge_env.rollout import rollout_many
+from rehedge.cli import CAUTION, app
+from rehedge.config import parse_config
+from rehedge.errors import ConfigError
+from rehedge.tables.export import TableGrid, export_table
+from rehedge.tables.reader import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError
 
 ROOT = Path(__file__).resolve().parents[2]
 

@@ -13,12 +13,12 @@ from threadpoolctl import threadpool_limits
 from agents.baselines import DeltaHedge, FixedBand
 from agents.dataset import Exploration, Transitions, TransitionStore
 from agents.linear import LinearBasisAgent
-from rehedge.training import collect_training_chunks
-from rehedge.workers import collect_on_workers
 from hedge_env.env import default_problem
 from hedge_env.market import PathSet
 from hedge_env.problem import Schedule
 from hedge_env.rollout import rollout_many
+from rehedge.training import collect_training_chunks
+from rehedge.workers import collect_on_workers
 
 PATHS = 800
 CHUNK = 200
