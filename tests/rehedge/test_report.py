@@ -157,7 +157,7 @@ def test_scenario_names_config_seeds_created_time_and_config_hash(runs, report):
     assert "report-test-costrate0.001" in text
     assert manifest["created"] in text
     assert manifest["config_hash"] in text
-    assert f"800 paths, seed {metrics['heldout_seed']}" in text
+    assert f"800 held-out paths, seed {metrics['heldout_seed']}" in text
     assert f"200 paired resamples over paths, seed {metrics['bootstrap_seed']}" in text
     assert "10 bps of traded notional" in text
 
