@@ -113,8 +113,8 @@ class LinearBasisAgent(BackwardQAgent):
         """The fit of :meth:`fit` with each chunk's work done where the chunk is held.
 
         ``map_chunks(function, *args)`` applies ``function(chunk, *args)`` to every
-        chunk of transitions (in this process, joblib workers or a dask cluster:
-        rehedge.workers) and returns the results in chunk order. Per decision time,
+        chunk of transitions (in this process, joblib workers or a dask cluster: the
+        application decides) and returns the results in chunk order. Per decision time,
         from the last, each chunk's normal equations are computed with the
         coefficients fitted so far, summed in chunk order and solved: the numbers
         of :meth:`fit` streaming the same chunks.

@@ -29,7 +29,7 @@ from rehedge.formats import (
 
 # Library modules are imported inside the commands that use them: `rehedge advise` answers from a
 # hedge table with numpy alone, without starting scikit-learn, pandas, matplotlib or gymnasium.
-# Errors a user can cause (rehedge.errors.UserError) reach main(), which prints them in one line.
+
 
 class _Commands(TyperGroup):
     """The command group: an error a user can cause (rehedge.errors.UserError: config, run folder,
@@ -53,7 +53,6 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_enable=False,
 )
-# Tables are wide: when the output is not a terminal, do not fold them at 80 columns.
 # Not a terminal (a file, a pipe): tables up to 160 columns, and prose is never broken mid-sentence.
 console = Console(width=None if sys.stdout.isatty() else 160, soft_wrap=not sys.stdout.isatty())
 errors = Console(stderr=True, soft_wrap=True)
