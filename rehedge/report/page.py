@@ -128,7 +128,11 @@ def _scenario_html(scored: Scored) -> str:
             f"{name}.{key} = {value:.6g}" for name, entry in tuned.items()
             for key, value in entry.items() if key != "train_objective")))
     if records and "mark" in records[0]:
-        facts.append(("Black-Scholes mark of the book", f"{format_money(records[0]['mark'])} (currency)"))
+        mark = records[0]["mark"]
+        # The mark is the configured position's liability: positive when the desk has sold the book.
+        meaning = ("the premium received for the book the desk has sold" if mark > 0 else
+                   "minus the premium paid for the book the desk has bought")
+        facts.append(("Black-Scholes mark of the book", f"{format_money(mark)} (currency): {meaning}"))
     return (f"<h2>Scenario</h2>{_facts_table(facts[:2])}<h3>Book</h3>{book}"
             f"<h3>Market, frictions, objective and data</h3>{_facts_table(facts[2:])}")
 

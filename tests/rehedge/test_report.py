@@ -158,6 +158,8 @@ def test_scenario_names_config_seeds_created_time_and_config_hash(runs, report):
     assert manifest["created"] in text
     assert manifest["config_hash"] in text
     assert f"800 held-out paths, seed {metrics['heldout_seed']}" in text
+    # A short call: its Black-Scholes mark is the premium the desk received.
+    assert "(currency): the premium received for the book the desk has sold" in text
     assert f"200 paired resamples over paths, seed {metrics['bootstrap_seed']}" in text
     assert "10 bps of traded notional" in text
 
