@@ -191,7 +191,7 @@ class BackwardQAgent(BaseEstimator):
         else:
             # Each target moved the market by its own factor f: E[S' | s, a] = S f (1 + m1) and
             # E[(S' - S)^2 | s, a] = S^2 (f^2 E[R^2] - 2 f (1 + m1) + 1), R the market's return.
-            next_spots = replayed_next_spots(problem, chunk, k)
+            next_spots = replayed_next_spots(problem, chunk, k, factors)
             move = next_spots - spot[:, None]
             move_surprise = move - spot[:, None] * (factors * (1.0 + growth) - 1.0)
             second = self.mean_squared_return_ + 2.0 * growth + 1.0

@@ -175,11 +175,14 @@ def replayed_impact(problem: HedgingProblem, chunk: Transitions, k: int) -> np.n
     return frictions.impact_factor(trade, np.exp)
 
 
-def replayed_next_spots(problem: HedgingProblem, chunk: Transitions, k: int) -> np.ndarray:
+def replayed_next_spots(problem: HedgingProblem, chunk: Transitions, k: int,
+                        factors: np.ndarray | None = None) -> np.ndarray:
     """(n, M) next spot of every tried target at step ``k``: the behaviour's (column 0) where targets do
-    not move the market, else rescaled by each target's impact factor over the behaviour's."""
+    not move the market, else rescaled by each target's impact factor over the behaviour's
+    (``factors``: :func:`replayed_impact`, when the caller has it already)."""
     behaviour = chunk.next_obs[k, :, 0] * problem.reference_spot
-    factors = replayed_impact(problem, chunk, k)
+    if factors is None:
+        factors = replayed_impact(problem, chunk, k)
     if factors is None:
         return np.broadcast_to(behaviour[:, None], chunk.actions[k].shape)
     return behaviour[:, None] * (factors / factors[:, :1])

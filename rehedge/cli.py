@@ -173,8 +173,8 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
         "costs per path" + (", turnover in notionals" if wide else ""),
         records, wide,
     )
-    if tail_caution(n_paths):
-        console.print(tail_caution(n_paths), highlight=False)
+    if caution := tail_caution(n_paths):
+        console.print(caution, highlight=False)
     reference = evaluation.reference
     if reference in evaluation.results:
         console.print(f"objective difference from {reference}, paired over paths, bootstrap 95% CI "

@@ -82,6 +82,7 @@ def _scenario_html(scored: Scored) -> str:
     market, frictions, objective, schedule = config.market, config.frictions, config.objective, config.schedule
     records = scored.records
     paths = int(records[0]["paths"]) if records and "paths" in records[0] else config.data.heldout_paths
+    tail = tail_caution(paths)
     legs = "".join(
         f"<tr><td>{_e(o.kind)}</td><td class='num'>{_e(f'{o.strike:g}')}</td>"
         f"<td class='num'>{_e(f'{o.expiry_days:g}')}</td><td class='num'>{_e(f'{o.quantity:+g}')}</td>"
@@ -112,7 +113,7 @@ def _scenario_html(scored: Scored) -> str:
         ("held-out paths", heldout_text(paths, config.data.heldout_paths, metrics.get("heldout_seed"),
                                         config.market.model == "historical")
                            + _dates_text(manifest, "heldout", config.horizon_days)
-                           + (f"; {tail_caution(paths)}" if tail_caution(paths) else "")),
+                           + (f"; {tail}" if tail else "")),
         ("training paths", f"{manifest.get('sizes', {}).get('train_paths', config.data.train_paths):,} paths, "
                            f"seed {config.data.train_seed}" + _dates_text(manifest, "train", config.horizon_days)),
         ("bootstrap", f"{metrics.get('bootstrap_samples')} paired resamples over paths, "

@@ -252,8 +252,7 @@ class HedgeTable:
         # exact at the nodes only); a target is moved onto the nearer edge, so asking again from it
         # trades no more.
         banded = np.isfinite(lower) & np.isfinite(upper)
-        target = np.where(banded, np.clip(target, np.where(banded, lower, -np.inf), np.where(banded, upper, np.inf)),
-                          target)
+        target = np.clip(target, np.where(banded, lower, -np.inf), np.where(banded, upper, np.inf))
         target = np.where(inside, held, target)
         return TableDecision(
             target.reshape(shape), (target - held).reshape(shape), lower.reshape(shape), upper.reshape(shape),
