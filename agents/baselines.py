@@ -37,6 +37,7 @@ def _to_band(holding: np.ndarray, center: np.ndarray, half_width: np.ndarray) ->
 class NoHedge:
     problem: HedgingProblem
     name: str = "no_hedge"
+    label = "no hedge"  # what reports call the kind
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         return np.zeros(len(obs))
@@ -49,6 +50,7 @@ class DeltaHedge:
     problem: HedgingProblem
     volatility: float | None = None
     name: str = "delta"
+    label = "Black-Scholes delta"
 
     def hedge_shares(self, obs: np.ndarray, book_delta: np.ndarray | None = None):
         """Target holding in shares and the decoded observation.
@@ -88,6 +90,7 @@ class LelandDelta:
     cost_rate: float | None = None
     volatility: float | None = None
     name: str = "leland"
+    label = "Leland delta"
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         problem = self.problem
@@ -112,6 +115,7 @@ class WhalleyWilmottBand:
     problem: HedgingProblem
     risk_aversion: float = 1.0
     name: str = "whalley_wilmott"
+    label = "Whalley-Wilmott band"
 
     def half_width_shares(self, spot, t_days, volatility=None) -> np.ndarray:
         """Band half-width in shares; gamma at ``volatility`` (per row, or None: the mark volatility)."""
@@ -137,6 +141,7 @@ class FixedBand:
     problem: HedgingProblem
     half_width: float = 0.05
     name: str = "fixed_band"
+    label = "fixed band"
 
     def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
         center, decoded = DeltaHedge(self.problem).hedge_shares(obs, book_delta)

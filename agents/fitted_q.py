@@ -97,6 +97,8 @@ class FittedQAgent(BackwardQAgent):
     name : str
     """
 
+    label = "fitted-Q agent"  # what reports call the kind
+
     def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, max_rows_per_step: int = 2_000_000, name: str = "fitted_q"):

@@ -115,6 +115,8 @@ class GridDPAgent(BaseEstimator):
     >>> target = agent.act([[1.0, problem.horizon_years, 0.0]])  # per share of notional
     """
 
+    label = "grid optimum"  # what reports call the kind
+
     def __init__(
         self,
         problem: HedgingProblem,

@@ -79,6 +79,8 @@ class LinearBasisAgent(BackwardQAgent):
     name : str
     """
 
+    label = "linear agent"  # what reports call the kind
+
     def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6, smoothing: float = 0.0,
                  band_widths=DEFAULT_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, name: str = "linear"):

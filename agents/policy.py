@@ -24,6 +24,9 @@ class Policy(Protocol):
     the step function computed it for these rows. The rollout then calls it
     instead of ``act``, sparing a second pricing pass; it must return the
     same targets as ``act``.
+
+    A kind in ``agents.registry`` also carries a class attribute ``label``: its
+    readable name in reports ("Whalley-Wilmott band", "no hedge").
     """
 
     name: str

@@ -23,7 +23,8 @@ from hedge_env.market import GivenPaths
 from hedge_env.rollout import rollout
 from hedge_env.step import observation_rows
 from rehedge.formats import format_days
-from rehedge.report.scored import Scored, load_scored, read_sibling
+from rehedge.report.scored import Scored, load_scored, policy_label, read_sibling
+from rehedge.tables.export import grid_of, table_nodes
 
 # Our own palette: muted, distinguishable in print and for the common colour-vision deficiencies.
 PALETTE = ("#1f4e79", "#d1603d", "#3a8f5c", "#8c5fb0", "#e0a526", "#4fa3c7", "#8a5a44", "#7a7a1e",
@@ -72,6 +73,11 @@ def colors_of(names: Sequence[str]) -> dict[str, str]:
     return {name: PALETTE[i % len(PALETTE)] for i, name in enumerate(names)}
 
 
+def labels_of(records: Sequence[dict]) -> dict[str, str]:
+    """Each scored policy's readable label, by name."""
+    return {r["name"]: policy_label(r["name"], r.get("kind", "")) for r in records}
+
+
 
 
 def _figure(width: float, height: float, rows: int = 1, cols: int = 1, **subplot_options):
@@ -111,34 +117,59 @@ def _wide_policies(pnl: dict[str, np.ndarray]) -> list[str]:
 
 
 def pnl_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
+    """Small panels, one per policy on shared axes, each with the reference policy's outline: seven
+    overlaid histograms cannot be told apart, panels side by side can."""
     names = [r["name"] for r in scored.records]
+    labels = labels_of(scored.records)
     pnl = {name: scored.heldout[f"pnl__{name}"] for name in names}
     skipped = _wide_policies(pnl)
     shown = [name for name in names if name not in skipped]
+    reference = scored.metrics.get("reference_policy")
+    reference = reference if reference in shown else None
     pooled = np.concatenate([pnl[name] for name in shown])
     low, high = _central_range(pooled)
-    bins = np.linspace(low, high, 90)
-    figure, axes = _figure(9.0, 3.6)
-    ax = axes[0, 0]
-    for name in shown:
-        values = pnl[name]
-        inside = values[(values >= low) & (values <= high)]
+    bins = np.linspace(low, high, 70)
+
+    def density(values: np.ndarray) -> np.ndarray:
         # Density of all paths, so a policy with more paths outside the range sits lower.
-        counts, edges = np.histogram(inside, bins=bins)
-        density = counts / (values.size * np.diff(edges))
-        ax.stairs(density, edges, color=colors[name], linewidth=1.5, label=name)
-    ax.axvline(0.0, color="#33312c", linewidth=0.7, linestyle=":")
+        counts, _ = np.histogram(values[(values >= low) & (values <= high)], bins=bins)
+        return counts / (values.size * np.diff(bins))
+
+    columns = min(4, len(shown))
+    rows = -(-len(shown) // columns)
+    figure, axes = _figure(10.5, 0.4 + 1.9 * rows, rows, columns, sharex=True, sharey=True)
+    outline = density(pnl[reference]) if reference is not None else None
+    for index, ax in enumerate(axes.flat):
+        if index >= len(shown):
+            ax.set_visible(False)
+            continue
+        name = shown[index]
+        ax.stairs(density(pnl[name]), bins, fill=True, color=colors[name], alpha=0.75, linewidth=0)
+        if outline is not None and name != reference:
+            ax.stairs(outline, bins, color="#33312c", linewidth=0.9)
+        mean = float(pnl[name].mean())
+        ax.axvline(mean, color="#33312c", linewidth=0.9, linestyle="--")
+        ax.axvline(0.0, color="#33312c", linewidth=0.6, linestyle=":")
+        ax.set_title(f"{names.index(name) + 1}. {labels[name]}", fontsize=8.5)
+        ax.text(0.98, 0.92, f"mean {mean:,.0f}\nstd {float(pnl[name].std()):,.0f}", transform=ax.transAxes,
+                ha="right", va="top", fontsize=7)
+        if index % columns == 0:
+            ax.set_ylabel("density")
+        if index >= len(shown) - columns:
+            ax.set_xlabel("P&L per path (currency)")
+        ax.tick_params(labelbottom=True)
+    ax = axes[0, 0]
     ax.set_xlim(low, high)
-    ax.set_xlabel("P&L per path over the horizon (currency)")
-    ax.set_ylabel("density (per currency unit)")
-    ax.set_title("Held-out P&L distribution")
-    _legend_below(figure, *ax.get_legend_handles_labels())
     paths = pnl[names[0]].size
-    caption = (f"Step histograms of the P&L of {paths:,} held-out paths per policy, between the "
-               f"{100 * _CLIP[0]:g}% and {100 * _CLIP[1]:g}% quantiles of the policies shown (pooled).")
+    caption = (f"Histograms of the P&L of {paths:,} held-out paths per policy, one panel each in rank order, "
+               f"on the same axes, between the {100 * _CLIP[0]:g}% and {100 * _CLIP[1]:g}% quantiles of the "
+               "policies shown (pooled); dashed: the policy's mean, dotted: zero.")
+    if reference is not None:
+        caption += f" The dark outline in each panel is {labels[reference]}, the reference policy."
     if skipped:
-        caption += (f" Not shown: {', '.join(skipped)} (its P&L spread is over {_OUTLIER_SPREAD:g} times the "
-                    "median policy's and would flatten the others; its numbers are in the table).")
+        caption += (f" Not shown: {', '.join(labels[name] for name in skipped)} (its P&L spread is over "
+                    f"{_OUTLIER_SPREAD:g} times the median policy's and would flatten the others; its numbers "
+                    "are in the tables).")
     return _png_data_uri(figure), caption
 
 
@@ -165,7 +196,7 @@ def _holding_nodes() -> np.ndarray:
 
 
 def policy_map(problem, agent, spot: np.ndarray, k: int, factors: Sequence[float] = ()) -> dict[str, np.ndarray]:
-    """An agent's decisions at decision time ``k`` over a spot grid, per share of notional.
+    """An agent's decisions at decision time ``k`` over a spot grid, in shares.
 
     Returns ``hedge`` (minus the book's Black-Scholes delta), ``target`` (the
     agent's target when holding the hedge) and ``no_trade_low`` /
@@ -187,7 +218,27 @@ def policy_map(problem, agent, spot: np.ndarray, k: int, factors: Sequence[float
 
     holdings = hedge[:, None] + _holding_nodes()[None, :]
     low, high = no_trade_band(targets_at, holdings, targets_at(holdings), NO_TRADE_TOLERANCE)
-    return {"hedge": hedge, "target": targets_at(hedge), "no_trade_low": low, "no_trade_high": high}
+    return {"hedge": hedge * notional, "target": targets_at(hedge) * notional,
+            "no_trade_low": low * notional, "no_trade_high": high * notional}
+
+
+def _holding_node(run, name: str) -> float | None:
+    """Spacing of the holding nodes (shares) of agent ``name``'s hedge table on the run's export grid;
+    None for an agent that observes market factors (it has no table)."""
+    agent = run.agents[name]
+    if getattr(agent, "factor_names", ()):
+        return None
+    holds = table_nodes(agent, run.problem, grid_of(run.config.export), run.config.pricing.volatility)[2]
+    return float(holds[1] - holds[0])
+
+
+def _band_departure(decisions: dict[str, np.ndarray], half_width: np.ndarray) -> float:
+    """Largest distance (shares) between the agent's no-trade edges and the band's around the hedge;
+    where the agent has no region its edges are its target."""
+    low = np.where(np.isnan(decisions["no_trade_low"]), decisions["target"], decisions["no_trade_low"])
+    high = np.where(np.isnan(decisions["no_trade_high"]), decisions["target"], decisions["no_trade_high"])
+    hedge = decisions["hedge"]
+    return float(max(np.abs(low - (hedge - half_width)).max(), np.abs(high - (hedge + half_width)).max()))
 
 
 def map_figures(scored: Scored, sample_factors: dict[str, np.ndarray]) -> list[tuple[str, str, str]]:
@@ -195,15 +246,17 @@ def map_figures(scored: Scored, sample_factors: dict[str, np.ndarray]) -> list[t
     learned = [spec.name for spec in run.config.agents if spec.kind in AGENTS]
     if not learned:
         return []
-    notional = problem.notional_shares
+    kinds = {spec.name: spec.kind for spec in run.config.agents}
     volatility = problem.marks.volatility
     path_volatility = getattr(run.market, "volatility", volatility)
     band = _ww_band(scored)
+    band_label = None if band is None else policy_label(band[0], "whalley_wilmott")
     times = _map_times(problem.schedule.steps)
     out = []
     for name in learned:
-        agent = run.agents[name]
+        agent, label = run.agents[name], policy_label(name, kinds[name])
         figure, axes = _figure(10.5, 5.6, 2, len(times), sharex="col", sharey="row")
+        departures = []
         for column, k in enumerate(times):
             # Spots where the paths are at this time (+-2.5 sd of log spot): off them an agent extrapolates.
             spread = 2.5 * path_volatility * math.sqrt(problem.schedule.time_days(k) / problem.marks.days_per_year)
@@ -213,52 +266,69 @@ def map_figures(scored: Scored, sample_factors: dict[str, np.ndarray]) -> list[t
             t_days = problem.schedule.time_days(k)
             hedge = decisions["hedge"]
             mark_volatility = factors[0] if problem.mark_volatility_observed and factors else None
-            half_width = (None if band is None
-                          else band[1].half_width_shares(spot, t_days, mark_volatility) / notional)
+            half_width = None if band is None else band[1].half_width_shares(spot, t_days, mark_volatility)
+            if half_width is not None:
+                departures.append((t_days, _band_departure(decisions, half_width)))
             # Top: holdings themselves; bottom: their gap from the hedge, where the bands are readable.
             for ax, center in ((axes[0, column], hedge), (axes[1, column], 0.0 * hedge)):
                 shift = hedge - center
                 ax.fill_between(spot, decisions["no_trade_low"] - shift, decisions["no_trade_high"] - shift,
-                                color=PALETTE[5], alpha=0.3, linewidth=0, label=f"{name} no-trade region")
+                                color=PALETTE[5], alpha=0.3, linewidth=0, label=f"{label}: no-trade region")
                 if half_width is not None:
                     for sign in (-1.0, 1.0):
                         ax.plot(spot, center + sign * half_width, color=PALETTE[1], linewidth=1.0, linestyle="--",
-                                label=f"{band[0]} band" if sign > 0 else None)
+                                label=band_label if sign > 0 else None)
                 ax.plot(spot, center, color="#33312c", linewidth=1.0, linestyle=":", label="Black-Scholes hedge")
-                ax.plot(spot, decisions["target"] - shift, color=PALETTE[0], linewidth=1.8, label=f"{name} target")
+                ax.plot(spot, decisions["target"] - shift, color=PALETTE[0], linewidth=1.8, label=f"{label}: target")
             days_left = problem.schedule.horizon_days - t_days
             axes[0, column].set_title(f"day {t_days:g}, {format_days(days_left)} to horizon")
             axes[1, column].set_xlabel("spot (currency per share)")
-        axes[0, 0].set_ylabel("holding (shares per share of notional)")
-        axes[1, 0].set_ylabel("holding - hedge (per share of notional)")
+        axes[0, 0].set_ylabel("holding (shares)")
+        axes[1, 0].set_ylabel("holding - hedge (shares)")
         _legend_below(figure, *axes[0, 0].get_legend_handles_labels())
-        low, high = _MAP_OFFSET_RANGE
+        low, high = (problem.notional_shares * edge for edge in _MAP_OFFSET_RANGE)
         at = (f"{100 * volatility:g}% volatility" if not problem.mark_volatility_observed
               else "the mark volatility of the first held-out path at each time")
-        caption = (f"{name}: target holding against spot when the current holding is the Black-Scholes "
-                   f"hedge (minus the book's delta at {at}, per share of the "
-                   f"{notional:,.0f}-share notional), over the spots within 2.5 standard deviations of "
-                   "log spot at each time (about 99% of paths); below, the same as gaps from the hedge. The shaded "
-                   f"region is where {name} does not trade (target equal to the holding within "
-                   f"{NO_TRADE_TOLERANCE:g} of notional): its edges are bracketed from {low:g} to {high:g} either "
-                   "side of the hedge and placed by bisection on the agent, as in the hedge tables.")
+        caption = (f"{label}: target holding (shares) against spot when the current holding is the "
+                   f"Black-Scholes hedge (minus the book's delta at {at}), over the spots within 2.5 standard "
+                   "deviations of log spot at each time (about 99% of paths); below, the same as gaps from the "
+                   f"hedge. The shaded region is where the agent does not trade (target equal to the holding "
+                   f"within {NO_TRADE_TOLERANCE:g} of the {problem.notional_shares:,.0f}-share notional): its "
+                   f"edges are bracketed from {low:.3g} to {high:,.0f} shares either side of the hedge and placed "
+                   "by bisection on the agent, as in the hedge tables.")
         if band is not None:
-            caption += (f" Dashed: the {band[0]} no-trade band (risk aversion "
-                        f"{band[1].risk_aversion:.6g}"
-                        f"{', tuned on the training paths' if band[0] in run.manifest.get('tuned', {}) else ''}).")
+            tuned = band[0] in run.manifest.get("tuned", {})
+            caption += (f" Dashed: the {band_label} (risk aversion {band[1].risk_aversion:.6g}"
+                        f"{', tuned on the training paths' if tuned else ''}).")
+            caption += _departure_text(departures, _holding_node(run, name), band_label)
         out.append((name, _png_data_uri(figure), caption))
     return out
 
 
+def _departure_text(departures: list[tuple[float, float]], node: float | None, band_label: str) -> str:
+    """The caption's sentence on where the agent's no-trade region leaves the band."""
+    worst = max(departures, key=lambda item: item[1])
+    if node is None:
+        return (f" Its no-trade edges are up to {worst[1]:,.0f} shares from the band's (day {worst[0]:g}); "
+                "the agent observes market factors, so it has no hedge table to compare with.")
+    outside = [f"day {day:g} ({gap:,.0f} shares)" for day, gap in departures if gap > node]
+    if not outside:
+        return (f" At every time shown its no-trade edges stay within one holding node of its hedge table "
+                f"({node:,.0f} shares) of the {band_label}'s.")
+    return (f" Its no-trade region leaves the {band_label} by more than one holding node of its hedge table "
+            f"({node:,.0f} shares) at {', '.join(outside)}: there it trades differently from the band by more "
+            "than the table can show.")
+
+
 def cost_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
     schedule = scored.run.problem.schedule
-    names = [r["name"] for r in scored.records]
+    names, labels = [r["name"] for r in scored.records], labels_of(scored.records)
     days = schedule.step_days * np.arange(0, schedule.steps + 1)
     figure, axes = _figure(9.0, 3.4)
     ax = axes[0, 0]
     for name in names:
         cumulative = np.concatenate([[0.0], np.cumsum(scored.heldout[f"step_cost__{name}"])])
-        ax.plot(days, cumulative, color=colors[name], label=name, marker="o", markersize=2.5)
+        ax.plot(days, cumulative, color=colors[name], label=labels[name], marker="o", markersize=2.5)
     ax.set_xlabel("time (days from start)")
     ax.set_ylabel("cumulative mean cost per path (currency)")
     ax.set_title("Trading and impact cost over the horizon")
@@ -283,6 +353,7 @@ def path_figure(scored: Scored, paths, seed: int, colors: dict[str, str]) -> tup
     schedule = problem.schedule
     policies = {**run.baselines, **run.agents}
     names = [r["name"] for r in scored.records if r["name"] in policies]
+    labels = labels_of(scored.records)
     days = schedule.step_days * np.arange(0, schedule.steps + 1)
     figure, axes = _figure(9.0, 3.6)
     ax = axes[0, 0]
@@ -291,7 +362,7 @@ def path_figure(scored: Scored, paths, seed: int, colors: dict[str, str]) -> tup
     for name in names:
         held = rollout(problem, policies[name], source, 1, keep_holdings=True, name=name).holdings[0]
         # Holding over each rehedge interval; repeated at the horizon so the last interval shows.
-        ax.plot(days, np.append(held, held[-1]), color=colors[name], drawstyle="steps-post", label=name)
+        ax.plot(days, np.append(held, held[-1]), color=colors[name], drawstyle="steps-post", label=labels[name])
     ax.set_xlabel("time (days from start)")
     ax.set_ylabel("holding (shares)")
     ax.set_xlim(0, schedule.horizon_days)
@@ -364,7 +435,7 @@ def _frontier_plot(scored: Scored, siblings: list[tuple[Path, dict, dict]], colo
                    swept: Sequence[str] = ()):
     here = (scored.run.path, scored.metrics, scored.run.config.model_dump(mode="json"))
     variants, labels = _order_variants([here, *siblings], swept)
-    names = [r["name"] for r in scored.records]
+    names, policy_labels = [r["name"] for r in scored.records], labels_of(scored.records)
     skipped = _wide_policies({name: scored.heldout[f"pnl__{name}"] for name in names})
     tail_key = "cvar_95" if "cvar_95" in scored.records[0] else next(
         (k for k in scored.records[0] if k.startswith("cvar_")), "std_pnl")
@@ -386,7 +457,7 @@ def _frontier_plot(scored: Scored, siblings: list[tuple[Path, dict, dict]], colo
             if not points:
                 continue
             x, y, _ = zip(*points)
-            ax.plot(x, y, color=colors[name], linewidth=1.2, label=name)
+            ax.plot(x, y, color=colors[name], linewidth=1.2, label=policy_labels[name])
             for xi, yi, index in points:
                 ax.plot(xi, yi, linestyle="none", marker=_MARKERS[index % len(_MARKERS)], markersize=5,
                         color=colors[name])
@@ -404,6 +475,6 @@ def _frontier_plot(scored: Scored, siblings: list[tuple[Path, dict, dict]], colo
                + "; ".join(f"{label}: {path.name}" for (path, _, _), label in zip(variants, labels))
                + "), the points of a policy joined in that order. Numbers from each run's metrics.json.")
     if skipped:
-        caption += (f" Not shown: {', '.join(skipped)} (its P&L spread is over {_OUTLIER_SPREAD:g} times the "
-                    "median policy's).")
+        caption += (f" Not shown: {', '.join(policy_labels[name] for name in skipped)} (its P&L spread is over "
+                    f"{_OUTLIER_SPREAD:g} times the median policy's).")
     return figure, caption

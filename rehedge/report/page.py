@@ -42,7 +42,7 @@ from rehedge.report.figures import (
     pnl_figure,
     sample_path,
 )
-from rehedge.report.scored import Scored, load_scored, read_sibling
+from rehedge.report.scored import Scored, load_scored, policy_label, read_sibling
 
 _CSS = """
 body { font-family: -apple-system, "Segoe UI", Helvetica, Arial, sans-serif; color: #2b2a27;
@@ -59,11 +59,12 @@ td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: now
 table.summary th { text-align: right; }
 table.summary th:first-child, table.summary th:nth-child(2) { text-align: left; }
 table.facts th { width: 210px; }
-.scroll { overflow-x: auto; }
 figure { margin: 14px 0 22px; }
 figure img { max-width: 100%; height: auto; display: block; }
 figcaption { font-size: 12.5px; color: #55524b; margin-top: 4px; max-width: 980px; }
 .above { color: #2f7a4d; } .below { color: #b3412c; }
+@media print { body { max-width: none; padding: 0; font-size: 11px; } table { font-size: 10px; }
+               figure, table { break-inside: avoid; } h2, h3 { break-after: avoid; } }
 """
 
 
@@ -170,41 +171,65 @@ def _cell(key: str, value, formatter) -> str:
     return f'<td class="num" data-key="{_e(key)}" data-value="{_e(repr(value))}">{_e(formatter(value))}</td>'
 
 
+# The summary's tables: each policy's row in each, so every column fits a 1,400 px window and a page.
+_SUMMARY_TABLES = (
+    ("Ranking", ("objective", "mean_pnl", "std_pnl")),
+    ("Tail risk", ("var_", "cvar_", "entropic_risk")),
+    ("Trading", ("mean_cost", "mean_impact", "turnover", "trades")),
+    ("Quotes", ("quote_", "spread_")),
+)
+
+
+def _summary_table(records: list[dict], columns, versus_of=None) -> str:
+    """One table of the summary: rank, policy and ``columns`` (with the difference from the
+    reference after the first column when ``versus_of`` makes its cells)."""
+    headers = ["#", "policy", columns[0].long]
+    if versus_of is not None:
+        headers += versus_of(None)
+    headers += [column.long for column in columns[1:]]
+    rows = []
+    for rank, record in enumerate(records, start=1):
+        cells = [f'<td class="num">{rank}</td>',
+                 f'<td data-key="name">{_e(policy_label(record["name"], record.get("kind", "")))}</td>',
+                 _cell(columns[0].key, record[columns[0].key], columns[0].format)]
+        if versus_of is not None:
+            cells += versus_of(record)
+        cells += [_cell(column.key, record[column.key], column.format) for column in columns[1:]]
+        rows.append(f'<tr data-policy="{_e(record["name"])}">{"".join(cells)}</tr>')
+    head = "".join(f"<th>{_e(h)}</th>" for h in headers)
+    return f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>'
+
+
+def _versus_cells(reference: str):
+    """Headers (for None) or cells of a record's difference from ``reference``."""
+
+    def cells(record: dict | None) -> list[str]:
+        if record is None:
+            return [f"vs {reference}: mean (currency)", "95% CI (currency)", "verdict"]
+        versus = record.get("vs_reference")
+        if versus is None:
+            return ['<td class="num">n/a</td>'] * 2 + ["<td></td>"]
+        mean = _cell("vs_reference_mean", versus["mean"], format_signed_money)
+        if record["name"] == reference:
+            return [mean, '<td class="num">reference</td>', "<td></td>"]
+        low, high = versus["ci_low"], versus["ci_high"]
+        verdict = "above" if low > 0 else "below" if high < 0 else "not distinguishable"
+        return [mean,
+                f'<td class="num" data-key="vs_reference_ci" data-value="{_e(repr(low))} {_e(repr(high))}">'
+                f"[{_e(format_signed_money(low))}, {_e(format_signed_money(high))}]</td>",
+                f'<td class="{verdict.split()[0]}">{verdict}</td>']
+
+    return cells
+
+
 def _summary_html(scored: Scored) -> str:
     records = scored.records
     reference = scored.metrics.get("reference_policy")
-    columns = [(c.key, c.long, c.format) for c in metric_columns(records[0])]
+    columns = metric_columns(records[0])
     has_versus = any("vs_reference" in r for r in records)
-    headers = ["#", "policy (kind)", columns[0][1]]
-    if has_versus:
-        headers += [f"vs {reference}: mean (currency)", "95% CI (currency)", "verdict"]
-    headers += [header for _, header, _ in columns[1:]]
-    rows = []
-    for rank, record in enumerate(records, start=1):
-        name, kind = record["name"], record.get("kind", "")
-        label = name if kind in ("", name) else f"{name} ({kind})"
-        cells = [f'<td class="num">{rank}</td>', f'<td data-key="name">{_e(label)}</td>',
-                 _cell(columns[0][0], record[columns[0][0]], columns[0][2])]
-        if has_versus:
-            versus = record.get("vs_reference")
-            if versus is None:
-                cells += ['<td class="num">n/a</td>'] * 2 + ["<td></td>"]
-            elif name == reference:
-                cells += [_cell("vs_reference_mean", versus["mean"], format_signed_money),
-                          '<td class="num">reference</td>', "<td></td>"]
-            else:
-                low, high = versus["ci_low"], versus["ci_high"]
-                verdict = "above" if low > 0 else "below" if high < 0 else "not distinguishable"
-                cells += [_cell("vs_reference_mean", versus["mean"], format_signed_money),
-                          f'<td class="num" data-key="vs_reference_ci" data-value="{_e(repr(low))} {_e(repr(high))}">'
-                          f"[{_e(format_signed_money(low))}, {_e(format_signed_money(high))}]</td>",
-                          f'<td class="{verdict.split()[0]}">{verdict}</td>']
-        cells += [_cell(key, record[key], fmt) for key, _, fmt in columns[1:]]
-        rows.append(f'<tr data-policy="{_e(name)}">{"".join(cells)}</tr>')
-    head = "".join(f"<th>{_e(h)}</th>" for h in headers)
-    note = ("Ranked by objective (higher is better). Every number is from this run's metrics.json, "
-            "formatted; money in the config's currency, costs and P&L per path over the horizon, VaR and "
-            "CVaR as positive losses. ")
+    note = ("Ranked by objective (higher is better), in the same order in every table. Every number is from "
+            "this run's metrics.json, formatted; money in the config's currency, costs and P&L per path over "
+            "the horizon, VaR and CVaR as positive losses. ")
     if has_versus:
         note += (f"The difference from {reference} is the mean per-path difference in summed reward, with a "
                  f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples); "
@@ -212,8 +237,14 @@ def _summary_html(scored: Scored) -> str:
     if "quote_bid" in records[0]:
         note += ("Bid and ask: mean-variance indifference premiums for the opposite and the configured book; "
                  "spreads are the distance from the Black-Scholes mark in implied-volatility points.")
-    return (f'<h2>Summary</h2><p class="muted">{_e(note)}</p><div class="scroll">'
-            f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table></div>')
+    parts = [f'<h2>Summary</h2><p class="muted">{_e(note)}</p>']
+    for title, prefixes in _SUMMARY_TABLES:
+        chosen = [c for c in columns if c.key.startswith(prefixes)]
+        if not chosen:
+            continue
+        versus = _versus_cells(reference) if has_versus and title == "Ranking" else None
+        parts.append(f"<h3>{_e(title)}</h3>{_summary_table(records, chosen, versus)}")
+    return "".join(parts)
 
 
 def _figure_html(uri: str, caption: str, alt: str, ident: str) -> str:

@@ -8,6 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
+from agents.registry import AGENTS, BASELINES
 from rehedge.errors import RunFolderError
 from rehedge.run_folder import Run, load_run
 
@@ -23,6 +24,15 @@ class Scored:
     @property
     def records(self) -> list[dict]:
         return self.metrics["policies"]
+
+
+def policy_label(name: str, kind: str = "") -> str:
+    """A policy's name as a reader sees it: the kind's readable label ("Whalley-Wilmott band") when the
+    config kept the kind as the name, else the name with that label in brackets."""
+    cls = {**BASELINES, **AGENTS}.get(kind)
+    if cls is None:
+        return name
+    return cls.label if name == kind else f"{name} ({cls.label})"
 
 
 def read_metrics(run_dir: Path) -> dict:

@@ -173,6 +173,23 @@ def _format_rows(columns: list[np.ndarray], digits: list[int]) -> bytes:
     return text.getvalue().encode("ascii")
 
 
+def table_nodes(policy, problem, grid: TableGrid = TableGrid(),
+                volatility: float | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The nodes of ``policy``'s hedge table: days left (ascending), moneyness, and holdings (shares).
+    ``volatility`` sets the moneyness domain as in :func:`export_table`."""
+    days_nodes = _days_left_nodes(problem)
+    if grid.moneyness_range is not None:
+        m_low, m_high = grid.moneyness_range
+    else:
+        sd = (problem.marks.volatility if volatility is None else volatility) * math.sqrt(problem.horizon_years)
+        m_low, m_high = math.exp(-grid.moneyness_width * sd), math.exp(grid.moneyness_width * sd)
+    money = _round_nodes(np.linspace(m_low, m_high, grid.moneyness_points))
+    h_low, h_high = _holding_domain(policy, problem, grid, days_nodes, money)
+    if not h_low < h_high:
+        raise TableError(f"empty holding domain [{h_low:g}, {h_high:g}] shares")
+    return days_nodes, money, _round_nodes(np.linspace(h_low, h_high, grid.holding_points))
+
+
 def export_table(
     policy,
     problem,
@@ -208,18 +225,7 @@ def export_table(
                          f"{tuple(policy.factor_names)}: a hedge table has only time, moneyness and holding")
     folder = Path(folder)
     notional, marks = problem.notional_shares, problem.marks
-    days_nodes = _days_left_nodes(problem)
-    if grid.moneyness_range is not None:
-        m_low, m_high = grid.moneyness_range
-    else:
-        sd = (marks.volatility if volatility is None else volatility) * math.sqrt(problem.horizon_years)
-        m_low, m_high = math.exp(-grid.moneyness_width * sd), math.exp(grid.moneyness_width * sd)
-    money = _round_nodes(np.linspace(m_low, m_high, grid.moneyness_points))
-    h_low, h_high = _holding_domain(policy, problem, grid, days_nodes, money)
-    if not h_low < h_high:
-        raise TableError(f"empty holding domain [{h_low:g}, {h_high:g}] shares")
-    holds = _round_nodes(np.linspace(h_low, h_high, grid.holding_points))
-
+    days_nodes, money, holds = table_nodes(policy, problem, grid, volatility)
     targets = _targets_at(policy, problem, days_nodes, money,
                           np.broadcast_to(holds, (days_nodes.size, money.size, holds.size)))
     # Rounding dust far below a share (e.g. 1e-70 deep out of the money) is written as 0.

@@ -12,13 +12,15 @@ import numpy as np
 import pytest
 
 from agents.band import NO_TRADE_TOLERANCE
-from agents.baselines import DeltaHedge
+from agents.baselines import DeltaHedge, FixedBand
+from agents.registry import AGENTS, BASELINES
 from rehedge.compare import evaluate_with_quotes, write_metrics
 from rehedge.config import load_variants
 from rehedge.errors import RunFolderError
-from rehedge.formats import CAUTION, format_money
+from rehedge.formats import CAUTION, format_money, metric_columns
 from rehedge.report import build_report
-from rehedge.report.figures import policy_map
+from rehedge.report.scored import policy_label
+from rehedge.report.figures import _band_departure, _departure_text, policy_map
 from rehedge.run_folder import load_run, write_run
 from rehedge.training import train
 
@@ -37,7 +39,7 @@ class StrictParser(HTMLParser):
         self.mismatches: list[str] = []
         self.tags: list[tuple[str, dict]] = []
         self.text: list[str] = []
-        self.rows: list[dict] = []  # summary rows: {"policy": name, key: cell text}
+        self.rows: list[dict] = []  # summary rows merged per policy: {"policy": name, key: cell text}
         self._row: dict | None = None
         self._cell_key: str | None = None
 
@@ -67,7 +69,12 @@ class StrictParser(HTMLParser):
         if tag == "td":
             self._cell_key = None
         if tag == "tr" and self._row is not None:
-            self.rows.append(self._row)
+            # The summary is several tables with a row per policy in each: one row per policy here.
+            same = [row for row in self.rows if row["policy"] == self._row["policy"]]
+            if same:
+                same[0].update(self._row)
+            else:
+                self.rows.append(self._row)
             self._row = None
 
     def handle_data(self, data):
@@ -175,6 +182,8 @@ def test_summary_objectives_are_the_metrics_json_values_formatted_in_rank_order(
         assert float(row["vs_reference_mean@value"]) == record["vs_reference"]["mean"]
         assert row["cvar_95"] == format_money(record["cvar_95"])
         assert row["quote_ask"] == format_money(record["quote_ask"])
+        # Every measure of metrics.json is in one of the summary's tables.
+        assert {column.key for column in metric_columns(record)} <= set(row)
 
 
 def test_metrics_csv_objectives_equal_metrics_json(runs):
@@ -214,20 +223,69 @@ def test_policy_map_finds_the_whalley_wilmott_band_as_its_no_trade_region(runs):
     run = load_run(runs[0])
     band, problem = run.baselines["whalley_wilmott"], run.problem
     spot = np.linspace(96.0, 104.0, 9)
-    decisions = policy_map(problem, band, spot, k=4)
-    half_width = band.half_width_shares(spot, problem.schedule.time_days(4)) / problem.notional_shares
-    assert (half_width > 1e-3).all()
+    decisions = policy_map(problem, band, spot, k=4)  # in shares
+    notional = problem.notional_shares
+    half_width = band.half_width_shares(spot, problem.schedule.time_days(4))
+    assert (half_width > 1e-3 * notional).all()
     np.testing.assert_array_equal(decisions["target"], decisions["hedge"])
     for found in (decisions["hedge"] - decisions["no_trade_low"], decisions["no_trade_high"] - decisions["hedge"]):
-        np.testing.assert_allclose(found, half_width, rtol=0, atol=1.01 * NO_TRADE_TOLERANCE)
+        np.testing.assert_allclose(found, half_width, rtol=0, atol=1.01 * NO_TRADE_TOLERANCE * notional)
+
+
+def test_band_departure_measures_how_far_a_no_trade_region_is_from_the_band(runs):
+    # A fixed band of half-width h (per share of notional) around the same hedge is a no-trade
+    # region whose edges are |h * notional - w(S)| from the Whalley-Wilmott band's of half-width w(S).
+    run = load_run(runs[0])
+    problem, band = run.problem, run.baselines["whalley_wilmott"]
+    notional, spot = problem.notional_shares, np.linspace(96.0, 104.0, 9)
+    half_width = band.half_width_shares(spot, problem.schedule.time_days(4))
+    assert _band_departure(policy_map(problem, band, spot, k=4), half_width) <= 1.01 * NO_TRADE_TOLERANCE * notional
+    fixed = FixedBand(problem, half_width=0.3)
+    expected = np.abs(0.3 * notional - half_width).max()
+    np.testing.assert_allclose(_band_departure(policy_map(problem, fixed, spot, k=4), half_width), expected,
+                               rtol=0, atol=1.01 * NO_TRADE_TOLERANCE * notional)
+
+
+def test_map_caption_says_where_the_agent_leaves_the_band_by_more_than_a_holding_node():
+    inside = _departure_text([(1.0, 20.0), (4.0, 35.0)], 40.0, "Whalley-Wilmott band")
+    assert "stay within one holding node of its hedge table (40 shares)" in inside
+    outside = _departure_text([(1.0, 20.0), (4.0, 55.0), (7.0, 90.0)], 40.0, "Whalley-Wilmott band")
+    assert "leaves the Whalley-Wilmott band by more than one holding node" in outside
+    assert "day 4 (55 shares), day 7 (90 shares)" in outside and "day 1 " not in outside
+
+
+def test_every_map_caption_compares_the_agent_with_the_band(report):
+    captions = re.findall(r'<figure id="map-[^"]+">.*?<figcaption>(.*?)</figcaption>',
+                          report.read_text(encoding="utf-8"), flags=re.S)
+    assert len(captions) == 3
+    for caption in captions:
+        assert "holding node of its hedge table" in caption
+        assert "(shares)" in caption
+
+
+def test_policies_are_named_by_readable_labels():
+    assert policy_label("whalley_wilmott", "whalley_wilmott") == "Whalley-Wilmott band"
+    assert policy_label("no_hedge", "no_hedge") == "no hedge"
+    assert policy_label("wide", "fixed_band") == "wide (fixed band)"
+    assert policy_label("table:linear", "") == "table:linear"
+    for kind, cls in {**BASELINES, **AGENTS}.items():
+        assert isinstance(cls.label, str) and cls.label != kind and "_" not in cls.label
+
+
+def test_summary_names_policies_by_their_labels(runs, report):
+    metrics = json.loads((runs[0] / "metrics.json").read_text())
+    rows = parse(report).rows
+    assert [row["name"] for row in rows] == [policy_label(r["name"], r["kind"]) for r in metrics["policies"]]
+    assert "Whalley-Wilmott band" in {row["name"] for row in rows}
 
 
 def test_policy_map_of_delta_hedging_keeps_only_the_hedge(runs):
     run = load_run(runs[0])
     spot = np.linspace(96.0, 104.0, 9)
     decisions = policy_map(run.problem, DeltaHedge(run.problem), spot, k=4)
-    np.testing.assert_allclose(decisions["no_trade_low"], decisions["hedge"], rtol=0, atol=1.01 * NO_TRADE_TOLERANCE)
-    np.testing.assert_allclose(decisions["no_trade_high"], decisions["hedge"], rtol=0, atol=1.01 * NO_TRADE_TOLERANCE)
+    atol = 1.01 * NO_TRADE_TOLERANCE * run.problem.notional_shares
+    np.testing.assert_allclose(decisions["no_trade_low"], decisions["hedge"], rtol=0, atol=atol)
+    np.testing.assert_allclose(decisions["no_trade_high"], decisions["hedge"], rtol=0, atol=atol)
 
 
 def test_folder_without_metrics_is_a_one_line_run_folder_error(runs, tmp_path):
