@@ -35,6 +35,7 @@ from rehedge.formats import (
 from rehedge.report.figures import (
     STYLE,
     colors_of,
+    labels_of,
     cost_figure,
     frontier_figure,
     map_figures,
@@ -278,8 +279,9 @@ def build_report(run_dir: Path, siblings: Sequence[Path] = (), staging: bool = F
     paths, seed = sample_path(scored)
     with matplotlib.rc_context(STYLE):
         figures = [("pnl", "P&L distribution", *pnl_figure(scored, colors))]
+        labels = labels_of(scored.records)
         for name, uri, caption in map_figures(scored, paths.factors):
-            figures.append((f"map-{name}", f"Policy map: {name}", uri, caption))
+            figures.append((f"map-{name}", f"Policy map: {labels.get(name, name)}", uri, caption))
         figures.append(("cost", "Cost over time", *cost_figure(scored, colors)))
         figures.append(("path", "One held-out path", *path_figure(scored, paths, seed, colors)))
         if others:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import re
 from html.parser import HTMLParser
 from pathlib import Path
@@ -25,6 +26,7 @@ from rehedge.run_folder import load_run, write_run
 from rehedge.training import train
 
 # Two variants (10 and 50 bps) of a short 8-day call: seconds to train and score.
+from tests import browser
 from tests.scenarios import TINY
 
 VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
@@ -297,3 +299,47 @@ def test_folder_without_metrics_is_a_one_line_run_folder_error(runs, tmp_path):
     with pytest.raises(RunFolderError, match=r"no metrics\.json") as error:
         build_report(unscored)
     assert "\n" not in str(error.value)
+
+
+@pytest.fixture(scope="module")
+def chromium():
+    if browser.chromium() is None:
+        if os.environ.get(browser.REQUIRE_ENVIRONMENT):
+            pytest.fail("no chromium on this machine (.ci/run installs the Debian package)")
+        pytest.skip("no chromium on this machine (apt-get install chromium)")
+    return browser.chromium()
+
+
+def _png_width(path: Path) -> int:
+    header = path.read_bytes()[:24]
+    assert header[:8] == b"\x89PNG\r\n\x1a\n"
+    return int.from_bytes(header[16:20], "big")
+
+
+def test_report_in_headless_chromium_fits_1400_px_and_shows_every_image(chromium, report):
+    # Common practice, no source: a desk head reads the report on a 1,400 px wide window; every
+    # summary column must be visible there without scrolling sideways, and at 800 px the page must
+    # still load. Screenshots are kept under the run folder for a person to look at.
+    for width in (1400, 800):
+        seen = browser.layout(report, width)
+        assert seen["window_width"] == width
+        assert len(seen["images"]) == 6
+        for image in seen["images"]:
+            assert image["complete"] and image["natural_width"] > 0, f"{image['alt']} did not load at {width} px"
+        if width == 1400:
+            assert seen["document_width"] <= width, "the page scrolls sideways at 1,400 px"
+            assert len(seen["tables"]) >= 3
+            for table in seen["tables"]:
+                assert 0 <= table["left"] and table["right"] <= width, f"a summary table overflows: {table}"
+        shot = browser.screenshot(report, width, seen["document_height"],
+                                  report.parent / "screenshots" / f"report-{width}.png")
+        assert _png_width(shot) == width
+
+
+def test_browser_check_catches_a_wide_table_and_a_broken_image(chromium, tmp_path):
+    page = tmp_path / "bad.html"
+    page.write_text('<!DOCTYPE html><html><body><table class="summary"><tr><td style="min-width:3000px">wide'
+                    '</td></tr></table><img alt="broken" src="data:image/png;base64,AAAA"></body></html>')
+    seen = browser.layout(page, 1400)
+    assert seen["document_width"] > 1400 and seen["tables"][0]["right"] > 1400
+    assert seen["images"][0]["natural_width"] == 0
