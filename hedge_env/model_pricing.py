@@ -1,0 +1,348 @@
+"""European options at the simulated model's own price: Heston (1993) and Merton (1976).
+
+Both price under the risk-neutral measure with the market model's own parameters (no premium for
+variance or jump risk): the drift becomes ``rate - dividend_yield``, everything else is kept. Each
+pricer returns, per path, the value, dV/dS and the derivative in the model's state (dV/dv in the
+variance for Heston; none for Merton, which has no state).
+
+Heston. With ``x = log(F / K)``, ``F = S e^{(r - q) tau}`` and ``X = log(S_T / F)``, whose
+characteristic function is ``psi(u) = exp(C(u) + D(u) v)`` (the "little Heston trap" form of
+Albrecher, Mayer, Schoutens and Tistaert, 2007, which stays on the principal branch of the
+logarithm), Lewis's (2001) single integral gives the call in units of the discounted strike:
+
+    c(x, v) = E[(e^{x + X} - 1)^+] = e^x - e^{x/2} / pi * I,
+    I = int_0^inf Re[e^{i u x} psi(u - i/2)] / (u^2 + 1/4) du,
+
+so that ``V = K e^{-r tau} c``, ``dV/dS = K e^{-r tau} c_x / S`` and ``dV/dv = K e^{-r tau} c_v``,
+with ``c_x`` and ``c_v`` the same integral with ``i u`` and ``D(u - i/2)`` under it. The integrand
+has poles at ``u = +-i/2`` and decays on the scale ``1 / sqrt(w tau)`` (``w`` the expected mean
+variance to expiry), two scales far apart at short expiries: Gauss-Legendre on [0, 2] resolves the
+first, panels of a 16-node Gauss-Legendre rule (doubling in width, then as wide as the oscillation
+``e^{i u x}`` and the decay allow) up to where the integrand falls below 1e-18 the second. Checked against QuantLib's AnalyticHestonEngine in
+tests/hedge_env/test_model_pricing.py (docs/references.md).
+
+Many paths at one time share ``tau``: :func:`heston_table` tabulates ``c, c_x, c_v`` once per
+``tau``, less the Black-Scholes ``c`` at the expected mean variance ``w(v)`` (the difference is
+small and smooth), on a grid of standardised log-moneyness ``z = x / sqrt(w(v) tau)`` and
+``y = v^(1/4)``; paths are read off it by cubic convolution and the Black-Scholes part added back
+in closed form. The few paths outside the grid are priced by the integral itself.
+
+Merton. The series of Black-Scholes prices conditional on the number of jumps (Merton 1976): with
+``k = E[J] - 1``, ``lambda' = lambda (1 + k)``, ``n`` jumps weigh ``e^{-lambda' tau} (lambda'
+tau)^n / n!`` and price at volatility ``sqrt(sigma^2 + n delta^2 / tau)`` and rate
+``r - lambda k + n log(1 + k) / tau``; the series stops when the Poisson weights left sum to less
+than 1e-15.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+from scipy.special import ndtr
+
+from hedge_env import pricing
+
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
+
+# The table: standardised log-moneyness z in [-Z, Z] at Z_POINTS nodes, y = v^(1/4) in
+# [0, y_max] at S_POINTS nodes (y_max from the parameters, see heston_table).
+TABLE_Z = 12.0
+TABLE_Z_POINTS = 241
+TABLE_S_POINTS = 61
+# Paths priced by the integral in one group (of similar variance: they share the nodes).
+_GROUP = 256
+# Integrand size below which the integral is cut off, relative to the strike's discounted unit.
+_CUTOFF = 1e-18
+_POLE_NODES = 48
+_POLE_RANGE = 2.0
+_MAX_PANELS = 2_000
+_PANEL_NODES = 16
+_TRAPEZOID_MAX = 100_000
+_TRAPEZOID_BLOCK = 256
+
+
+@lru_cache(maxsize=64)
+def _gauss_legendre(n: int) -> tuple[np.ndarray, np.ndarray]:
+    return np.polynomial.legendre.leggauss(n)
+
+
+@dataclass(frozen=True)
+class HestonPricer:
+    """Heston (1993) prices, deltas and variance sensitivities, risk-neutral, per path.
+
+    Parameters are the market model's (annual): ``mean_reversion`` kappa, ``long_run_variance``
+    theta, ``vol_of_vol`` xi (> 0), ``correlation`` rho, and the ``rate`` and ``dividend_yield``
+    of the marks.
+    """
+
+    mean_reversion: float
+    long_run_variance: float
+    vol_of_vol: float
+    correlation: float
+    rate: float = 0.0
+    dividend_yield: float = 0.0
+
+    state_factor = "variance"  # the market factor the marks read per path
+
+    def __post_init__(self) -> None:
+        if not (self.vol_of_vol > 0 and self.mean_reversion > 0 and self.long_run_variance > 0):
+            raise ValueError("Heston marks need vol_of_vol, mean_reversion and long_run_variance > 0")
+
+    def exponents(self, u: np.ndarray, tau: float) -> tuple[np.ndarray, np.ndarray]:
+        """``C(u), D(u)`` of ``psi(u) = exp(C + D v)`` for ``X = log(S_T / F)`` (complex ``u``)."""
+        kappa, theta, xi, rho = self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation
+        iu = 1j * u
+        b = kappa - rho * xi * iu
+        d = np.sqrt(b * b + xi * xi * (iu + u * u))
+        g = (b - d) / (b + d)
+        decay = np.exp(-d * tau)
+        c = kappa * theta / (xi * xi) * ((b - d) * tau - 2.0 * np.log((1.0 - g * decay) / (1.0 - g)))
+        dd = (b - d) / (xi * xi) * (1.0 - decay) / (1.0 - g * decay)
+        return c, dd
+
+    def mean_variance(self, v, tau: float):
+        """Expected mean variance from now to ``tau`` given the variance ``v`` now."""
+        kappa, theta = self.mean_reversion, self.long_run_variance
+        return theta + (np.asarray(v, dtype=float) - theta) * (-math.expm1(-kappa * tau)) / (kappa * tau)
+
+    def _nodes(self, tau: float, v_low: float, x_high: float) -> tuple[np.ndarray, np.ndarray]:
+        """Quadrature nodes and weights in u good for every path with ``v >= v_low``, ``|x| <= x_high``."""
+        scale = math.sqrt(max(float(self.mean_variance(v_low, tau)), 1e-12) * tau)
+        trial = np.geomspace(0.5, 1e4, 300) / scale
+        c, d = self.exponents(trial - 0.5j, tau)
+        size = np.exp(np.real(c + d * v_low) + 0.5 * x_high) / (trial * trial + 0.25)
+        below = np.nonzero(size * trial < _CUTOFF)[0]
+        u_max = max(float(trial[below[0]]) if below.size else float(trial[-1]), 2.0 * _POLE_RANGE)
+        # Panels of a 16-node Gauss-Legendre rule: doubling in width from the pole region (where
+        # 1 / (u^2 + 1/4) changes by its own size), up to a width that keeps the oscillation
+        # e^{i u x} under 1.5 radians and the decay under one scale per panel.
+        widest = min(1.5 / max(x_high, 1e-12), 1.0 / scale)
+        edges = [_POLE_RANGE]
+        while edges[-1] < u_max and len(edges) <= _MAX_PANELS:
+            edges.append(edges[-1] + min(edges[-1], widest))
+        edges = np.asarray(edges)
+        a, wa = _gauss_legendre(_POLE_NODES)
+        b, wb = _gauss_legendre(_PANEL_NODES)
+        half = 0.5 * np.diff(edges)[:, None]
+        u = np.concatenate([0.5 * _POLE_RANGE * (a + 1.0), (edges[:-1, None] + half * (b + 1.0)).ravel()])
+        weights = np.concatenate([0.5 * _POLE_RANGE * wa, (half * wb).ravel()])
+        return u, weights
+
+    def normalized_call(self, x, v, tau: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``c, c_x, c_v`` at log forward-moneyness ``x`` and variance ``v`` (arrays alike) by the integral.
+
+        Paths are taken in groups of similar variance, each with the nodes its lowest variance and
+        largest ``|x|`` need (the decay of the integrand is set by the variance)."""
+        x = np.atleast_1d(np.asarray(x, dtype=float))
+        v = np.maximum(np.broadcast_to(np.atleast_1d(np.asarray(v, dtype=float)), x.shape), 0.0)
+        out = np.empty((3, x.size))
+        order = np.argsort(v, kind="stable")
+        for start in range(0, x.size, _GROUP):
+            rows = order[start:start + _GROUP]
+            out[:, rows] = self._integrals(x[rows], v[rows], tau)
+        return out[0], out[1], out[2]
+
+    def _integrals(self, x: np.ndarray, v: np.ndarray, tau: float) -> np.ndarray:
+        u, weights = self._nodes(tau, float(v.min()), float(np.abs(x).max()))
+        c_u, d_u = self.exponents(u - 0.5j, tau)
+        scaled = weights / (u * u + 0.25)
+        terms = np.exp(1j * np.multiply.outer(x, u) + c_u + np.multiply.outer(v, d_u))
+        integral = np.real(terms) @ scaled
+        integral_x = np.real(terms * (1j * u)) @ scaled
+        integral_v = np.real(terms * d_u) @ scaled
+        half, whole = np.exp(0.5 * x) / math.pi, np.exp(x)
+        return np.stack([whole - half * integral, whole - half * (0.5 * integral + integral_x), -half * integral_v])
+
+    def value_delta_vega(self, spot, strike: float, tau: float, variance, is_call: bool, scale: float = 1.0,
+                         exact: bool = False):
+        """``scale`` x (value, dV/dS, dV/dv) of one option per path; ``tau <= 0``: the payoff.
+        ``exact`` prices every path by the integral instead of the table."""
+        spot = np.asarray(spot, dtype=float)
+        if tau <= 0:
+            value, delta = pricing.price_and_delta(spot, strike, 0.0, 0.0, is_call=is_call, scale=scale)
+            return value, delta, np.zeros_like(value)
+        discount = math.exp(-self.rate * tau)
+        x = np.log(spot / strike) + (self.rate - self.dividend_yield) * tau
+        variance = np.broadcast_to(np.asarray(variance, dtype=float), spot.shape)
+        if exact:
+            c, c_x, c_v = (part.reshape(spot.shape) for part in self.normalized_call(x.ravel(), variance.ravel(), tau))
+        else:
+            c, c_x, c_v = heston_table(self, tau).lookup(x, variance)
+        unit = scale * strike * discount
+        value, delta, vega = unit * c, unit * c_x / spot, unit * c_v
+        if not is_call:  # parity: P = C - S e^{-q tau} + K e^{-r tau}
+            carry = scale * math.exp(-self.dividend_yield * tau)
+            value = value - carry * spot + unit
+            delta = delta - carry
+        return value, delta, vega
+
+
+def _black_normalized(x: np.ndarray, v: np.ndarray, pricer: HestonPricer, tau: float) -> np.ndarray:
+    """``c, c_x, c_v`` of Black-Scholes at the expected mean variance ``w(v)``: the part of the Heston
+    call the table leaves out (the difference is smooth in the table's coordinates and small)."""
+    w = pricer.mean_variance(v, tau)
+    root = np.sqrt(w * tau)
+    d1 = x / root + 0.5 * root
+    forward = np.exp(x)
+    c_x = forward * ndtr(d1)
+    c = c_x - ndtr(d1 - root)
+    # dc/dw = e^x phi(d1) sqrt(tau) / (2 sqrt(w)); dw/dv = (1 - e^{-kappa tau}) / (kappa tau)
+    slope = -math.expm1(-pricer.mean_reversion * tau) / (pricer.mean_reversion * tau)
+    c_v = forward * np.exp(-0.5 * d1 * d1) * (_INV_SQRT_2PI * tau * 0.5 * slope) / root
+    return np.stack([c, c_x, c_v])
+
+
+def _keys_weights(t: np.ndarray) -> np.ndarray:
+    """Cubic-convolution weights (Keys 1981, a = -1/2) of the 4 nodes around each fraction ``t`` in [0, 1)."""
+    t2, t3 = t * t, t * t * t
+    return np.stack([-0.5 * t3 + t2 - 0.5 * t, 1.5 * t3 - 2.5 * t2 + 1.0,
+                     -1.5 * t3 + 2.0 * t2 + 0.5 * t, 0.5 * t3 - 0.5 * t2])
+
+
+@dataclass(frozen=True)
+class HestonTable:
+    """``c, c_x, c_v`` of one ``tau`` on the (z, s) grid; see the module docstring."""
+
+    pricer: HestonPricer
+    tau: float
+    y_step: float
+    values: np.ndarray  # (3, S_POINTS + 3, Z_POINTS), Heston less Black-Scholes: y from -y_step to y_max + 2 steps
+
+    @property
+    def z_step(self) -> float:
+        return 2.0 * TABLE_Z / (TABLE_Z_POINTS - 1)
+
+    def lookup(self, x: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        shape = np.shape(x)
+        x, v = np.ravel(x), np.maximum(np.ravel(v), 0.0)
+        y = np.sqrt(np.sqrt(v))
+        z = x / np.sqrt(self.pricer.mean_variance(v, self.tau) * self.tau)
+        # Grid coordinates: the 4-node stencil must lie inside (y rows start one step below 0).
+        zi = (z + TABLE_Z) / self.z_step
+        si = y / self.y_step + 1.0
+        inside = (zi >= 1.0) & (zi < TABLE_Z_POINTS - 2.0) & (si < self.values.shape[1] - 2.0)
+        out = _black_normalized(x, v, self.pricer, self.tau)
+        if inside.any():
+            zi_in, si_in = zi[inside], si[inside]
+            z0, s0 = np.floor(zi_in).astype(np.intp), np.floor(si_in).astype(np.intp)
+            wz, ws = _keys_weights(zi_in - z0), _keys_weights(si_in - s0)
+            for part in range(3):
+                table = self.values[part]
+                total = np.zeros(zi_in.size)
+                for a in range(4):
+                    row = np.zeros(zi_in.size)
+                    for b in range(4):
+                        row += wz[b] * table[s0 - 1 + a, z0 - 1 + b]
+                    total += ws[a] * row
+                out[part, inside] += total
+        if not inside.all():
+            outside = ~inside
+            out[:, outside] = np.stack(self.pricer.normalized_call(x[outside], v[outside], self.tau))
+        return out[0].reshape(shape), out[1].reshape(shape), out[2].reshape(shape)
+
+
+def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -> np.ndarray:
+    """Heston less Black-Scholes ``c, c_x, c_v`` at the variance ``v`` and the equally spaced ``x``.
+
+    Both transforms have the poles of 1 / (u^2 + 1/4) at ``u = +-i/2`` with the same residue
+    (``psi(0) = psi(-i) = 1`` for both), so their difference is smooth there and the trapezoid rule
+    on it converges geometrically; steps of ``t = u sqrt(w tau)`` resolve the oscillation of
+    ``e^{i u x}`` over the row's x range."""
+    w = float(pricer.mean_variance(v, tau))
+    scale = math.sqrt(w * tau)
+    x_high = float(np.abs(x).max())
+    step = min(0.2, 2.0 * scale / max(x_high, 1e-12)) / scale  # in u
+    blocks = []
+    for start in range(0, _TRAPEZOID_MAX, _TRAPEZOID_BLOCK):  # until both transforms have died out
+        u = step * np.arange(start, start + _TRAPEZOID_BLOCK)
+        shifted = u - 0.5j
+        c, d = pricer.exponents(shifted, tau)
+        heston = np.exp(c + d * v)
+        exponent = -0.5 * tau * (shifted * shifted + 1j * shifted)  # Black-Scholes: psi = exp(w * exponent)
+        black = np.exp(w * exponent)
+        blocks.append((u, heston, black, d, exponent))
+        size = (np.abs(heston) + np.abs(black)) * math.exp(0.5 * x_high) / (u * u + 0.25)
+        if size[-1] * step < _CUTOFF:
+            break
+    u, heston, black, d, exponent = (np.concatenate(parts) for parts in zip(*blocks))
+    slope = -math.expm1(-pricer.mean_reversion * tau) / (pricer.mean_reversion * tau)  # dw/dv
+    n = u.size
+    weights = np.full(n, step) / (u * u + 0.25)
+    weights[0] *= 0.5
+    terms = np.exp(1j * np.multiply.outer(x, u))
+    difference = (heston - black) * weights
+    integral = np.real(terms @ difference)
+    integral_x = np.real(terms @ (difference * 1j * u))
+    integral_v = np.real(terms @ ((heston * d - black * exponent * slope) * weights))
+    half = np.exp(0.5 * x) / math.pi
+    return np.stack([-half * integral, -half * (0.5 * integral + integral_x), -half * integral_v])
+
+
+@lru_cache(maxsize=256)
+def heston_table(pricer: HestonPricer, tau: float) -> HestonTable:
+    """The (z, y) table of ``pricer`` at ``tau`` (built once, then cached).
+
+    ``y = v^(1/4)`` (uniform nodes, so the variance nodes crowd near 0, where the price changes
+    fastest in v at short expiries) runs up to ``y_max`` with ``y_max^2 = 4 sqrt(theta) + 3 xi
+    sqrt(tau)``, a volatility generous for the paths of a few months; ``c`` depends on ``v = y^4``,
+    so it is even in ``y`` and the row below 0 is the mirror of the first row above it.
+    """
+    y_max = math.sqrt(4.0 * math.sqrt(pricer.long_run_variance) + 3.0 * pricer.vol_of_vol * math.sqrt(tau))
+    y_step = y_max / (TABLE_S_POINTS - 1)
+    y_nodes = y_step * np.arange(-1, TABLE_S_POINTS + 2)
+    z_nodes = np.linspace(-TABLE_Z, TABLE_Z, TABLE_Z_POINTS)
+    values = np.empty((3, y_nodes.size, z_nodes.size))
+    for row, y in enumerate(y_nodes):
+        v = y**4
+        x = z_nodes * math.sqrt(float(pricer.mean_variance(v, tau)) * tau)
+        values[:, row] = _difference_row(pricer, x, v, tau)
+    return HestonTable(pricer, tau, y_step, values)
+
+
+@dataclass(frozen=True)
+class MertonPricer:
+    """Merton (1976) jump-diffusion prices and deltas, risk-neutral, by the series over jump counts."""
+
+    volatility: float
+    jump_intensity: float
+    jump_mean: float
+    jump_std: float
+    rate: float = 0.0
+    dividend_yield: float = 0.0
+
+    state_factor = None  # no state: the marks depend on spot and time only
+
+    def terms(self, tau: float) -> list[tuple[float, float, float]]:
+        """(weight, volatility, rate) of each jump count until the weights left are below 1e-15."""
+        k = math.exp(self.jump_mean + 0.5 * self.jump_std**2) - 1.0
+        mean_jumps = self.jump_intensity * (1.0 + k) * tau
+        out, weight, total, n = [], math.exp(-mean_jumps), 0.0, 0
+        while True:
+            vol = math.sqrt(self.volatility**2 + n * self.jump_std**2 / tau)
+            rate = self.rate - self.jump_intensity * k + n * math.log1p(k) / tau
+            out.append((weight, vol, rate))
+            total += weight
+            if 1.0 - total < 1e-15 or n > 200:
+                return out
+            n += 1
+            weight *= mean_jumps / n
+
+    def value_delta_vega(self, spot, strike: float, tau: float, variance, is_call: bool, scale: float = 1.0,
+                         exact: bool = False):
+        """``scale`` x (value, dV/dS, 0) of one option per path (``variance`` is ignored)."""
+        spot = np.asarray(spot, dtype=float)
+        if tau <= 0:
+            value, delta = pricing.price_and_delta(spot, strike, 0.0, 0.0, is_call=is_call, scale=scale)
+            return value, delta, np.zeros_like(value)
+        value = delta = 0.0
+        for weight, vol, rate in self.terms(tau):
+            # Black-Scholes at the term's own rate: its discount e^{-r_n tau} against the true e^{-r tau}
+            # is what turns the jump count's Poisson weights at lambda into those at lambda'.
+            part_value, part_delta = pricing.price_and_delta(
+                spot, strike, tau, vol, rate, self.dividend_yield, is_call, scale * weight)
+            value = value + part_value
+            delta = delta + part_delta
+        return value, delta, np.zeros_like(value)

@@ -1,0 +1,125 @@
+"""Model marks (hedge_env.model_pricing) against QuantLib: Heston by Lewis's Fourier integral and
+its table, Merton by its series. The tolerance and its floor are in docs/references.md."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from hedge_env.market import MertonMarket
+from hedge_env.model_pricing import HestonPricer, MertonPricer, heston_table
+from tests.hedge_env.test_markets import DIVIDEND, RATE, merton_series_call, quantlib_merton_call
+
+# 1e-6 of the price, with a floor of 1e-10 of spot for options worth next to nothing (a deep
+# out-of-the-money option at a day's expiry): there only absolute accuracy means anything.
+RELATIVE, FLOOR = 1e-6, 1e-10
+DAYS = (1, 2, 5, 10, 30, 90, 365, 730)
+
+
+def quantlib_heston(spot, strike, days, v, r, q, kappa, theta, xi, rho, is_call) -> float:
+    """QuantLib AnalyticHestonEngine (Heston 1993 semi-closed form), integration to 1e-12 relative."""
+    ql = pytest.importorskip("QuantLib")  # only the checks against QuantLib skip without it
+    today = ql.Date(15, ql.January, 2026)
+    ql.Settings.instance().evaluationDate = today
+    counter = ql.Actual365Fixed()
+    process = ql.HestonProcess(ql.YieldTermStructureHandle(ql.FlatForward(today, r, counter)),
+                               ql.YieldTermStructureHandle(ql.FlatForward(today, q, counter)),
+                               ql.QuoteHandle(ql.SimpleQuote(spot)), v, kappa, theta, xi, rho)
+    kind = ql.Option.Call if is_call else ql.Option.Put
+    option = ql.VanillaOption(ql.PlainVanillaPayoff(kind, strike), ql.EuropeanExercise(today + days))
+    option.setPricingEngine(ql.AnalyticHestonEngine(ql.HestonModel(process), 1e-12, 100_000))
+    return option.NPV()
+
+
+def random_heston_cases(n: int, seed: int) -> list[dict]:
+    rng = np.random.default_rng(seed)
+    cases = []
+    for _ in range(n):
+        cases.append(dict(spot=100.0, strike=100.0 * math.exp(rng.uniform(-0.5, 0.5)), days=int(rng.choice(DAYS)),
+                          v=rng.uniform(0.005, 0.3), r=rng.uniform(0.0, 0.06), q=rng.uniform(0.0, 0.04),
+                          kappa=rng.uniform(0.3, 5.0), theta=rng.uniform(0.01, 0.15), xi=rng.uniform(0.1, 1.5),
+                          rho=rng.uniform(-0.95, 0.5), is_call=bool(rng.random() < 0.5)))
+    return cases
+
+
+def pricer_of(case: dict) -> HestonPricer:
+    return HestonPricer(case["kappa"], case["theta"], case["xi"], case["rho"], case["r"], case["q"])
+
+
+def test_heston_integral_matches_quantlib_over_random_inputs():
+    cases = random_heston_cases(150, seed=11)
+    feller = [2 * c["kappa"] * c["theta"] > c["xi"] ** 2 for c in cases]
+    assert any(feller) and not all(feller)  # the Feller condition both met and violated
+    for case in cases:
+        tau = case["days"] / 365.0
+        mine = float(pricer_of(case).value_delta_vega(case["spot"], case["strike"], tau, case["v"], case["is_call"],
+                                                      exact=True)[0])
+        reference = quantlib_heston(case["spot"], case["strike"], case["days"], case["v"], case["r"], case["q"],
+                                    case["kappa"], case["theta"], case["xi"], case["rho"], case["is_call"])
+        assert abs(mine - reference) <= RELATIVE * abs(reference) + FLOOR * case["spot"], case
+
+
+def test_heston_delta_and_variance_sensitivity_match_quantlib_differences():
+    # Central differences of QuantLib prices: step 1e-4 of spot (of variance), so truncation
+    # (h^2 V''' / 6) and QuantLib's 1e-12 integration error over h both stay below 1e-6.
+    for case in random_heston_cases(12, seed=12):
+        if case["days"] < 5:
+            continue
+        pricer, tau = pricer_of(case), case["days"] / 365.0
+        _, delta, vega = pricer.value_delta_vega(case["spot"], case["strike"], tau, case["v"], case["is_call"],
+                                                 exact=True)
+
+        def ql(spot=case["spot"], v=case["v"]):
+            return quantlib_heston(spot, case["strike"], case["days"], v, case["r"], case["q"], case["kappa"],
+                                   case["theta"], case["xi"], case["rho"], case["is_call"])
+
+        h_spot, h_var = 1e-4 * case["spot"], 1e-4 * case["v"]
+        assert float(delta) == pytest.approx((ql(spot=case["spot"] + h_spot) - ql(spot=case["spot"] - h_spot))
+                                             / (2 * h_spot), abs=1e-6)
+        assert float(vega) == pytest.approx((ql(v=case["v"] + h_var) - ql(v=case["v"] - h_var)) / (2 * h_var),
+                                            rel=1e-5, abs=1e-4)
+
+
+@pytest.mark.parametrize("days", [1, 5, 30, 90])
+def test_heston_table_agrees_with_the_integral_path_by_path(days):
+    # The paths of configs/heston.toml's model: the table must not move a mark by more than 1e-6 of
+    # spot (the integral's own accuracy, see above), a delta by more than 1e-4 of a share per share,
+    # nor dV/dv by more than 1e-3 of its largest size (it enters the minimum-variance delta only).
+    pricer = HestonPricer(2.0, 0.04, 0.5, -0.7, 0.03, 0.0)
+    rng = np.random.default_rng(days)
+    tau = days / 365.0
+    variance = 0.04 * rng.gamma(2.0, 0.5, 5000)
+    spot = 62.0 * np.exp(rng.normal(0.0, 0.2 * math.sqrt(tau) * 3, 5000))
+    for is_call in (True, False):
+        table = pricer.value_delta_vega(spot, 62.0, tau, variance, is_call)
+        exact = pricer.value_delta_vega(spot, 62.0, tau, variance, is_call, exact=True)
+        np.testing.assert_allclose(table[0], exact[0], rtol=0, atol=1e-6 * 62.0)
+        np.testing.assert_allclose(table[1], exact[1], rtol=0, atol=1e-4)
+        np.testing.assert_allclose(table[2], exact[2], rtol=0, atol=1e-3 * np.abs(exact[2]).max())
+    assert heston_table(pricer, tau) is heston_table(pricer, tau)  # built once per expiry
+
+
+def test_merton_series_matches_quantlib_and_the_textbook_series():
+    market = MertonMarket(spot=100.0, volatility=0.3, jump_intensity=3.0, jump_mean=-0.05, jump_std=0.12)
+    pricer = MertonPricer(0.3, 3.0, -0.05, 0.12, RATE, DIVIDEND)
+    for strike in (80.0, 95.0, 100.0, 110.0, 130.0):
+        for days in (5, 30, 365):
+            mine = float(pricer.value_delta_vega(100.0, strike, days / 365.0, None, True)[0])
+            # QuantLib's BatesEngine with vol of vol 1e-4 stands in for Merton's model: its gap is of the
+            # order of the vol of vol squared (1e-8), so the floor here is 1e-8 of spot, not 1e-10.
+            reference = quantlib_merton_call(strike, days, 100.0, market)
+            assert abs(mine - reference) <= RELATIVE * reference + 1e-8 * 100.0, (strike, days)
+            assert mine == pytest.approx(merton_series_call(100.0, strike, days / 365.0, market), rel=1e-12)
+
+
+def test_merton_delta_is_the_derivative_of_its_price():
+    pricer = MertonPricer(0.3, 3.0, -0.05, 0.12, 0.03, 0.01)
+    spot = np.array([80.0, 100.0, 120.0])
+    for is_call in (True, False):
+        _, delta, _ = pricer.value_delta_vega(spot, 100.0, 0.1, None, is_call)
+        h = 1e-4
+        up = pricer.value_delta_vega(spot + h, 100.0, 0.1, None, is_call)[0]
+        down = pricer.value_delta_vega(spot - h, 100.0, 0.1, None, is_call)[0]
+        np.testing.assert_allclose(delta, (up - down) / (2 * h), rtol=0, atol=1e-7)
