@@ -60,8 +60,10 @@ class DeltaHedge:
         """
         decoded = decode(self.problem, obs)
         marks = self.problem.marks
-        # The step's delta is at the mark volatility: per row when the market supplies it.
-        own = self.volatility is not None and (decoded.volatility is not None or self.volatility != marks.volatility)
+        # The step's delta is at the mark volatility (per row when the market supplies it), unless the
+        # marks are a model's: then it is the model's delta, not this Black-Scholes one.
+        own = self.problem.mark_model is not None or (
+            self.volatility is not None and (decoded.volatility is not None or self.volatility != marks.volatility))
         if book_delta is None or own:
             volatility = self.volatility if self.volatility is not None else decoded.volatility
             book_delta = self.problem.book.value_and_delta(decoded.spot, decoded.t_days, marks, volatility)[1]

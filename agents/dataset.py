@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from agents.features import hedge_move
-from hedge_env.market import MARK_VOLATILITY_FACTOR, MarketPaths, PathGenerator
+from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import as_market, check_observed_marks
 from hedge_env.step import HedgeState, hedge_step, initial_state, observe
@@ -139,7 +139,7 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
     notional = problem.notional_shares
     spot = np.ascontiguousarray(paths.spot.T)
     factors = {name: np.ascontiguousarray(v.T) for name, v in paths.factors.items()}
-    mark_vol = factors.get(MARK_VOLATILITY_FACTOR)
+    mark_vol = factors.get(problem.mark_factor)
     state = initial_state(problem, spot[0], None if mark_vol is None else mark_vol[0])
     n_obs = 3 + len(observed)
     obs = np.empty((steps, n, n_obs))

@@ -13,7 +13,7 @@ from gymnasium.vector.utils import batch_space
 
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
-from hedge_env.market import BLOCK_PATHS, MARK_VOLATILITY_FACTOR, GBMMarket, GivenPaths, MarketPaths, PathGenerator
+from hedge_env.market import BLOCK_PATHS, GBMMarket, GivenPaths, MarketPaths, PathGenerator
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 from hedge_env.step import HedgeState, StepOutcome, hedge_step, initial_state, observe
@@ -184,7 +184,7 @@ class HedgingEnv(gym.Env):
         # Python floats, once per episode: each step then reads list items, not numpy scalars.
         self._spot_path = self._path.spot[0].tolist()
         self._factor_paths = [self._path.factors[f][0].tolist() for f in self.market.observed_factors]
-        mark_volatility = self._path.factors.get(MARK_VOLATILITY_FACTOR)
+        mark_volatility = self._path.factors.get(self.problem.mark_factor)
         self._mark_volatility_path = None if mark_volatility is None else mark_volatility[0].tolist()
         self._state = initial_state(self.problem, self._spot_path[0], self._mark_volatility(0), scalar=True)
         return self._observation(), _info(self.problem, None, self._state)
@@ -247,7 +247,7 @@ class HedgingVectorEnv(VectorEnv):
         self._ended = False
 
     def _mark_volatility(self, k: int):
-        values = self._factors.get(MARK_VOLATILITY_FACTOR)
+        values = self._factors.get(self.problem.mark_factor)
         return None if values is None else values[k]
 
     def _observation(self) -> np.ndarray:

@@ -25,7 +25,7 @@ Many paths at one time share ``tau``: :func:`heston_table` tabulates ``c, c_x, c
 ``tau``, less the Black-Scholes ``c`` at the expected mean variance ``w(v)`` (the difference is
 small and smooth), on a grid of standardised log-moneyness ``z = x / sqrt(w(v) tau)`` and
 ``y = v^(1/4)``; paths are read off it by cubic convolution and the Black-Scholes part added back
-in closed form. The few paths outside the grid are priced by the integral itself.
+in closed form. Paths beyond its variance range are priced by the integral itself.
 
 Merton. The series of Black-Scholes prices conditional on the number of jumps (Merton 1976): with
 ``k = E[J] - 1``, ``lambda' = lambda (1 + k)``, ``n`` jumps weigh ``e^{-lambda' tau} (lambda'
@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from functools import lru_cache
+from functools import cached_property, lru_cache
 
 import numpy as np
 from scipy.special import ndtr
@@ -49,8 +49,8 @@ _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 
 # The table: standardised log-moneyness z in [-Z, Z] at Z_POINTS nodes, y = v^(1/4) in
 # [0, y_max] at S_POINTS nodes (y_max from the parameters, see heston_table).
-TABLE_Z = 12.0
-TABLE_Z_POINTS = 241
+TABLE_Z = 24.0
+TABLE_Z_POINTS = 481
 TABLE_S_POINTS = 61
 # Paths priced by the integral in one group (of similar variance: they share the nodes).
 _GROUP = 256
@@ -60,7 +60,7 @@ _POLE_NODES = 48
 _POLE_RANGE = 2.0
 _MAX_PANELS = 2_000
 _PANEL_NODES = 16
-_TRAPEZOID_MAX = 100_000
+_TRAPEZOID_MAX = 64 * 256  # nodes: 126 MB of e^{i t z} at most
 _TRAPEZOID_BLOCK = 256
 
 
@@ -164,6 +164,8 @@ class HestonPricer:
         if tau <= 0:
             value, delta = pricing.price_and_delta(spot, strike, 0.0, 0.0, is_call=is_call, scale=scale)
             return value, delta, np.zeros_like(value)
+        if variance is None:
+            raise ValueError("Heston marks need the variance per path (the market factor 'variance')")
         discount = math.exp(-self.rate * tau)
         x = np.log(spot / strike) + (self.rate - self.dividend_yield) * tau
         variance = np.broadcast_to(np.asarray(variance, dtype=float), spot.shape)
@@ -211,6 +213,11 @@ class HestonTable:
     y_step: float
     values: np.ndarray  # (3, S_POINTS + 3, Z_POINTS), Heston less Black-Scholes: y from -y_step to y_max + 2 steps
 
+    @cached_property
+    def stacked(self) -> np.ndarray:
+        """The values as (y node x z node, part): the three parts of a node side by side."""
+        return np.ascontiguousarray(self.values.reshape(3, -1).T)
+
     @property
     def z_step(self) -> float:
         return 2.0 * TABLE_Z / (TABLE_Z_POINTS - 1)
@@ -223,38 +230,61 @@ class HestonTable:
         # Grid coordinates: the 4-node stencil must lie inside (y rows start one step below 0).
         zi = (z + TABLE_Z) / self.z_step
         si = y / self.y_step + 1.0
-        inside = (zi >= 1.0) & (zi < TABLE_Z_POINTS - 2.0) & (si < self.values.shape[1] - 2.0)
+        in_variance = si < self.values.shape[1] - 2.0
+        inside = in_variance & (zi >= 1.0) & (zi < TABLE_Z_POINTS - 2.0)
+        # Beyond the z range (deep in or out of the money, over 24 standard deviations) the difference
+        # from Black-Scholes is left out: at the table's edges it is 2e-12 of the discounted strike up
+        # to 30 days and 1.4e-7 at a year for configs/heston.toml's model (docs/references.md).
+        # Beyond its variance range a path is priced by the integral.
         out = _black_normalized(x, v, self.pricer, self.tau)
         if inside.any():
             zi_in, si_in = zi[inside], si[inside]
             z0, s0 = np.floor(zi_in).astype(np.intp), np.floor(si_in).astype(np.intp)
             wz, ws = _keys_weights(zi_in - z0), _keys_weights(si_in - s0)
-            for part in range(3):
-                table = self.values[part]
-                total = np.zeros(zi_in.size)
-                for a in range(4):
-                    row = np.zeros(zi_in.size)
-                    for b in range(4):
-                        row += wz[b] * table[s0 - 1 + a, z0 - 1 + b]
-                    total += ws[a] * row
-                out[part, inside] += total
-        if not inside.all():
-            outside = ~inside
+            # One gather of the three parts per stencil node, from the (node, part) layout.
+            nodes = self.stacked
+            corner = (s0 - 1) * TABLE_Z_POINTS + (z0 - 1)
+            total = np.zeros((zi_in.size, 3))
+            for a in range(4):
+                for b in range(4):
+                    total += (ws[a] * wz[b])[:, None] * nodes.take(corner + (a * TABLE_Z_POINTS + b), axis=0)
+            out[:, inside] += total.T
+        if not in_variance.all():
+            outside = ~in_variance
             out[:, outside] = np.stack(self.pricer.normalized_call(x[outside], v[outside], self.tau))
         return out[0].reshape(shape), out[1].reshape(shape), out[2].reshape(shape)
 
 
+# The table's trapezoid step in t = u sqrt(w tau): resolves e^{i t z} over |z| <= TABLE_Z.
+_T_STEP = min(0.2, 2.0 / TABLE_Z)
+
+
+_FOURIER: list[np.ndarray] = []  # the largest e^{i t z} matrix made so far
+
+
+def _fourier_matrix(blocks: int) -> np.ndarray:
+    """``e^{i t z}`` at the table's z nodes (rows) and the first ``blocks`` blocks of t nodes: the
+    same for every row of every table, as both grids are in standardised units (made once, grown
+    when a slower-decaying transform needs more columns)."""
+    columns = blocks * _TRAPEZOID_BLOCK
+    if not _FOURIER or _FOURIER[0].shape[1] < columns:
+        z_nodes = np.linspace(-TABLE_Z, TABLE_Z, TABLE_Z_POINTS)
+        _FOURIER[:] = [np.exp(1j * np.multiply.outer(z_nodes, _T_STEP * np.arange(columns)))]
+    return _FOURIER[0][:, :columns]
+
+
 def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -> np.ndarray:
-    """Heston less Black-Scholes ``c, c_x, c_v`` at the variance ``v`` and the equally spaced ``x``.
+    """Heston less Black-Scholes ``c, c_x, c_v`` at the variance ``v`` and ``x = z sqrt(w(v) tau)``
+    over the table's z nodes.
 
     Both transforms have the poles of 1 / (u^2 + 1/4) at ``u = +-i/2`` with the same residue
     (``psi(0) = psi(-i) = 1`` for both), so their difference is smooth there and the trapezoid rule
     on it converges geometrically; steps of ``t = u sqrt(w tau)`` resolve the oscillation of
-    ``e^{i u x}`` over the row's x range."""
+    ``e^{i u x} = e^{i t z}`` over the table's z range."""
     w = float(pricer.mean_variance(v, tau))
     scale = math.sqrt(w * tau)
     x_high = float(np.abs(x).max())
-    step = min(0.2, 2.0 * scale / max(x_high, 1e-12)) / scale  # in u
+    step = _T_STEP / scale  # in u
     blocks = []
     for start in range(0, _TRAPEZOID_MAX, _TRAPEZOID_BLOCK):  # until both transforms have died out
         u = step * np.arange(start, start + _TRAPEZOID_BLOCK)
@@ -269,10 +299,9 @@ def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -
             break
     u, heston, black, d, exponent = (np.concatenate(parts) for parts in zip(*blocks))
     slope = -math.expm1(-pricer.mean_reversion * tau) / (pricer.mean_reversion * tau)  # dw/dv
-    n = u.size
-    weights = np.full(n, step) / (u * u + 0.25)
+    weights = np.full(u.size, step) / (u * u + 0.25)
     weights[0] *= 0.5
-    terms = np.exp(1j * np.multiply.outer(x, u))
+    terms = _fourier_matrix(len(blocks))
     difference = (heston - black) * weights
     integral = np.real(terms @ difference)
     integral_x = np.real(terms @ (difference * 1j * u))

@@ -10,6 +10,7 @@ import numpy as np
 
 from hedge_env.book import Book, MarkParameters
 from hedge_env.frictions import Frictions
+from hedge_env.market import MARK_VOLATILITY_FACTOR
 from hedge_env.objective import Objective
 
 
@@ -64,6 +65,13 @@ class HedgingProblem:
         among its observed factors, so observation column 3 carries it and
         policies price their Greeks at it; ``marks.volatility`` is then only
         a typical level (scales and quotes).
+    mark_model : HestonPricer or MertonPricer, optional
+        Marks (and the step's deltas) at this model's price
+        (:mod:`hedge_env.model_pricing`) instead of Black-Scholes at
+        ``marks.volatility``; the model's state (the Heston variance) comes per
+        path from the market factor :attr:`mark_factor`. ``marks`` still holds
+        the rate, dividend yield and year basis, and the Black-Scholes
+        volatility of the baselines that price at it.
     """
 
     book: Book
@@ -73,6 +81,24 @@ class HedgingProblem:
     schedule: Schedule = field(default_factory=Schedule)
     reference_spot: float = 100.0
     mark_volatility_observed: bool = False
+    mark_model: object | None = None
+
+    @property
+    def mark_factor(self) -> str | None:
+        """The market factor the marks read per path: the model's state (None: it has none) or,
+        with Black-Scholes marks, a mark volatility (when the market supplies one)."""
+        return self.mark_model.state_factor if self.mark_model is not None else MARK_VOLATILITY_FACTOR
+
+    def book_value_and_delta(self, spot, t_days, state=None, legs=None, scalar: bool = False):
+        """The book's mark and delta (shares) at ``t_days``: at the mark model's price with its state
+        ``state`` per path, or Black-Scholes at the mark volatility (``state``: per path, or None)."""
+        if self.mark_model is None:
+            if scalar:
+                return self.book.value_and_delta_scalar(spot, t_days, self.marks, state, legs)
+            return self.book.value_and_delta(spot, t_days, self.marks, state, legs)
+        value, delta = self.book.model_value_and_delta(self.mark_model, np.asarray(spot, dtype=float), t_days,
+                                                       self.marks, state, legs)
+        return (float(value), float(delta)) if scalar else (value, delta)
 
     @cached_property
     def dt_years(self) -> float:

@@ -247,7 +247,7 @@ def _rollout_chunk(problem, policy, paths: MarketPaths, order, observed, keep_ho
     # Time-major copies in hedging order: the loop reads one column per step, contiguously.
     spot = _time_major(paths.spot, order)
     factors = {name: _time_major(paths.factors[name], order) for name in observed}
-    mark_vol = paths.factors.get(MARK_VOLATILITY_FACTOR)
+    mark_vol = paths.factors.get(problem.mark_factor)
     mark_vol = None if mark_vol is None else _time_major(mark_vol, order)
     notional = problem.notional_shares
     state = initial_state(problem, spot[0], None if mark_vol is None else mark_vol[0])

@@ -130,13 +130,15 @@ def _make_plan(problem: HedgingProblem) -> _Plan:
 
 
 def initial_state(problem: HedgingProblem, spot, volatility=None, scalar: bool = False) -> HedgeState:
-    """State at t_0: no shares, cash equal to the premium received at the mark."""
-    book, marks = problem.book, problem.marks
+    """State at t_0: no shares, cash equal to the premium received at the mark.
+
+    ``volatility``: the marks' per-path input at t_0, the market factor ``problem.mark_factor``
+    (a mark volatility, or the mark model's state), or None."""
     if scalar:
-        mark, delta = book.value_and_delta_scalar(float(spot), 0.0, marks, volatility)
+        mark, delta = problem.book_value_and_delta(float(spot), 0.0, volatility, scalar=True)
         return HedgeState(0, float(spot), 1.0, 0.0, -mark, mark, delta)
     spot = np.asarray(spot, dtype=float)
-    mark, delta = book.value_and_delta(spot, 0.0, marks, volatility)
+    mark, delta = problem.book_value_and_delta(spot, 0.0, volatility)
     return HedgeState(0, spot, np.ones_like(spot), np.zeros_like(spot), -mark, mark, delta)
 
 
@@ -162,7 +164,8 @@ def hedge_step(
         Exogenous price X_{k+1} of the market path (before the hedger's
         impact); an array has the shape of the state's arrays.
     volatility_next : float or ndarray, optional
-        Mark volatility at t_{k+1}; default ``problem.marks.volatility``.
+        The marks' per-path input at t_{k+1}: the market factor ``problem.mark_factor`` (a mark
+        volatility, default ``problem.marks.volatility``, or the mark model's state).
     scalar : bool
         Work on Python floats (single path) instead of arrays.
 
@@ -177,7 +180,7 @@ def hedge_step(
     if not 0 <= state.k < len(plan.steps):
         raise ValueError(f"step index {state.k} outside 0..{len(plan.steps) - 1}: the episode is over")
     step = plan.steps[state.k]
-    frictions, book, marks = problem.frictions, problem.book, problem.marks
+    frictions, book = problem.frictions, problem.book
     if scalar:
         target = float(target)
     if plan.clip:
@@ -207,13 +210,13 @@ def hedge_step(
     cash -= paid
     financing = frictions.financing(cash, target, spot, problem.dt_years) if plan.financing else 0.0
 
-    value_and_delta = book.value_and_delta_scalar if scalar else book.value_and_delta
-    mark_next, delta_next = value_and_delta(spot_next, step.t_next, marks, volatility_next, legs=step.live_next)
+    mark_next, delta_next = problem.book_value_and_delta(spot_next, step.t_next, volatility_next, step.live_next,
+                                                         scalar)
     hedge_gain = spot_next - spot
     hedge_gain *= target
     book_change = mark_next - state.mark
     if step.settling:
-        settled = value_and_delta(spot_next, step.t_next, marks, volatility_next, legs=step.settling)[0]
+        settled = problem.book_value_and_delta(spot_next, step.t_next, volatility_next, step.settling, scalar)[0]
         book_change += settled
         cash += settled
     pnl = hedge_gain + book_change

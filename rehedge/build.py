@@ -74,6 +74,7 @@ def build_problem(config: Config) -> HedgingProblem:
         ),
         reference_spot=market.spot,
         mark_volatility_observed=observed,
+        mark_model=market.mark_pricer() if config.pricing.marks == "model" else None,
     )
 
 

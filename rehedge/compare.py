@@ -152,11 +152,13 @@ def implied_book_volatility(problem: HedgingProblem, premium: float) -> float:
     return float(brentq(gap, low, high, xtol=1e-10))
 
 
-def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation) -> dict[str, dict[str, float]]:
+def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation,
+           state0=None) -> dict[str, dict[str, float]]:
     """Per policy, the premium the risk justifies, for the book as configured and the opposite book.
 
-    ``mark`` is the configured position's Black-Scholes liability at t0 (for a
-    short book, the premium of the options sold). Mean-variance indifference:
+    ``mark`` is the configured position's liability at t0 at the problem's marks
+    (Black-Scholes, or the mark model's price with its state ``state0``): for a
+    short book, the premium of the options sold. Mean-variance indifference:
     ``quote_ask = mark - objective`` (the premium at which the expected summed
     reward plus premium minus mark is zero) and ``quote_bid = mark +
     objective of the opposite book``; conservative: ``cvar_ask = mark + CVaR95``
@@ -166,8 +168,12 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
     that premium, the spread over the book's vega per vol point).
     """
     spot = np.array([problem.reference_spot])
-    mark = float(-problem.book.value(spot, 0.0, problem.marks)[0])
+    state = None if state0 is None else np.array([state0])
+    mark = float(-problem.book_value_and_delta(spot, 0.0, state)[0][0])
     vol_points = 100.0 * problem.marks.volatility
+    if problem.mark_model is not None:  # spreads from the model mark's own implied volatility
+        mark_implied = implied_book_volatility(problem, mark)
+        vol_points = 100.0 * mark_implied if np.isfinite(mark_implied) else vol_points
     marks = problem.marks
     vega_point = 0.01 * abs(sum(
         leg.shares * float(pricing.vega(spot, leg.strike, leg.expiry_days / marks.days_per_year, marks.volatility,
@@ -207,5 +213,9 @@ def evaluate_with_quotes(problem, policies, source, n_paths, seed, **options) ->
     mirrored = {name: Mirrored(policy) for name, policy in policies.items()}
     options = {**options, "progress": None}
     opposite = evaluate_policies(opposite_problem(problem), mirrored, source, n_paths, seed, **options)
-    evaluation.quotes = quotes(problem, evaluation, opposite)
+    state0 = None
+    if problem.mark_model is not None and problem.mark_factor is not None:
+        first = source.generate(1, problem.schedule.steps, problem.dt_years, seed)
+        state0 = float(first.factors[problem.mark_factor][0, 0])
+    evaluation.quotes = quotes(problem, evaluation, opposite, state0)
     return evaluation

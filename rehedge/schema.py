@@ -31,6 +31,7 @@ from pydantic import (
 from pydantic_core import PydanticCustomError
 
 from agents.registry import REGRESSORS
+from hedge_env.model_pricing import HestonPricer, MertonPricer
 
 # ---------------------------------------------------------------------------
 # Small validation helpers
@@ -180,6 +181,11 @@ class HestonMarket(_SimulatedMarketSpec):
         weight = -math.expm1(-decay) / decay if decay > 0 else 1.0
         return math.sqrt(self.long_run_variance + (self.initial_variance - self.long_run_variance) * weight)
 
+    def mark_pricer(self) -> HestonPricer:
+        """The model's own (risk-neutral) pricer for model marks."""
+        return HestonPricer(self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation,
+                            self.rate, self.dividend_yield)
+
     def describe(self) -> str:
         """One line for reports."""
         return (f"Heston (QE scheme): spot {self.spot:g}, drift {_pct(self.drift)}, initial variance "
@@ -202,6 +208,11 @@ class MertonMarket(_SimulatedMarketSpec):
         """Default mark volatility: the total volatility of log returns, diffusion and jumps,
         sqrt(volatility^2 + jump_intensity (jump_mean^2 + jump_std^2))."""
         return math.sqrt(self.volatility**2 + self.jump_intensity * (self.jump_mean**2 + self.jump_std**2))
+
+    def mark_pricer(self) -> MertonPricer:
+        """The model's own (risk-neutral) pricer for model marks."""
+        return MertonPricer(self.volatility, self.jump_intensity, self.jump_mean, self.jump_std, self.rate,
+                            self.dividend_yield)
 
     def describe(self) -> str:
         """One line for reports."""
@@ -323,7 +334,14 @@ class BookSpec(_Spec):
 
 
 class PricingSpec(_Spec):
-    """How the book is marked and its Greeks computed (Black-Scholes)."""
+    """How the book is marked and its Greeks computed."""
+
+    marks: Literal["model", "black_scholes"] | None = Field(
+        None,
+        description="'model': the book at the simulated model's own price (Heston by its Fourier integral, "
+                    "Merton by its series; the default for heston and merton markets); 'black_scholes': at "
+                    "Black-Scholes with pricing.volatility (the default, and the only choice, otherwise).",
+    )
 
     volatility: float | None = Field(
         None,
@@ -673,6 +691,17 @@ class Config(_Spec):
         # Cross-section defaults, so the validated config is fully resolved.
         if isinstance(self.market, HistoricalMarket):
             self._resolve_historical()
+        model_marks = self.market.model in ("heston", "merton")
+        if self.pricing.marks is None:
+            self.pricing.marks = "model" if model_marks else "black_scholes"
+        if self.pricing.marks == "model" and not model_marks:
+            raise _rule(f"'model' needs a heston or merton market (the {self.market.model} market's marks are "
+                        "Black-Scholes)", "pricing", "marks")
+        if self.pricing.marks == "model" and isinstance(self.market, HestonMarket):
+            for key in ("vol_of_vol", "mean_reversion", "long_run_variance"):
+                if not getattr(self.market, key) > 0:
+                    raise _rule(f"must be > 0 for Heston model marks (pricing.marks = 'model'), got "
+                                f"{_show(getattr(self.market, key))}", "market", key)
         if self.pricing.volatility is None:
             volatility = self.market.pricing_volatility(self.horizon_days / self.pricing.days_per_year)
             if volatility is not None and not volatility > 0:
