@@ -96,9 +96,31 @@ class HedgingProblem:
             if scalar:
                 return self.book.value_and_delta_scalar(spot, t_days, self.marks, state, legs)
             return self.book.value_and_delta(spot, t_days, self.marks, state, legs)
-        value, delta = self.book.model_value_and_delta(self.mark_model, np.asarray(spot, dtype=float), t_days,
-                                                       self.marks, state, legs)
-        return (float(value), float(delta)) if scalar else (value, delta)
+        spot = np.asarray(spot, dtype=float)
+        if np.ndim(t_days) == 0:
+            value, delta = self.book.model_value_and_delta(self.mark_model, spot, float(t_days), self.marks, state,
+                                                           legs)
+            return (float(value), float(delta)) if scalar else (value, delta)
+        # Rows at several times: one pass per time, each with the legs live then.
+        value, delta = np.zeros(spot.shape), np.zeros(spot.shape)
+        state = None if state is None else np.broadcast_to(state, spot.shape)
+        for t in np.unique(t_days):
+            rows = t_days == t
+            value[rows], delta[rows] = self.book.model_value_and_delta(
+                self.mark_model, spot[rows], float(t), self.marks, None if state is None else state[rows])
+        return value, delta
+
+    def model_hedge_state(self, factor_names, obs):
+        """The mark model's state of observation rows for a model hedge (``(True, state)``), or
+        ``(False, None)`` when the rows cannot give it (a Heston variance not observed)."""
+        if self.mark_model is None:
+            return False, None
+        factor = self.mark_model.state_factor
+        if factor is None:
+            return True, None
+        if factor in factor_names:
+            return True, np.asarray(obs[:, 3 + list(factor_names).index(factor)], dtype=float)
+        return False, None
 
     @cached_property
     def dt_years(self) -> float:

@@ -294,6 +294,12 @@ def test_a_heston_market_with_no_variance_at_all_needs_an_explicit_pricing_volat
     data["market"].update(initial_variance=0.0, long_run_variance=0.0)
     with pytest.raises(ConfigError) as info:
         parse_config(data)
+    # The model's own marks need a long-run variance; Black-Scholes marks a volatility.
+    assert str(info.value) == ("market.long_run_variance: must be > 0 for Heston model marks "
+                               "(pricing.marks = 'model'), got 0.0")
+    data["pricing"]["marks"] = "black_scholes"
+    with pytest.raises(ConfigError) as info:
+        parse_config(data)
     assert str(info.value) == "pricing.volatility: must be given: the market model's default volatility is 0"
     data["pricing"]["volatility"] = 0.2
     assert parse_config(data).pricing.volatility == 0.2
@@ -328,7 +334,9 @@ def small_config(name: str, **market) -> dict:
     data.pop("sweep", None)
     data["market"].update(market)
     data["schedule"]["steps"] = 10
-    data["data"] = {"train_paths": 20_000, "heldout_paths": 5_000, "chunk_paths": 5_000}
+    # 20,000 held-out paths: an agent that keeps some jump risk has a wide per-path spread of
+    # differences from delta, and its paired interval needs them to separate from zero.
+    data["data"] = {"train_paths": 20_000, "heldout_paths": 20_000, "chunk_paths": 10_000}
     data["baselines"] = [{"kind": "no_hedge"}, {"kind": "delta"}, {"kind": "fixed_band", "half_width": 0.05}]
     data["agents"] = [{"kind": "linear"}, {"kind": "fitted_q", "regressor_params": FAST_TREES}]
     data["report"] = {"reference_policy": "delta", "bootstrap_samples": 200}
