@@ -75,6 +75,59 @@ class DeltaHedge:
     act_with_delta = act
 
 
+def _model_greeks(problem: HedgingProblem, obs: np.ndarray):
+    """Decoded rows and the book's value, delta and dV/d(state) at the mark model's price."""
+    decoded = decode(problem, obs)
+    return decoded, problem.model_greeks(decoded.spot, decoded.t_days, problem.observed_mark_state(obs))
+
+
+def _needs_model_hedge(problem: HedgingProblem, kind: str) -> None:
+    if not problem.model_hedge_observable:
+        raise ValueError(f"{kind} needs model marks whose state the hedger observes (Merton; Heston with the "
+                         "variance observed)")
+
+
+@dataclass(frozen=True)
+class ModelDelta:
+    """Trade to minus the book's delta at the mark model's price (dV/dS at the observed state)."""
+
+    problem: HedgingProblem
+    name: str = "model_delta"
+    label = "model delta"
+
+    def __post_init__(self) -> None:
+        _needs_model_hedge(self.problem, "model_delta")
+
+    def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
+        # The step's delta is the model's (the marks are), at the state the observation shows.
+        if book_delta is None:
+            book_delta = _model_greeks(self.problem, obs)[1][1]
+        return -book_delta / self.problem.notional_shares
+
+    act_with_delta = act
+
+
+@dataclass(frozen=True)
+class MinimumVarianceDelta:
+    """Heston's minimum-variance hedge: minus (dV/dS + rho xi / S dV/dv) of the book at the model's
+    price, which also hedges the part of the variance's move that goes with the spot's."""
+
+    problem: HedgingProblem
+    name: str = "minimum_variance_delta"
+    label = "minimum-variance delta"
+
+    def __post_init__(self) -> None:
+        _needs_model_hedge(self.problem, "minimum_variance_delta")
+        if not hasattr(self.problem.mark_model, "correlation"):
+            raise ValueError("minimum_variance_delta is implemented for Heston marks only")
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        decoded, (_, delta, vega) = _model_greeks(self.problem, obs)
+        model = self.problem.mark_model
+        hedge = delta + model.correlation * model.vol_of_vol / decoded.spot * vega
+        return -hedge / self.problem.notional_shares
+
+
 def leland_volatility(volatility: float, round_trip_cost: float, dt_years: float, written: bool) -> float:
     """Leland (1985) adjusted volatility; floored at a tiny positive number when the adjustment overwhelms it."""
     leland_number = math.sqrt(2.0 / math.pi) * round_trip_cost / (volatility * math.sqrt(dt_years))

@@ -92,9 +92,8 @@ def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple
     volatility = decoded.volatility  # per row when the market supplies the mark volatility, else None
     # The hedge the agent is anchored on: the mark model's delta when the rows give its state (Merton
     # always; Heston when the variance is observed), else Black-Scholes at the mark volatility.
-    model, state = problem.model_hedge_state(factor_names, obs)
-    if model:
-        _, book_delta = problem.book_value_and_delta(decoded.spot, decoded.t_days, state)
+    if problem.model_hedge_observable:
+        _, book_delta = problem.book_value_and_delta(decoded.spot, decoded.t_days, problem.observed_mark_state(obs))
     else:
         _, book_delta = book.value_and_delta(decoded.spot, decoded.t_days, marks, volatility)
     gamma = book.gamma(decoded.spot, decoded.t_days, marks, volatility)

@@ -9,7 +9,15 @@ from __future__ import annotations
 
 from sklearn import ensemble, linear_model, neighbors, neural_network
 
-from agents.baselines import DeltaHedge, FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand
+from agents.baselines import (
+    DeltaHedge,
+    FixedBand,
+    LelandDelta,
+    MinimumVarianceDelta,
+    ModelDelta,
+    NoHedge,
+    WhalleyWilmottBand,
+)
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
 from agents.linear import LinearBasisAgent
@@ -20,6 +28,8 @@ BASELINES = {
     "leland": LelandDelta,
     "whalley_wilmott": WhalleyWilmottBand,
     "fixed_band": FixedBand,
+    "model_delta": ModelDelta,
+    "minimum_variance_delta": MinimumVarianceDelta,
 }
 
 AGENTS = {

@@ -139,16 +139,17 @@ class Book:
 
     def model_value_and_delta(self, model, spot: np.ndarray, t_days: float, marks: MarkParameters, state=None,
                               legs=None):
-        """Book value and delta (shares) at the price of ``model`` (a pricer of
-        :mod:`hedge_env.model_pricing`) with its state ``state`` (per path, or None), at one time."""
-        value = np.zeros(np.shape(spot))
-        delta = np.zeros(np.shape(spot))
+        """Book value, delta (shares) and sensitivity to the model's state (dV/dv for Heston, 0 for
+        Merton) at the price of ``model`` (a pricer of :mod:`hedge_env.model_pricing`) with its state
+        ``state`` (per path, or None), at one time."""
+        value, delta, vega = np.zeros(np.shape(spot)), np.zeros(np.shape(spot)), np.zeros(np.shape(spot))
         for leg in self.live_legs(float(t_days)) if legs is None else legs:
-            leg_value, leg_delta, _ = model.value_delta_vega(
+            leg_value, leg_delta, leg_vega = model.value_delta_vega(
                 spot, leg.strike, self._years_left(leg, t_days, marks), state, leg.is_call, leg.shares)
             value += leg_value
             delta += leg_delta
-        return value, delta
+            vega += leg_vega
+        return value, delta, vega
 
     def gamma(self, spot, t_days, marks: MarkParameters, volatility=None) -> np.ndarray:
         """Book gamma (shares per currency unit of spot) of the legs live at ``t_days``."""

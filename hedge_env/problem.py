@@ -69,7 +69,8 @@ class HedgingProblem:
         Marks (and the step's deltas) at this model's price
         (:mod:`hedge_env.model_pricing`) instead of Black-Scholes at
         ``marks.volatility``; the model's state (the Heston variance) comes per
-        path from the market factor :attr:`mark_factor`. ``marks`` still holds
+        path from the market factor :attr:`mark_factor` (observation column
+        ``mark_state_column`` when the hedger observes it). ``marks`` still holds
         the rate, dividend yield and year basis, and the Black-Scholes
         volatility of the baselines that price at it.
     """
@@ -82,6 +83,7 @@ class HedgingProblem:
     reference_spot: float = 100.0
     mark_volatility_observed: bool = False
     mark_model: object | None = None
+    mark_state_column: int | None = None
 
     @property
     def mark_factor(self) -> str | None:
@@ -96,31 +98,36 @@ class HedgingProblem:
             if scalar:
                 return self.book.value_and_delta_scalar(spot, t_days, self.marks, state, legs)
             return self.book.value_and_delta(spot, t_days, self.marks, state, legs)
+        value, delta, _ = self.model_greeks(spot, t_days, state, legs)
+        return (float(value), float(delta)) if scalar else (value, delta)
+
+    def model_greeks(self, spot, t_days, state=None, legs=None):
+        """The book's value, delta and dV/d(state) at the mark model's price; ``t_days`` one time or
+        one per row."""
         spot = np.asarray(spot, dtype=float)
         if np.ndim(t_days) == 0:
-            value, delta = self.book.model_value_and_delta(self.mark_model, spot, float(t_days), self.marks, state,
-                                                           legs)
-            return (float(value), float(delta)) if scalar else (value, delta)
+            return self.book.model_value_and_delta(self.mark_model, spot, float(t_days), self.marks, state, legs)
         # Rows at several times: one pass per time, each with the legs live then.
-        value, delta = np.zeros(spot.shape), np.zeros(spot.shape)
+        out = np.zeros((3, *spot.shape))
         state = None if state is None else np.broadcast_to(state, spot.shape)
         for t in np.unique(t_days):
             rows = t_days == t
-            value[rows], delta[rows] = self.book.model_value_and_delta(
-                self.mark_model, spot[rows], float(t), self.marks, None if state is None else state[rows])
-        return value, delta
+            greeks = self.book.model_value_and_delta(self.mark_model, spot[rows], float(t), self.marks,
+                                                     None if state is None else state[rows])
+            for part, values in zip(out, greeks):
+                part[rows] = values
+        return out[0], out[1], out[2]
 
-    def model_hedge_state(self, factor_names, obs):
-        """The mark model's state of observation rows for a model hedge (``(True, state)``), or
-        ``(False, None)`` when the rows cannot give it (a Heston variance not observed)."""
-        if self.mark_model is None:
-            return False, None
-        factor = self.mark_model.state_factor
-        if factor is None:
-            return True, None
-        if factor in factor_names:
-            return True, np.asarray(obs[:, 3 + list(factor_names).index(factor)], dtype=float)
-        return False, None
+    @property
+    def model_hedge_observable(self) -> bool:
+        """Whether a policy can compute the mark model's Greeks from its observation rows (a model
+        with no state, or one whose state is observed)."""
+        return self.mark_model is not None and (self.mark_model.state_factor is None
+                                                or self.mark_state_column is not None)
+
+    def observed_mark_state(self, obs):
+        """The mark model's state in observation rows (None for a model without one)."""
+        return None if self.mark_state_column is None else np.asarray(obs[:, self.mark_state_column], dtype=float)
 
     @cached_property
     def dt_years(self) -> float:

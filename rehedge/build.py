@@ -42,6 +42,7 @@ def build_problem(config: Config) -> HedgingProblem:
         OptionLeg(o.kind, o.strike, o.expiry_days, o.quantity, o.multiplier) for o in config.book.options
     )
     limit = frictions.position_limit_shares
+    model = market.mark_pricer() if config.pricing.marks == "model" else None
     return HedgingProblem(
         book=Book(legs),
         marks=MarkParameters(
@@ -74,7 +75,9 @@ def build_problem(config: Config) -> HedgingProblem:
         ),
         reference_spot=market.spot,
         mark_volatility_observed=observed,
-        mark_model=market.mark_pricer() if config.pricing.marks == "model" else None,
+        mark_model=model,
+        # The Heston variance, when observed, is the first (only) observed factor.
+        mark_state_column=3 if model is not None and getattr(market, "variance_observed", False) else None,
     )
 
 

@@ -504,8 +504,25 @@ class FixedBandBaseline(_NamedPolicy):
     )
 
 
+class ModelDeltaBaseline(_NamedPolicy):
+    """Rebalances to the delta at the mark model's price (needs pricing.marks = 'model'; under Heston,
+    market.variance_observed = true)."""
+
+    kind: Literal["model_delta"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+
+
+class MinimumVarianceDeltaBaseline(_NamedPolicy):
+    """Rebalances to Heston's minimum-variance delta, dV/dS + rho xi / S dV/dv at the model's price
+    (needs a heston market with pricing.marks = 'model' and market.variance_observed = true)."""
+
+    kind: Literal["minimum_variance_delta"] = Field(description="Baseline type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+
+
 BaselineSpec = Annotated[
-    Union[NoHedgeBaseline, DeltaBaseline, LelandBaseline, WhalleyWilmottBaseline, FixedBandBaseline],
+    Union[NoHedgeBaseline, DeltaBaseline, LelandBaseline, WhalleyWilmottBaseline, FixedBandBaseline,
+          ModelDeltaBaseline, MinimumVarianceDeltaBaseline],
     Field(discriminator="kind"),
 ]
 
@@ -702,6 +719,9 @@ class Config(_Spec):
                 if not getattr(self.market, key) > 0:
                     raise _rule(f"must be > 0 for Heston model marks (pricing.marks = 'model'), got "
                                 f"{_show(getattr(self.market, key))}", "market", key)
+        for i, baseline in enumerate(self.baselines):
+            if baseline.kind in ("model_delta", "minimum_variance_delta"):
+                self._check_model_hedge(baseline, i)
         if self.pricing.volatility is None:
             volatility = self.market.pricing_volatility(self.horizon_days / self.pricing.days_per_year)
             if volatility is not None and not volatility > 0:
@@ -767,6 +787,18 @@ class Config(_Spec):
         if self.export.policy is not None and self.export.policy not in seen:
             raise _rule(f"unknown policy {self.export.policy!r}; policies: {known}", "export", "policy")
         return self
+
+    def _check_model_hedge(self, baseline, i: int) -> None:
+        """A hedge at the mark model's Greeks needs those marks, and their state where the model has one."""
+        if self.pricing.marks != "model":
+            raise _rule(f"{baseline.kind} needs pricing.marks = 'model' (a heston or merton market)",
+                        "baselines", i, "kind")
+        if baseline.kind == "minimum_variance_delta" and self.market.model != "heston":
+            raise _rule(f"minimum_variance_delta is for a heston market, not {self.market.model}",
+                        "baselines", i, "kind")
+        if self.market.model == "heston" and not self.market.variance_observed:
+            raise _rule(f"{baseline.kind} needs market.variance_observed = true (its Greeks depend on the "
+                        "variance)", "baselines", i, "kind")
 
     def _resolve_historical(self) -> None:
         """Rules and defaults of a historical market that involve other sections."""

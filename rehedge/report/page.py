@@ -135,7 +135,8 @@ def _scenario_html(scored: Scored) -> str:
         # The mark is the configured position's liability: positive when the desk has sold the book.
         meaning = ("the premium received for the book the desk has sold" if mark > 0 else
                    "minus the premium paid for the book the desk has bought")
-        facts.append(("Black-Scholes mark of the book", f"{format_money(mark)} (currency): {meaning}"))
+        name = "model mark of the book" if config.pricing.marks == "model" else "Black-Scholes mark of the book"
+        facts.append((name, f"{format_money(mark)} (currency): {meaning}"))
     return (f"<h2>Scenario</h2>{_facts_table(facts[:2])}<h3>Book</h3>{book}"
             f"<h3>Market, frictions, objective and data</h3>{_facts_table(facts[2:])}")
 
@@ -150,6 +151,11 @@ def _pricing_text(config, problem) -> str:
     if marks == "realised":
         return (f"Black-Scholes marks at the realised volatility of the training period, "
                 f"{format_percent(problem.marks.volatility)}; {basis}")
+    if config.pricing.marks == "model":
+        how = ("the Heston price (Lewis's Fourier integral) at each path's variance"
+               if config.market.model == "heston" else "the Merton price (its series over jump counts)")
+        return (f"model marks: the book at {how}, risk-neutral with the market's parameters; the Black-Scholes "
+                f"baselines hedge at volatility {format_percent(problem.marks.volatility)}; {basis}")
     return f"Black-Scholes marks at volatility {format_percent(problem.marks.volatility)}, {basis}"
 
 

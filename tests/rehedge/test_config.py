@@ -394,3 +394,31 @@ def test_market_drift_is_the_growth_of_the_price_whatever_the_dividend_yield(mar
     assert abs(growth.mean() - expected) <= 4 * growth.std(ddof=1) / math.sqrt(growth.size)
     # The same test tells a price drift of drift - dividend_yield apart: 5% a year over 30 days.
     assert abs(expected - math.exp((0.12 - 0.05) * problem.horizon_years)) > 8 * growth.std(ddof=1) / math.sqrt(growth.size)
+
+
+def _heston_data() -> dict:
+    return tomllib.loads((Path(__file__).resolve().parents[2] / "configs" / "heston.toml").read_text())
+
+
+def test_model_marks_are_the_default_under_heston_and_merton_only():
+    assert parse_config(_heston_data()).pricing.marks == "model"
+    demo = tomllib.loads((Path(__file__).resolve().parents[2] / "configs" / "demo.toml").read_text())
+    assert parse_config(demo).pricing.marks == "black_scholes"
+    demo.setdefault("pricing", {})["marks"] = "model"
+    with pytest.raises(ConfigError, match=r"^pricing\.marks: 'model' needs a heston or merton market"):
+        parse_config(demo)
+
+
+def test_hedges_at_the_model_greeks_need_model_marks_and_the_observed_variance():
+    data = _heston_data()
+    data["baselines"] = [{"kind": "delta"}, {"kind": "minimum_variance_delta"}]
+    assert [b.kind for b in parse_config(data).baselines] == ["delta", "minimum_variance_delta"]
+    data["market"]["variance_observed"] = False
+    with pytest.raises(ConfigError) as blind:
+        parse_config(data)
+    assert str(blind.value) == ("baselines[1].kind: minimum_variance_delta needs market.variance_observed = true "
+                                "(its Greeks depend on the variance)")
+    data["market"]["variance_observed"] = True
+    data["pricing"]["marks"] = "black_scholes"
+    with pytest.raises(ConfigError, match=r"needs pricing\.marks = 'model'"):
+        parse_config(data)
