@@ -90,10 +90,11 @@ def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple
     notional = problem.notional_shares
     book, marks = problem.book, problem.marks
     volatility = decoded.volatility  # per row when the market supplies the mark volatility, else None
-    # The hedge the agent is anchored on: the mark model's delta when the rows give its state (Merton
-    # always; Heston when the variance is observed), else Black-Scholes at the mark volatility.
-    if problem.model_hedge_observable:
-        _, book_delta = problem.book_value_and_delta(decoded.spot, decoded.t_days, problem.observed_mark_state(obs))
+    # The hedge the agent is anchored on: the mark model's delta when it is a function of spot and
+    # time alone (Merton), else Black-Scholes at the mark volatility. (A Heston delta would make the
+    # anchor depend on the variance, which the fitted-Q agent's moneyness x gap table cannot hold.)
+    if problem.mark_model is not None and problem.mark_model.state_factor is None:
+        _, book_delta = problem.book_value_and_delta(decoded.spot, decoded.t_days)
     else:
         _, book_delta = book.value_and_delta(decoded.spot, decoded.t_days, marks, volatility)
     gamma = book.gamma(decoded.spot, decoded.t_days, marks, volatility)

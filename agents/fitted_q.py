@@ -110,10 +110,8 @@ class FittedQAgent(BackwardQAgent):
         steps = self.problem.schedule.steps
         self.regressors_: list = [None] * steps
         # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself,
-        # and so does an observed mark volatility or mark model state: the hedge and gamma of a row
-        # then depend on it too.
-        state_observed = self.problem.mark_state_column is not None
-        tabulable = not (self.problem.mark_volatility_observed or state_observed) and all(
+        # and so does an observed mark volatility: the hedge and gamma of a row then depend on it too.
+        tabulable = not self.problem.mark_volatility_observed and all(
             factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
         self.tables_: list | None = [None] * steps if tabulable else None
         self._rows: list[tuple[np.ndarray, np.ndarray]] = []
