@@ -23,7 +23,6 @@ import time
 from dataclasses import replace
 
 from hedge_env import model_pricing
-
 from rehedge.compare import evaluate_policies, evaluate_with_quotes
 from rehedge.config import load_variants
 from rehedge.training import train

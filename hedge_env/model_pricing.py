@@ -18,8 +18,9 @@ with ``c_x`` and ``c_v`` the same integral with ``i u`` and ``D(u - i/2)`` under
 has poles at ``u = +-i/2`` and decays on the scale ``1 / sqrt(w tau)`` (``w`` the expected mean
 variance to expiry), two scales far apart at short expiries: Gauss-Legendre on [0, 2] resolves the
 first, panels of a 16-node Gauss-Legendre rule (doubling in width, then as wide as the oscillation
-``e^{i u x}`` and the decay allow) up to where the integrand falls below 1e-18 the second. Checked against QuantLib's AnalyticHestonEngine in
-tests/hedge_env/test_model_pricing.py (docs/references.md).
+``e^{i u x}`` and the decay allow) up to where the integrand falls below 1e-18 the second.
+Checked against QuantLib's AnalyticHestonEngine in tests/hedge_env/test_model_pricing.py
+(docs/references.md).
 
 Many paths at one time share ``tau``: :func:`heston_table` tabulates ``c, c_x, c_v`` once per
 ``tau``, less the Black-Scholes ``c`` at the expected mean variance ``w(v)`` (the difference is

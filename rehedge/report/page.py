@@ -35,9 +35,9 @@ from rehedge.formats import (
 from rehedge.report.figures import (
     STYLE,
     colors_of,
-    labels_of,
     cost_figure,
     frontier_figure,
+    labels_of,
     map_figures,
     path_figure,
     pnl_figure,
@@ -207,12 +207,12 @@ def _summary_table(records: list[dict], columns, versus_of=None) -> str:
     return f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>'
 
 
-def _versus_cells(reference: str):
-    """Headers (for None) or cells of a record's difference from ``reference``."""
+def _versus_cells(reference: str, label: str):
+    """Headers (for None) or cells of a record's difference from ``reference`` (named ``label``)."""
 
     def cells(record: dict | None) -> list[str]:
         if record is None:
-            return [f"vs {reference}: mean (currency)", "95% CI (currency)", "verdict"]
+            return [f"vs {label}: mean (currency)", "95% CI (currency)", "verdict"]
         versus = record.get("vs_reference")
         if versus is None:
             return ['<td class="num">n/a</td>'] * 2 + ["<td></td>"]
@@ -234,22 +234,23 @@ def _summary_html(scored: Scored) -> str:
     reference = scored.metrics.get("reference_policy")
     columns = metric_columns(records[0])
     has_versus = any("vs_reference" in r for r in records)
+    reference_label = policy_label(reference, next((r.get("kind", "") for r in records if r["name"] == reference), ""))
     note = ("Ranked by objective (higher is better), in the same order in every table. Every number is from "
             "this run's metrics.json, formatted; money in the config's currency, costs and P&L per path over "
             "the horizon, VaR and CVaR as positive losses. ")
     if has_versus:
-        note += (f"The difference from {reference} is the mean per-path difference in summed reward, with a "
+        note += (f"The difference from {reference_label} is the mean per-path difference in summed reward, with a "
                  f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples); "
                  "'above' or 'below' when the interval excludes zero. ")
     if "quote_bid" in records[0]:
         note += ("Bid and ask: mean-variance indifference premiums for the opposite and the configured book; "
-                 "spreads are the distance from the Black-Scholes mark in implied-volatility points.")
+                 "spreads are each quote's distance from the mark, in Black-Scholes implied-volatility points.")
     parts = [f'<h2>Summary</h2><p class="muted">{_e(note)}</p>']
     for title, prefixes in _SUMMARY_TABLES:
         chosen = [c for c in columns if c.key.startswith(prefixes)]
         if not chosen:
             continue
-        versus = _versus_cells(reference) if has_versus and title == "Ranking" else None
+        versus = _versus_cells(reference, reference_label) if has_versus and title == "Ranking" else None
         parts.append(f"<h3>{_e(title)}</h3>{_summary_table(records, chosen, versus)}")
     return "".join(parts)
 

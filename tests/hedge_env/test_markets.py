@@ -298,6 +298,8 @@ def test_a_heston_market_with_no_variance_at_all_needs_an_explicit_pricing_volat
     assert str(info.value) == ("market.long_run_variance: must be > 0 for Heston model marks "
                                "(pricing.marks = 'model'), got 0.0")
     data["pricing"]["marks"] = "black_scholes"
+    data["baselines"] = [b for b in data["baselines"] if b["kind"] not in ("model_delta", "minimum_variance_delta")]
+    data["report"]["reference_policy"] = "delta"
     with pytest.raises(ConfigError) as info:
         parse_config(data)
     assert str(info.value) == "pricing.volatility: must be given: the market model's default volatility is 0"

@@ -242,7 +242,7 @@ BAD_INPUTS = [
         MINIMAL + '\n[[baselines]]\nkind = "delta"\n\n[[baselines]]\nkind = "no_hedge"\n'
         '\n[[baselines]]\nkind = "deltaa"\n',
         "baselines[2].kind: must be one of 'no_hedge', 'delta', 'leland', 'whalley_wilmott', "
-        "'fixed_band', got 'deltaa'",
+        "'fixed_band', 'model_delta', 'minimum_variance_delta', got 'deltaa'",
         id="unknown-baseline-kind",
     ),
     pytest.param(

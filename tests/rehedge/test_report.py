@@ -20,8 +20,8 @@ from rehedge.config import load_variants
 from rehedge.errors import RunFolderError
 from rehedge.formats import CAUTION, format_money, metric_columns
 from rehedge.report import build_report
-from rehedge.report.scored import policy_label
 from rehedge.report.figures import _band_departure, _departure_text, policy_map
+from rehedge.report.scored import policy_label
 from rehedge.run_folder import load_run, write_run
 from rehedge.training import train
 
