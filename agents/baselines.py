@@ -25,6 +25,7 @@ import numpy as np
 
 from agents.policy import decode
 from hedge_env.book import Book
+from hedge_env.model_pricing import HestonPricer
 from hedge_env.problem import HedgingProblem
 
 
@@ -118,7 +119,7 @@ class MinimumVarianceDelta:
 
     def __post_init__(self) -> None:
         _needs_model_hedge(self.problem, "minimum_variance_delta")
-        if not hasattr(self.problem.mark_model, "correlation"):
+        if not isinstance(self.problem.mark_model, HestonPricer):
             raise ValueError("minimum_variance_delta is implemented for Heston marks only")
 
     def act(self, obs: np.ndarray) -> np.ndarray:

@@ -137,8 +137,7 @@ class Book:
             return np.zeros(np.shape(spot)), np.zeros(np.shape(spot))
         return value, delta
 
-    def model_value_and_delta(self, model, spot: np.ndarray, t_days: float, marks: MarkParameters, state=None,
-                              legs=None):
+    def model_greeks(self, model, spot: np.ndarray, t_days: float, marks: MarkParameters, state=None, legs=None):
         """Book value, delta (shares) and sensitivity to the model's state (dV/dv for Heston, 0 for
         Merton) at the price of ``model`` (a pricer of :mod:`hedge_env.model_pricing`) with its state
         ``state`` (per path, or None), at one time."""

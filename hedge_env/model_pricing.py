@@ -49,10 +49,10 @@ from hedge_env import pricing
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 
 # The table: standardised log-moneyness z in [-Z, Z] at Z_POINTS nodes, y = v^(1/4) in
-# [0, y_max] at S_POINTS nodes (y_max from the parameters, see heston_table).
+# [0, y_max] at Y_POINTS nodes (y_max from the parameters, see heston_table).
 TABLE_Z = 24.0
 TABLE_Z_POINTS = 481
-TABLE_S_POINTS = 61
+TABLE_Y_POINTS = 61
 # Paths priced by the integral in one group (of similar variance: they share the nodes).
 _GROUP = 256
 # Integrand size below which the integral is cut off, relative to the strike's discounted unit.
@@ -212,7 +212,7 @@ class HestonTable:
     pricer: HestonPricer
     tau: float
     y_step: float
-    values: np.ndarray  # (3, S_POINTS + 3, Z_POINTS), Heston less Black-Scholes: y from -y_step to y_max + 2 steps
+    values: np.ndarray  # (3, Y_POINTS + 3, Z_POINTS), Heston less Black-Scholes: y from -y_step to y_max + 2 steps
 
     @cached_property
     def stacked(self) -> np.ndarray:
@@ -321,8 +321,8 @@ def heston_table(pricer: HestonPricer, tau: float) -> HestonTable:
     so it is even in ``y`` and the row below 0 is the mirror of the first row above it.
     """
     y_max = math.sqrt(4.0 * math.sqrt(pricer.long_run_variance) + 3.0 * pricer.vol_of_vol * math.sqrt(tau))
-    y_step = y_max / (TABLE_S_POINTS - 1)
-    y_nodes = y_step * np.arange(-1, TABLE_S_POINTS + 2)
+    y_step = y_max / (TABLE_Y_POINTS - 1)
+    y_nodes = y_step * np.arange(-1, TABLE_Y_POINTS + 2)
     z_nodes = np.linspace(-TABLE_Z, TABLE_Z, TABLE_Z_POINTS)
     values = np.empty((3, y_nodes.size, z_nodes.size))
     for row, y in enumerate(y_nodes):

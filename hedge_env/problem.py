@@ -106,13 +106,13 @@ class HedgingProblem:
         one per row."""
         spot = np.asarray(spot, dtype=float)
         if np.ndim(t_days) == 0:
-            return self.book.model_value_and_delta(self.mark_model, spot, float(t_days), self.marks, state, legs)
+            return self.book.model_greeks(self.mark_model, spot, float(t_days), self.marks, state, legs)
         # Rows at several times: one pass per time, each with the legs live then.
         out = np.zeros((3, *spot.shape))
         state = None if state is None else np.broadcast_to(state, spot.shape)
         for t in np.unique(t_days):
             rows = t_days == t
-            greeks = self.book.model_value_and_delta(self.mark_model, spot[rows], float(t), self.marks,
+            greeks = self.book.model_greeks(self.mark_model, spot[rows], float(t), self.marks,
                                                      None if state is None else state[rows])
             for part, values in zip(out, greeks):
                 part[rows] = values
