@@ -82,6 +82,11 @@ def _model_greeks(problem: HedgingProblem, obs: np.ndarray):
     return decoded, problem.model_greeks(decoded.spot, decoded.t_days, problem.observed_mark_state(obs))
 
 
+def _state_factors(problem: HedgingProblem) -> tuple[str, ...]:
+    """The market factors a hedge at the model's Greeks reads from its observation (its state)."""
+    return (problem.mark_factor,) if problem.mark_state_column is not None else ()
+
+
 def _needs_model_hedge(problem: HedgingProblem, kind: str) -> None:
     if not problem.model_hedge_observable:
         raise ValueError(f"{kind} needs model marks whose state the hedger observes (Merton; Heston with the "
@@ -98,6 +103,10 @@ class ModelDelta:
 
     def __post_init__(self) -> None:
         _needs_model_hedge(self.problem, "model_delta")
+
+    @property
+    def factor_names(self) -> tuple[str, ...]:
+        return _state_factors(self.problem)
 
     def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
         # The step's delta is the model's (the marks are), at the state the observation shows.
@@ -122,11 +131,35 @@ class MinimumVarianceDelta:
         if not isinstance(self.problem.mark_model, HestonPricer):
             raise ValueError("minimum_variance_delta is implemented for Heston marks only")
 
+    @property
+    def factor_names(self) -> tuple[str, ...]:
+        return _state_factors(self.problem)
+
     def act(self, obs: np.ndarray) -> np.ndarray:
         decoded, (_, delta, vega) = _model_greeks(self.problem, obs)
         model = self.problem.mark_model
         hedge = delta + model.correlation * model.vol_of_vol / decoded.spot * vega
         return -hedge / self.problem.notional_shares
+
+
+BAND_CENTERS = ("delta", "model_delta", "minimum_variance_delta")
+
+
+def band_center(problem: HedgingProblem, center: str, obs: np.ndarray, book_delta=None):
+    """The hedge (shares) a band is centred on, and the decoded rows: the Black-Scholes ``delta``
+    (the step's delta when it is at the mark volatility), or the ``model_delta`` or
+    ``minimum_variance_delta`` hedge."""
+    if center == "delta":
+        return DeltaHedge(problem).hedge_shares(obs, book_delta)
+    policy = ModelDelta(problem) if center == "model_delta" else MinimumVarianceDelta(problem)
+    return policy.act(obs) * problem.notional_shares, decode(problem, obs)
+
+
+def _check_center(problem: HedgingProblem, center: str) -> None:
+    if center not in BAND_CENTERS:
+        raise ValueError(f"band center must be one of {BAND_CENTERS}, got {center!r}")
+    if center != "delta":  # the model hedges check what they need
+        (ModelDelta if center == "model_delta" else MinimumVarianceDelta)(problem)
 
 
 def leland_volatility(volatility: float, round_trip_cost: float, dt_years: float, written: bool) -> float:
@@ -166,12 +199,21 @@ class LelandDelta:
 
 @dataclass(frozen=True)
 class WhalleyWilmottBand:
-    """Asymptotic optimal no-trade band around delta; ``risk_aversion`` per currency unit."""
+    """Asymptotic optimal no-trade band around ``center`` (see :func:`band_center`), of the width
+    Whalley and Wilmott give with the Black-Scholes gamma; ``risk_aversion`` per currency unit."""
 
     problem: HedgingProblem
     risk_aversion: float = 1.0
+    center: str = "delta"
     name: str = "whalley_wilmott"
     label = "Whalley-Wilmott band"
+
+    def __post_init__(self) -> None:
+        _check_center(self.problem, self.center)
+
+    @property
+    def factor_names(self) -> tuple[str, ...]:
+        return () if self.center == "delta" else _state_factors(self.problem)
 
     def half_width_shares(self, spot, t_days, volatility=None) -> np.ndarray:
         """Band half-width in shares; gamma at ``volatility`` (per row, or None: the mark volatility)."""
@@ -183,7 +225,7 @@ class WhalleyWilmottBand:
         return np.cbrt(1.5 * discount * cost * spot * gamma**2 / self.risk_aversion)
 
     def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
-        center, decoded = DeltaHedge(self.problem).hedge_shares(obs, book_delta)
+        center, decoded = band_center(self.problem, self.center, obs, book_delta)
         half_width = self.half_width_shares(decoded.spot, decoded.t_days, decoded.volatility)
         return _to_band(decoded.holding_shares, center, half_width) / self.problem.notional_shares
 
@@ -192,15 +234,24 @@ class WhalleyWilmottBand:
 
 @dataclass(frozen=True)
 class FixedBand:
-    """No trade within ``half_width`` (per share of notional) of delta; outside, to the nearest edge."""
+    """No trade within ``half_width`` (per share of notional) of ``center`` (see :func:`band_center`);
+    outside, to the nearest edge."""
 
     problem: HedgingProblem
     half_width: float = 0.05
+    center: str = "delta"
     name: str = "fixed_band"
     label = "fixed band"
 
+    def __post_init__(self) -> None:
+        _check_center(self.problem, self.center)
+
+    @property
+    def factor_names(self) -> tuple[str, ...]:
+        return () if self.center == "delta" else _state_factors(self.problem)
+
     def act(self, obs: np.ndarray, book_delta: np.ndarray | None = None) -> np.ndarray:
-        center, decoded = DeltaHedge(self.problem).hedge_shares(obs, book_delta)
+        center, decoded = band_center(self.problem, self.center, obs, book_delta)
         notional = self.problem.notional_shares
         return _to_band(decoded.holding_shares / notional, center / notional, self.half_width)
 

@@ -492,6 +492,9 @@ class WhalleyWilmottBaseline(_NamedPolicy):
     risk_aversion: Annotated[float | Literal["tune"], _tunable(strictly_positive=True)] = Field(
         "tune", description="Risk aversion in the band formula, per currency unit, or 'tune' to fit it."
     )
+    center: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
+        "delta", description="The hedge the band is centred on: the Black-Scholes 'delta', or (with model marks) "
+                             "'model_delta' or 'minimum_variance_delta'.")
 
 
 class FixedBandBaseline(_NamedPolicy):
@@ -502,6 +505,9 @@ class FixedBandBaseline(_NamedPolicy):
     half_width: Annotated[float | Literal["tune"], _tunable(strictly_positive=False)] = Field(
         "tune", description="Band half-width in shares per share of book notional, or 'tune' to fit it."
     )
+    center: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
+        "delta", description="The hedge the band is centred on: the Black-Scholes 'delta', or (with model marks) "
+                             "'model_delta' or 'minimum_variance_delta'.")
 
 
 class ModelDeltaBaseline(_NamedPolicy):
@@ -721,7 +727,9 @@ class Config(_Spec):
                                 f"{_show(getattr(self.market, key))}", "market", key)
         for i, baseline in enumerate(self.baselines):
             if baseline.kind in ("model_delta", "minimum_variance_delta"):
-                self._check_model_hedge(baseline, i)
+                self._check_model_hedge(baseline.kind, i, "kind")
+            if getattr(baseline, "center", "delta") != "delta":
+                self._check_model_hedge(baseline.center, i, "center")
         if self.pricing.volatility is None:
             volatility = self.market.pricing_volatility(self.horizon_days / self.pricing.days_per_year)
             if volatility is not None and not volatility > 0:
@@ -788,17 +796,16 @@ class Config(_Spec):
             raise _rule(f"unknown policy {self.export.policy!r}; policies: {known}", "export", "policy")
         return self
 
-    def _check_model_hedge(self, baseline, i: int) -> None:
+    def _check_model_hedge(self, hedge: str, i: int, key: str) -> None:
         """A hedge at the mark model's Greeks needs those marks, and their state where the model has one."""
         if self.pricing.marks != "model":
-            raise _rule(f"{baseline.kind} needs pricing.marks = 'model' (a heston or merton market)",
-                        "baselines", i, "kind")
-        if baseline.kind == "minimum_variance_delta" and self.market.model != "heston":
+            raise _rule(f"{hedge} needs pricing.marks = 'model' (a heston or merton market)", "baselines", i, key)
+        if hedge == "minimum_variance_delta" and self.market.model != "heston":
             raise _rule(f"minimum_variance_delta is for a heston market, not {self.market.model}",
-                        "baselines", i, "kind")
+                        "baselines", i, key)
         if self.market.model == "heston" and not self.market.variance_observed:
-            raise _rule(f"{baseline.kind} needs market.variance_observed = true (its Greeks depend on the "
-                        "variance)", "baselines", i, "kind")
+            raise _rule(f"{hedge} needs market.variance_observed = true (its Greeks depend on the "
+                        "variance)", "baselines", i, key)
 
     def _resolve_historical(self) -> None:
         """Rules and defaults of a historical market that involve other sections."""

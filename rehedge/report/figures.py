@@ -174,9 +174,11 @@ def pnl_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
 
 
 def _ww_band(scored: Scored):
-    """The tuned Whalley-Wilmott baseline of the run, else any Whalley-Wilmott baseline, else None."""
+    """The tuned Whalley-Wilmott baseline around the Black-Scholes delta of the run (the maps' hedge),
+    else any such baseline, else None."""
     run = scored.run
-    candidates = [spec.name for spec in run.config.baselines if spec.kind == "whalley_wilmott"]
+    candidates = [spec.name for spec in run.config.baselines
+                  if spec.kind == "whalley_wilmott" and spec.center == "delta"]
     tuned = [name for name in candidates if name in run.manifest.get("tuned", {})]
     chosen = (tuned or candidates or [None])[0]
     return None if chosen is None else (chosen, run.baselines[chosen])

@@ -87,3 +87,18 @@ def test_model_hedges_refuse_a_problem_whose_state_they_cannot_see():
         ModelDelta(blind)
     with pytest.raises(ValueError, match="variance observed"):
         MinimumVarianceDelta(blind)
+
+
+def test_a_band_around_the_minimum_variance_delta_trades_only_outside_it():
+    from agents.baselines import FixedBand
+
+    hedging = problem()
+    band = FixedBand(hedging, half_width=0.05, center="minimum_variance_delta")
+    assert band.factor_names == ("variance",)
+    center = MinimumVarianceDelta(hedging)
+    obs = np.column_stack([np.full(5, 1.02), np.full(5, 20 / 365), np.linspace(-1.0, 0.0, 5), np.full(5, 0.05)])
+    hedge = center.act(obs)
+    expected = np.clip(obs[:, 2], hedge - 0.05, hedge + 0.05)
+    np.testing.assert_allclose(band.act(obs), expected, rtol=0, atol=1e-12)
+    with pytest.raises(ValueError, match="band center"):
+        FixedBand(hedging, center="gamma")
