@@ -9,19 +9,25 @@ linear-basis agent (streamed ridge least squares). At decision time k
 the trade, ``-paid - kappa/2 paid^2`` with ``paid`` the trading and impact
 cost of moving from the holding to ``a`` at the current spot (the step's own
 cost formulas, ``problem.frictions``), and the leading one-step risk of the
-gap from the hedge, ``-kappa/2 ((a - hedge) N S)^2 m2`` (m2 the mean squared
-one-step return of the training paths). The model learns the rest: the
+gap from the hedge, ``-kappa/2 ((a - hedge) N S)^2 m2(s)`` (m2 the second
+moment of the next return, below). The model learns the rest: the
 market's part of the reward and the value of what follows,
 ``r - known_part + max_a' Q_{k+1}(s', a')``, fitted backward from the last
 decision to the first (one regression per decision time).
 
 Two control variates cut the noise of the regression targets without
-changing their expectation. The hedge gain ``a (S' - S)`` carries the
-market move in full; its surprise ``a (S' - S - S m1)`` (m1 the mean
-one-step return) is taken out. The risk term ``-kappa/2 dW^2`` carries
-``(a - hedge)^2 (S' - S)^2``; its surprise against ``S^2 m2`` (m2 the mean
-squared return) is taken out too. m1 comes from the given drift or, like
-m2, from the training paths.
+changing their expectation given the state. The hedge gain ``a (S' - S)``
+carries the market move in full; its surprise ``a (S' - S - S m1)`` (m1 the
+mean one-step return) is taken out. The risk term ``-kappa/2 dW^2`` carries
+``(a - hedge)^2 (S' - S)^2``; its surprise against ``S^2 m2(s)`` is taken out
+too. ``m2(s)`` is the second moment of the next return given what the agent
+observes: when it observes the variance (or an implied volatility, squared),
+the training paths' least-squares line of R^2 on it (ReturnMoments), so the
+gap risk of the known part grows with the variance; else the mean of R^2. (An
+unconditional m2 in the control variate would cancel the state dependence of
+the gap risk.) The line is used only when the fitted part can follow the
+variance too (a basis term or the anchor reads it): see ``_uses_variance``.
+m1 comes from the given drift or from the training paths.
 
 The greedy action maximises Q over a candidate set that always holds no
 trade, the Black-Scholes hedge, band edges around it
@@ -33,13 +39,16 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Iterable
+from dataclasses import dataclass, fields
 
 import numpy as np
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
+from agents.baselines import check_center
 from agents.dataset import Transitions, replayed_impact, replayed_next_spots
 from agents.features import StateFeatures, basis_columns, check_terms, hedge_move, state_features
+from hedge_env.market import MARK_VOLATILITY_FACTOR
 from hedge_env.problem import HedgingProblem
 
 # Band edges around the hedge, in hedge moves (the typical one-step change of the hedge).
@@ -64,9 +73,10 @@ def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: f
 
 
 def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray,
-               mean_squared_return: float) -> np.ndarray:
+               second_moment: np.ndarray | float) -> np.ndarray:
     """What is known of the reward of moving to ``targets`` (n, C): the trade's cost and the
-    leading one-step risk of the gap, ``-paid - kappa/2 paid^2 - kappa/2 (gap N S)^2 m2``."""
+    leading one-step risk of the gap, ``-paid - kappa/2 paid^2 - kappa/2 (gap N S)^2 m2``, with
+    ``m2`` the second moment of the next return, one for all rows or one per row."""
     frictions, kappa = problem.frictions, problem.objective.risk_aversion
     notional = problem.notional_shares
     spot = state.spot[:, None]
@@ -79,12 +89,20 @@ def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarra
         paid = paid + impact
     gap_risk = targets - state.hedge[:, None]
     gap_risk *= gap_risk
-    gap_risk *= (0.5 * kappa * mean_squared_return * notional * notional) * (spot * spot)
+    gap_risk *= (0.5 * kappa * notional * notional) * (spot * spot * np.reshape(second_moment, (-1, 1)))
     known = paid * paid
     known *= 0.5 * kappa
     known += paid
     known += gap_risk
     return np.negative(known, out=known)
+
+
+def check_anchor(problem: HedgingProblem, anchor: str, factor_names: tuple[str, ...]) -> None:
+    """An anchor other than the Black-Scholes delta is a hedge at the mark model's Greeks: the problem
+    must give them, and the agent must see the model's state where it has one."""
+    check_center(problem, anchor, "anchor")
+    if anchor != "delta" and problem.mark_state_column is not None and problem.mark_factor not in factor_names:
+        raise ValueError(f"anchor {anchor!r} reads the {problem.mark_factor}: the agent must observe it (not blind)")
 
 
 def decision_index(problem: HedgingProblem, obs: np.ndarray) -> np.ndarray:
@@ -101,14 +119,58 @@ def _chunks(data: TransitionSource) -> Iterable[Transitions]:
     return [data] if isinstance(data, Transitions) else data()
 
 
-def return_moment_sums(chunk: Transitions, problem: HedgingProblem) -> tuple[float, float, int]:
-    """Sum and sum of squares of the one-step simple returns of a chunk's market (without the
-    behaviour's own impact, under permanent impact), and their count."""
+# Observed factors that carry the instant's variance, and the power that makes them one: the
+# Heston variance itself, or a mark (implied) volatility squared.
+VARIANCE_FACTORS = {"variance": 1, MARK_VOLATILITY_FACTOR: 2}
+
+
+def variance_factor(factor_names) -> tuple[int, int] | None:
+    """(column among the factors, power) of the first observed factor that gives the variance, or None."""
+    for j, name in enumerate(factor_names):
+        if name in VARIANCE_FACTORS:
+            return j, VARIANCE_FACTORS[name]
+    return None
+
+
+@dataclass(frozen=True)
+class ReturnMoments:
+    """Sums over the one-step simple returns R of training paths and the observed variance x at
+    each step's start (0 when none is observed): enough for the mean return, and for the
+    least-squares line of R^2 on x, the conditional second moment of the move."""
+
+    count: int = 0
+    r: float = 0.0
+    r2: float = 0.0
+    x: float = 0.0
+    xx: float = 0.0
+    xr2: float = 0.0
+
+    def __add__(self, other: ReturnMoments) -> ReturnMoments:
+        return ReturnMoments(*(getattr(self, f.name) + getattr(other, f.name) for f in fields(self)))
+
+    def second_moment_line(self) -> tuple[float, float, float]:
+        """(mean R^2, mean x, slope of R^2 on x): E[R^2 | x] ~ mean R^2 + slope (x - mean x)."""
+        n = self.count
+        mean_x, mean_r2 = self.x / n, self.r2 / n
+        spread = self.xx / n - mean_x * mean_x
+        # A factor that does not move (or none observed) leaves the unconditional moment.
+        slope = (self.xr2 / n - mean_x * mean_r2) / spread if spread > 1e-12 * max(self.xx / n, 1e-300) else 0.0
+        return mean_r2, mean_x, slope
+
+
+def return_moment_sums(chunk: Transitions, problem: HedgingProblem, factor_names=()) -> ReturnMoments:
+    """:class:`ReturnMoments` of a chunk's market (without the behaviour's own impact, under
+    permanent impact), with the variance of the factors named ``factor_names`` (the observation's
+    columns after the holding)."""
     simple = chunk.next_obs[..., 0] / chunk.obs[..., 0]
     if problem.frictions.permanent_impact:
         simple = simple / np.stack([replayed_impact(problem, chunk, k)[:, 0] for k in range(chunk.steps)])
     simple = simple - 1.0
-    return float(simple.sum()), float((simple * simple).sum()), simple.size
+    square = simple * simple
+    column = variance_factor(factor_names)
+    x = np.zeros_like(simple) if column is None else chunk.obs[..., 3 + column[0]] ** column[1]
+    return ReturnMoments(simple.size, float(simple.sum()), float(square.sum()), float(x.sum()),
+                         float((x * x).sum()), float((x * square).sum()))
 
 
 class BackwardQAgent(BaseEstimator):
@@ -119,7 +181,8 @@ class BackwardQAgent(BaseEstimator):
     ``_predict(k, X)`` for an array of shape (..., n_basis).
     """
 
-    def __init__(self, problem: HedgingProblem, basis, band_widths, partial_moves, factor_names, drift, name):
+    def __init__(self, problem: HedgingProblem, basis, band_widths, partial_moves, factor_names, drift, anchor,
+                 name):
         # The parameters every backward agent has, stored unchanged (scikit-learn's convention); a
         # subclass's __init__ names them with its own defaults and adds its own.
         self.problem = problem
@@ -128,6 +191,7 @@ class BackwardQAgent(BaseEstimator):
         self.partial_moves = partial_moves
         self.factor_names = factor_names
         self.drift = drift
+        self.anchor = anchor
         self.name = name
 
     @property
@@ -139,7 +203,7 @@ class BackwardQAgent(BaseEstimator):
         """Fit from transitions: a Transitions block, or a callable returning an iterable of blocks
         (called once per decision time, so the data may be streamed from paths)."""
         steps = self.problem.schedule.steps
-        self._begin_fit([return_moment_sums(chunk, self.problem) for chunk in _chunks(data)])
+        self._begin_fit([return_moment_sums(chunk, self.problem, tuple(self.factor_names)) for chunk in _chunks(data)])
         for k in reversed(range(steps)):
             self._start_step(k)
             for chunk in _chunks(data):
@@ -159,25 +223,47 @@ class BackwardQAgent(BaseEstimator):
         """Reset learned state and set the return moments from each chunk's
         :func:`return_moment_sums` (summed in chunk order)."""
         self.move_ = hedge_move(self.problem)
+        check_anchor(self.problem, self.anchor, tuple(self.factor_names))
         check_terms(self.terms, tuple(self.factor_names))
         self._setup()
-        total = total_squared = 0.0
-        count = 0
-        for chunk_total, chunk_squared, chunk_count in moment_sums:
-            total += chunk_total
-            total_squared += chunk_squared
-            count += chunk_count
-        mean_return, self.mean_squared_return_ = total / count, total_squared / count
+        moments = sum(moment_sums, ReturnMoments())
+        self.mean_squared_return_, self.mean_variance_, self.variance_slope_ = moments.second_moment_line()
+        if not self._uses_variance():
+            self.variance_slope_ = 0.0
+        mean_return = moments.r / moments.count
         self.drift_ = np.log1p(mean_return) / self.problem.dt_years if self.drift is None else float(self.drift)
+
+    def _uses_variance(self) -> bool:
+        """Whether the fitted part can follow the observed variance: a basis term or the anchor reads it.
+        Else the known part keeps the mean second moment: a gap risk that grows with the variance
+        around a best target that cannot move with it puts that target in the wrong place (measured
+        on configs/heston.toml: 71 against 84 for the blind agent, over the minimum-variance delta)."""
+        column = variance_factor(self.factor_names)
+        if column is None:
+            return False
+        name = self.factor_names[column[0]]
+        in_terms = any(factor.partition("^")[0] == name for term in self.terms for factor in term.split("*"))
+        return in_terms or (self.anchor != "delta" and name == self.problem.mark_factor)
+
+    def second_moment(self, state: StateFeatures) -> np.ndarray | float:
+        """E[R^2 | s] of the next simple return R: the training paths' line in the observed
+        variance (agents.backward.ReturnMoments), per row; the mean when no variance is observed."""
+        column = variance_factor(self.factor_names)
+        if column is None or not self.variance_slope_:
+            return self.mean_squared_return_
+        x = state.values[self.factor_names[column[0]]] ** column[1]
+        # Floored: the line is fitted, and a variance far outside the training range must not make it negative.
+        return np.maximum(self.mean_squared_return_ + self.variance_slope_ * (x - self.mean_variance_), 0.0)
 
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Design, term-major of shape (n_terms, n, M), and targets (n, M) of step k: one row per
         state and tried action."""
         problem = self.problem
-        state = state_features(problem, chunk.obs[k], self.factor_names)
+        state = state_features(problem, chunk.obs[k], self.factor_names, self.anchor)
         targets = chunk.actions[k]
         X = basis_columns(self.terms, state, targets)
-        y = chunk.rewards[k] - self._known(state, targets)
+        second_moment = self.second_moment(state)
+        y = chunk.rewards[k] - known_part(problem, state, targets, second_moment)
         notional, spot = problem.notional_shares, state.spot
         gap_shares = (targets - state.hedge[:, None]) * notional
         factors = replayed_impact(problem, chunk, k)
@@ -186,7 +272,7 @@ class BackwardQAgent(BaseEstimator):
             # Every tried target sees the same market move.
             move = chunk.next_obs[k, :, 0] * problem.reference_spot - spot
             move_surprise = (move - spot * growth)[:, None]
-            square_surprise = (move * move - spot * spot * self.mean_squared_return_)[:, None]
+            square_surprise = (move * move - spot * spot * second_moment)[:, None]
             next_moneyness = None
         else:
             # Each target moved the market by its own factor f: E[S' | s, a] = S f (1 + m1) and
@@ -194,7 +280,7 @@ class BackwardQAgent(BaseEstimator):
             next_spots = replayed_next_spots(problem, chunk, k, factors)
             move = next_spots - spot[:, None]
             move_surprise = move - spot[:, None] * (factors * (1.0 + growth) - 1.0)
-            second = self.mean_squared_return_ + 2.0 * growth + 1.0
+            second = np.reshape(second_moment, (-1, 1)) + (2.0 * growth + 1.0)
             square_surprise = move * move - (spot * spot)[:, None] * (
                 factors * factors * second - 2.0 * factors * (1.0 + growth) + 1.0)
             next_moneyness = next_spots / problem.reference_spot
@@ -206,7 +292,7 @@ class BackwardQAgent(BaseEstimator):
 
     # -- using the fitted Q ------------------------------------------------------------------
     def _known(self, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-        return known_part(self.problem, state, targets, self.mean_squared_return_)
+        return known_part(self.problem, state, targets, self.second_moment(state))
 
     def _q(self, k: int, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
         return self._known(state, targets) + self._predict(k, state, targets)
@@ -220,7 +306,7 @@ class BackwardQAgent(BaseEstimator):
         values_out = np.empty(len(obs))
         # State features once for all rows (numpy call overhead is per call); the (rows, candidates)
         # work in blocks that stay in cache.
-        features = state_features(self.problem, obs, self.factor_names)
+        features = state_features(self.problem, obs, self.factor_names, self.anchor)
         for start in range(0, len(obs), ROW_BLOCK):
             rows = slice(start, start + ROW_BLOCK)
             state = features.rows(rows) if len(obs) > ROW_BLOCK else features

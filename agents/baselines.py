@@ -18,6 +18,7 @@ target is minus the book's delta (shares), expressed per share of notional.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -25,7 +26,7 @@ import numpy as np
 
 from agents.policy import decode
 from hedge_env.book import Book
-from hedge_env.model_pricing import HestonPricer
+from hedge_env.model_pricing import HestonPricer, MertonPricer
 from hedge_env.problem import HedgingProblem
 
 
@@ -117,10 +118,17 @@ class ModelDelta:
     act_with_delta = act
 
 
+# Gauss-Hermite nodes of the expectation over a Merton jump's normal log size.
+JUMP_NODES = 24
+
+
 @dataclass(frozen=True)
 class MinimumVarianceDelta:
-    """Heston's minimum-variance hedge: minus (dV/dS + rho xi / S dV/dv) of the book at the model's
-    price, which also hedges the part of the variance's move that goes with the spot's."""
+    """The hedge that minimises the variance of the hedged book's move over an instant, at the mark
+    model's price. Heston: minus (dV/dS + rho xi / S dV/dv), which also hedges the part of the
+    variance's move that goes with the spot's. Merton: minus
+    ``(sigma^2 dV/dS + lambda/S E[(e^z - 1)(V(S e^z) - V(S))]) / (sigma^2 + lambda E[(e^z - 1)^2])``
+    (z the log jump), the regression of the book's move on the spot's with the jumps in both."""
 
     problem: HedgingProblem
     name: str = "minimum_variance_delta"
@@ -128,18 +136,76 @@ class MinimumVarianceDelta:
 
     def __post_init__(self) -> None:
         _needs_model_hedge(self.problem, "minimum_variance_delta")
-        if not isinstance(self.problem.mark_model, HestonPricer):
-            raise ValueError("minimum_variance_delta is implemented for Heston marks only")
+        if not isinstance(self.problem.mark_model, (HestonPricer, MertonPricer)):
+            raise ValueError("minimum_variance_delta is implemented for Heston and Merton marks")
 
     @property
     def factor_names(self) -> tuple[str, ...]:
         return _state_factors(self.problem)
 
     def act(self, obs: np.ndarray) -> np.ndarray:
-        decoded, (_, delta, vega) = _model_greeks(self.problem, obs)
+        decoded, (value, delta, vega) = _model_greeks(self.problem, obs)
         model = self.problem.mark_model
-        hedge = delta + model.correlation * model.vol_of_vol / decoded.spot * vega
+        if isinstance(model, HestonPricer):
+            hedge = delta + model.correlation * model.vol_of_vol / decoded.spot * vega
+        else:
+            hedge = _merton_minimum_variance(self.problem, decoded.spot, decoded.t_days, value, delta)
         return -hedge / self.problem.notional_shares
+
+
+def _merton_minimum_variance(problem: HedgingProblem, spot, t_days, value, delta) -> np.ndarray:
+    """The Merton minimum-variance hedge ratio of the book (shares) at ``spot``: exact for a few rows,
+    else interpolated in log spot on its per-time table (:func:`_merton_ratio_table`)."""
+    if spot.size <= MERTON_EXACT_ROWS:
+        return _merton_ratio(problem, spot, t_days, value, delta)
+    out = np.empty_like(spot)
+    times = np.broadcast_to(t_days, spot.shape)
+    for t in np.unique(times):
+        rows = times == t
+        nodes, ratio = _merton_ratio_table(problem, float(t))
+        log_spot = np.log(spot[rows])
+        inside = (log_spot >= nodes[0]) & (log_spot <= nodes[-1])
+        out[rows] = np.interp(log_spot, nodes, ratio)
+        if not inside.all():  # off the table: exactly
+            far = np.flatnonzero(rows)[~inside]
+            value_far, delta_far = problem.model_greeks(spot[far], float(t))[:2]
+            out[far] = _merton_ratio(problem, spot[far], float(t), value_far, delta_far)
+    return out
+
+
+# Rows up to which the Merton hedge is computed exactly; the table's log-spot nodes: half-width around
+# the reference spot and spacing (linear interpolation; the ratio moves on the scale of the volatility
+# over the time left, at least a day's: 0.015 at 30% volatility, about 15 node spacings).
+MERTON_EXACT_ROWS = 64
+MERTON_TABLE_WIDTH = 1.5
+MERTON_TABLE_SPACING = 0.001
+
+
+@functools.lru_cache(maxsize=512)
+def _merton_ratio_table(problem: HedgingProblem, t_days: float) -> tuple[np.ndarray, np.ndarray]:
+    """Log-spot nodes and the Merton minimum-variance ratio there, at time ``t_days`` (cached)."""
+    center = math.log(problem.reference_spot)
+    count = int(round(2 * MERTON_TABLE_WIDTH / MERTON_TABLE_SPACING)) + 1
+    nodes = np.linspace(center - MERTON_TABLE_WIDTH, center + MERTON_TABLE_WIDTH, count)
+    spot = np.exp(nodes)
+    value, delta = problem.model_greeks(spot, t_days)[:2]
+    return nodes, _merton_ratio(problem, spot, t_days, value, delta)
+
+
+def _merton_ratio(problem: HedgingProblem, spot, t_days, value, delta) -> np.ndarray:
+    """The ratio's formula (MinimumVarianceDelta), the jump expectations by Gauss-Hermite quadrature
+    over the normal log jump."""
+    model = problem.mark_model
+    nodes, weights = np.polynomial.hermite_e.hermegauss(JUMP_NODES)
+    weights = weights / weights.sum()
+    growth = np.expm1(model.jump_mean + model.jump_std * nodes)  # e^z - 1 at each node
+    jumped = spot[None, :] * (1.0 + growth[:, None])
+    times = t_days if np.ndim(t_days) == 0 else np.broadcast_to(t_days, jumped.shape).ravel()
+    moved = problem.model_greeks(jumped.ravel(), times)[0].reshape(jumped.shape)
+    covariance = weights @ (growth[:, None] * (moved - value[None, :]))
+    diffusion = model.volatility ** 2
+    return ((diffusion * delta + model.jump_intensity * covariance / spot)
+            / (diffusion + model.jump_intensity * float(weights @ (growth * growth))))
 
 
 BAND_CENTERS = ("delta", "model_delta", "minimum_variance_delta")
@@ -155,9 +221,10 @@ def band_center(problem: HedgingProblem, center: str, obs: np.ndarray, book_delt
     return policy.act(obs) * problem.notional_shares, decode(problem, obs)
 
 
-def _check_center(problem: HedgingProblem, center: str) -> None:
+def check_center(problem: HedgingProblem, center: str, what: str = "band center") -> None:
+    """``center`` is one of BAND_CENTERS, and a model hedge the problem can give."""
     if center not in BAND_CENTERS:
-        raise ValueError(f"band center must be one of {BAND_CENTERS}, got {center!r}")
+        raise ValueError(f"{what} must be one of {BAND_CENTERS}, got {center!r}")
     if center != "delta":  # the model hedges check what they need
         (ModelDelta if center == "model_delta" else MinimumVarianceDelta)(problem)
 
@@ -209,7 +276,7 @@ class WhalleyWilmottBand:
     label = "Whalley-Wilmott band"
 
     def __post_init__(self) -> None:
-        _check_center(self.problem, self.center)
+        check_center(self.problem, self.center)
 
     @property
     def factor_names(self) -> tuple[str, ...]:
@@ -244,7 +311,7 @@ class FixedBand:
     label = "fixed band"
 
     def __post_init__(self) -> None:
-        _check_center(self.problem, self.center)
+        check_center(self.problem, self.center)
 
     @property
     def factor_names(self) -> tuple[str, ...]:

@@ -23,6 +23,7 @@ from pathlib import Path
 
 import numpy as np
 
+from agents.baselines import band_center
 from agents.features import hedge_move
 from hedge_env.market import MarketPaths, PathGenerator
 from hedge_env.problem import HedgingProblem
@@ -33,14 +34,17 @@ from hedge_env.step import HedgeState, hedge_step, initial_state, observe
 @dataclass(frozen=True)
 class Exploration:
     """Behaviour policy: with probability ``no_trade`` keep the holding, with ``delta`` trade
-    to the Black-Scholes hedge, otherwise draw a target normally around the hedge or around
-    the holding, half and half, with std ``spread`` hedge moves (agents.features.hedge_move:
-    the typical one-step change of the hedge)."""
+    to the hedge, otherwise draw a target normally around the hedge or around the holding, half
+    and half, with std ``spread`` hedge moves (agents.features.hedge_move: the typical one-step
+    change of the hedge). The hedge is ``center`` (agents.baselines.BAND_CENTERS; ``delta`` is
+    the step's own delta): the one the agent measures its targets from, so the tried targets
+    surround the ones it will choose among."""
 
     no_trade: float = 0.3
     delta: float = 0.2
     spread: float = 1.1
     actions_per_state: int = 8
+    center: str = "delta"
 
     def __post_init__(self) -> None:
         if not (0 <= self.no_trade and 0 <= self.delta and self.no_trade + self.delta <= 1):
@@ -149,7 +153,8 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
     next_holding = np.empty((steps, n, m))
     for k in range(steps):
         obs[k] = observe(problem, state, [factors[f][k] for f in observed])
-        hedge = -state.delta / notional
+        hedge = (-state.delta if exploration.center == "delta" else band_center(problem, exploration.center, obs[k])[0]
+                 ) / notional
         actions[k] = exploration.draw(rng, obs[k, :, 2], hedge, m, move)
         # Column-major tiling: rows j*n .. (j+1)*n-1 are action j of every state.
         outcome = hedge_step(

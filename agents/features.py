@@ -11,7 +11,9 @@ Names of the basis (``FEATURES``):
 moneyness      m = log(S / reference spot)
 years_left     years to the horizon
 holding        current holding h
-hedge          Black-Scholes hedge delta_h = -book delta / notional (mark volatility)
+hedge          the hedge the agent is anchored on, delta_h = -book delta / notional: Black-Scholes
+               at the mark volatility (the model's delta under Merton marks), or the agent's
+               ``anchor`` (model_delta, minimum_variance_delta)
 gamma          book gamma x S / notional: change of the hedge per unit log move
 hat0..hat8     tent functions of the standardised moneyness m / (vol sqrt(years left + dt)),
                on 9 knots from -3 to 3 (clamped beyond): a local basis in moneyness
@@ -33,6 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from agents.baselines import band_center
 from agents.policy import decode
 from hedge_env.problem import HedgingProblem
 
@@ -54,6 +57,16 @@ POLYNOMIAL_BASIS = (
     "abs_gap", "abs_gap*moneyness", "abs_gap*moneyness^2", "abs_gap*gamma",
     "target^2", "abs_target", "abs_target*moneyness",
 )
+
+# Terms the linear agent adds per observed market factor f (its default basis): the factor shifts the
+# best target (a hedge that leans with the variance) and the risk of being away from it.
+FACTOR_TERMS = ("gap*{f}", "gap*moneyness*{f}", "gap^2*{f}", "abs_gap*{f}")
+
+
+def polynomial_basis(factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
+    """The linear agent's default basis: ``POLYNOMIAL_BASIS`` and ``FACTOR_TERMS`` of each observed factor."""
+    return POLYNOMIAL_BASIS + tuple(term.format(f=name) for name in factor_names for term in FACTOR_TERMS)
+
 
 # Raw columns for a tree ensemble, which finds its own interactions.
 TREE_BASIS = ("moneyness", "hedge", "gamma", "target", "gap", "abs_gap")
@@ -84,16 +97,20 @@ class StateFeatures:
                              self.spot[selection], self.holding_shares[selection])
 
 
-def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple[str, ...] = ()) -> StateFeatures:
-    """State features of observation rows ``[spot/ref, years left, holding/notional, *factors]``."""
+def state_features(problem: HedgingProblem, obs: np.ndarray, factor_names: tuple[str, ...] = (),
+                   anchor: str = "delta") -> StateFeatures:
+    """State features of observation rows ``[spot/ref, years left, holding/notional, *factors]``,
+    with ``hedge`` the ``anchor`` (agents.baselines.BAND_CENTERS)."""
     decoded = decode(problem, obs)
     notional = problem.notional_shares
     book, marks = problem.book, problem.marks
     volatility = decoded.volatility  # per row when the market supplies the mark volatility, else None
-    # The hedge the agent is anchored on: the mark model's delta when it is a function of spot and
-    # time alone (Merton), else Black-Scholes at the mark volatility. (A Heston delta would make the
-    # anchor depend on the variance, which the fitted-Q agent's moneyness x gap table cannot hold.)
-    if problem.mark_model is not None and problem.mark_model.state_factor is None:
+    # The hedge the agent is anchored on. "delta": the mark model's delta when it is a function of spot
+    # and time alone (Merton), else Black-Scholes at the mark volatility. A hedge at a Heston model's
+    # Greeks depends on the variance too: a table in moneyness and gap (the fitted-Q agent's) cannot hold it.
+    if anchor != "delta":
+        book_delta = -band_center(problem, anchor, obs)[0]
+    elif problem.mark_model is not None and problem.mark_model.state_factor is None:
         _, book_delta = problem.book_value_and_delta(decoded.spot, decoded.t_days)
     else:
         _, book_delta = book.value_and_delta(decoded.spot, decoded.t_days, marks, volatility)

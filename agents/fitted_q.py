@@ -90,6 +90,10 @@ class FittedQAgent(BackwardQAgent):
     drift : float, optional
         Annual drift of the underlying for the hedge-gain control variate; None
         estimates it from the training paths.
+    anchor : str
+        The hedge the gap and the candidate targets are measured from:
+        ``delta`` (Black-Scholes at the mark volatility; the model's delta under
+        Merton marks), ``model_delta`` or ``minimum_variance_delta``.
     max_rows_per_step : int
         Regression rows kept per decision time: beyond it every r-th training
         state is kept (with all its replayed targets), so memory stays bounded
@@ -101,8 +105,9 @@ class FittedQAgent(BackwardQAgent):
 
     def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
-                 drift: float | None = None, max_rows_per_step: int = 2_000_000, name: str = "fitted_q"):
-        super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, name)
+                 drift: float | None = None, max_rows_per_step: int = 2_000_000, anchor: str = "delta",
+                 name: str = "fitted_q"):
+        super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, anchor, name)
         self.regressor = regressor
         self.max_rows_per_step = max_rows_per_step
 
@@ -110,8 +115,10 @@ class FittedQAgent(BackwardQAgent):
         steps = self.problem.schedule.steps
         self.regressors_: list = [None] * steps
         # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself,
-        # and so does an observed mark volatility: the hedge and gamma of a row then depend on it too.
-        tabulable = not self.problem.mark_volatility_observed and all(
+        # and so do an observed mark volatility and an anchor at a Heston model's Greeks: the hedge of a
+        # row then depends on them too.
+        state_anchor = self.anchor != "delta" and self.problem.mark_state_column is not None
+        tabulable = not self.problem.mark_volatility_observed and not state_anchor and all(
             factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
         self.tables_: list | None = [None] * steps if tabulable else None
         self._rows: list[tuple[np.ndarray, np.ndarray]] = []
@@ -120,7 +127,7 @@ class FittedQAgent(BackwardQAgent):
         moment_sums = list(moment_sums)
         super()._begin_fit(moment_sums)
         # Each chunk's return count is its states times the decision times.
-        self._states = sum(count for _, _, count in moment_sums) // self.problem.schedule.steps
+        self._states = sum(moments.count for moments in moment_sums) // self.problem.schedule.steps
 
     def _start_step(self, k: int) -> None:
         self._rows = []
@@ -167,7 +174,7 @@ class FittedQAgent(BackwardQAgent):
         moneyness = np.linspace(low - pad, high + pad, TABLE_MONEYNESS_POINTS)
         obs = np.column_stack([np.exp(moneyness), np.full_like(moneyness, self.problem.years_to_horizon(k)),
                                np.zeros_like(moneyness)])
-        state = state_features(self.problem, obs)
+        state = state_features(self.problem, obs, anchor=self.anchor)
         targets = state.hedge[:, None] + self.move_ * TABLE_GAPS[None, :]
         return moneyness, self._regress(k, state, targets)
 

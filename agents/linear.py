@@ -14,7 +14,7 @@ import numpy as np
 
 from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent, return_moment_sums
 from agents.dataset import Transitions
-from agents.features import POLYNOMIAL_BASIS, combination
+from agents.features import combination, polynomial_basis
 from hedge_env.problem import HedgingProblem
 
 
@@ -60,8 +60,9 @@ class LinearBasisAgent(BackwardQAgent):
     Parameters
     ----------
     problem : HedgingProblem
-    basis : tuple of str
-        Basis terms (see agents.features); default ``POLYNOMIAL_BASIS``.
+    basis : tuple of str, optional
+        Basis terms (see agents.features); default ``POLYNOMIAL_BASIS`` and, per
+        observed factor, its ``FACTOR_TERMS`` (agents.features.polynomial_basis).
     ridge : float
         Ridge penalty relative to each column's sum of squares.
     smoothing : float
@@ -76,17 +77,25 @@ class LinearBasisAgent(BackwardQAgent):
     drift : float, optional
         Annual drift of the underlying for the hedge-gain control variate; None
         estimates it from the training paths.
+    anchor : str
+        The hedge the gap and the candidate targets are measured from:
+        ``delta`` (Black-Scholes at the mark volatility; the model's delta under
+        Merton marks), ``model_delta`` or ``minimum_variance_delta``.
     name : str
     """
 
     label = "linear agent"  # what reports call the kind
 
-    def __init__(self, problem: HedgingProblem, basis=POLYNOMIAL_BASIS, ridge: float = 1e-6, smoothing: float = 0.0,
+    def __init__(self, problem: HedgingProblem, basis=None, ridge: float = 1e-6, smoothing: float = 0.0,
                  band_widths=DEFAULT_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
-                 drift: float | None = None, name: str = "linear"):
-        super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, name)
+                 drift: float | None = None, anchor: str = "delta", name: str = "linear"):
+        super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, anchor, name)
         self.ridge = ridge
         self.smoothing = smoothing
+
+    @property
+    def terms(self) -> tuple[str, ...]:
+        return polynomial_basis(tuple(self.factor_names)) if self.basis is None else tuple(self.basis)
 
     def _setup(self) -> None:
         self.coef_ = np.zeros((self.problem.schedule.steps, len(self.terms)))
@@ -121,7 +130,7 @@ class LinearBasisAgent(BackwardQAgent):
         coefficients fitted so far, summed in chunk order and solved: the numbers
         of :meth:`fit` streaming the same chunks.
         """
-        self._begin_fit(map_chunks(return_moment_sums, self.problem))
+        self._begin_fit(map_chunks(return_moment_sums, self.problem, tuple(self.factor_names)))
         for k in reversed(range(self.problem.schedule.steps)):
             self._start_step(k)
             for statistics in map_chunks(chunk_statistics, self, k):

@@ -568,7 +568,11 @@ BasisTerms = Annotated[list[str], Field(min_length=1)]
 class _LearnedAgent(_NamedPolicy):
     def model_inputs(self, market) -> dict:
         """Constructor arguments that the agent takes from outside its own fields: the factors it observes."""
-        return {"factor_names": market.observed_factors}
+        return {"factor_names": () if self.blind else market.observed_factors}
+
+    blind: bool = Field(False, description="Leave out the market factors the desk observes (the variance, an "
+                                           "implied volatility): the agent decides on spot, time and holding "
+                                           "alone, to measure what seeing them is worth.")
 
     exploration: ExplorationSpec = Field(default_factory=ExplorationSpec,
                                          description="Behaviour policy of the training transitions.")
@@ -577,6 +581,9 @@ class _LearnedAgent(_NamedPolicy):
                           "default the agent's own.")
     drift: float | None = Field(None, description="Annual drift for the control variate; default estimated "
                                                   "from the training paths.")
+    anchor: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
+        "delta", description="The hedge the agent measures its targets from: the Black-Scholes delta (the "
+                             "model's under Merton marks), or a hedge at the mark model's Greeks.")
 
 
 class FittedQAgentSpec(_LearnedAgent):
@@ -730,6 +737,11 @@ class Config(_Spec):
                 self._check_model_hedge(baseline.kind, i, "kind")
             if getattr(baseline, "center", "delta") != "delta":
                 self._check_model_hedge(baseline.center, i, "center")
+        for i, agent in enumerate(self.agents):
+            if getattr(agent, "anchor", "delta") != "delta":
+                self._check_model_hedge(agent.anchor, i, "anchor", "agents")
+                if agent.blind and self.market.model == "heston":
+                    raise _rule(f"{agent.anchor} reads the variance: not with blind = true", "agents", i, "anchor")
         if self.pricing.volatility is None:
             volatility = self.market.pricing_volatility(self.horizon_days / self.pricing.days_per_year)
             if volatility is not None and not volatility > 0:
@@ -796,16 +808,13 @@ class Config(_Spec):
             raise _rule(f"unknown policy {self.export.policy!r}; policies: {known}", "export", "policy")
         return self
 
-    def _check_model_hedge(self, hedge: str, i: int, key: str) -> None:
+    def _check_model_hedge(self, hedge: str, i: int, key: str, section: str = "baselines") -> None:
         """A hedge at the mark model's Greeks needs those marks, and their state where the model has one."""
         if self.pricing.marks != "model":
-            raise _rule(f"{hedge} needs pricing.marks = 'model' (a heston or merton market)", "baselines", i, key)
-        if hedge == "minimum_variance_delta" and self.market.model != "heston":
-            raise _rule(f"minimum_variance_delta is for a heston market, not {self.market.model}",
-                        "baselines", i, key)
+            raise _rule(f"{hedge} needs pricing.marks = 'model' (a heston or merton market)", section, i, key)
         if self.market.model == "heston" and not self.market.variance_observed:
             raise _rule(f"{hedge} needs market.variance_observed = true (its Greeks depend on the "
-                        "variance)", "baselines", i, key)
+                        "variance)", section, i, key)
 
     def _resolve_historical(self) -> None:
         """Rules and defaults of a historical market that involve other sections."""

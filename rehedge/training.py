@@ -37,7 +37,8 @@ def no_progress(label: str, total: int) -> Callable[[int], None]:
 
 def _exploration(spec) -> Exploration:
     e = spec.exploration
-    return Exploration(no_trade=e.no_trade, delta=e.delta, spread=e.spread, actions_per_state=e.actions_per_state)
+    return Exploration(no_trade=e.no_trade, delta=e.delta, spread=e.spread, actions_per_state=e.actions_per_state,
+                       center=spec.anchor)
 
 
 @dataclass

@@ -2,7 +2,10 @@
 
 Outside facts (from memory): under Heston the variance-minimising hedge over an instant is
 dV/dS + rho xi / S dV/dv (the regression of dV on dS, the variance moving with the spot through
-rho); it hedges better than the model delta dV/dS when spot and variance move together.
+rho); it hedges better than the model delta dV/dS when spot and variance move together. Under
+Merton's jump diffusion it is (sigma^2 dV/dS + lambda/S E[(e^z - 1)(V(S e^z) - V(S))]) /
+(sigma^2 + lambda E[(e^z - 1)^2]) (Cont and Tankov 2004, quadratic hedging in jump models;
+docs/references.md, "Model marks").
 """
 
 from __future__ import annotations
@@ -15,8 +18,8 @@ import pytest
 from agents.baselines import MinimumVarianceDelta, ModelDelta
 from hedge_env.book import Book, MarkParameters, OptionLeg
 from hedge_env.frictions import Frictions
-from hedge_env.market import GivenPaths, HestonMarket
-from hedge_env.model_pricing import HestonPricer
+from hedge_env.market import GivenPaths, HestonMarket, MertonMarket
+from hedge_env.model_pricing import HestonPricer, MertonPricer
 from hedge_env.problem import HedgingProblem, Schedule
 from hedge_env.rollout import rollout
 
@@ -48,6 +51,32 @@ def test_minimum_variance_delta_is_the_regression_slope_of_the_option_on_the_spo
     formula = float(delta + RHO * XI / 100.0 * vega)
     assert abs(slope - formula) <= 4 * error
     assert abs(slope - float(delta)) > 100 * error  # the model delta is not the variance-minimising hedge
+
+
+def test_merton_minimum_variance_delta_is_the_regression_slope_of_the_option_on_the_spot_jumps_included():
+    # From one state, 2,000,000 one-hour Merton moves with frequent large jumps (5 a year, log size
+    # N(-0.1, 0.1^2)): about 1,100 jumps. The slope's standard error is heteroskedasticity-robust
+    # (White's): the jumps make the residuals heavy-tailed, and the textbook formula would be 40
+    # times too small.
+    lam, mean, std, sigma, dt, tau = 5.0, -0.1, 0.1, 0.2, 1 / (365 * 24), 30 / 365
+    pricer = MertonPricer(sigma, lam, mean, std)
+    paths = MertonMarket(spot=100.0, drift=0.0, volatility=sigma, jump_intensity=lam, jump_mean=mean,
+                         jump_std=std).generate(2_000_000, 1, dt, seed=1)
+    d_spot = paths.spot[:, 1] - 100.0
+    d_value = (pricer.value_delta_vega(paths.spot[:, 1], 100.0, tau - dt, None, True)[0]
+               - pricer.value_delta_vega(100.0, 100.0, tau, None, True, exact=True)[0])
+    slope = np.cov(d_value, d_spot)[0, 1] / np.var(d_spot, ddof=1)
+    x = d_spot - d_spot.mean()
+    residual = d_value - d_value.mean() - slope * x
+    error = math.sqrt(((x * residual) ** 2).sum()) / (x * x).sum()
+    book = Book((OptionLeg("call", 100.0, 30, 1.0),))
+    hedging = HedgingProblem(book, MarkParameters(volatility=0.25), Frictions(cost_rate=0.0),
+                             schedule=Schedule(30, 1.0), mark_model=pricer)
+    obs = np.array([[1.0, tau, 0.0]])
+    formula = -float(MinimumVarianceDelta(hedging).act(obs)[0])  # the hedge of a long call: minus its ratio
+    model_delta = -float(ModelDelta(hedging).act(obs)[0])
+    assert abs(slope - formula) <= 4 * error
+    assert abs(slope - model_delta) > 20 * error  # jumps pull the variance-minimising hedge far from dV/dS
 
 
 def test_minimum_variance_delta_hedges_with_lower_pnl_variance_than_the_model_delta():
