@@ -362,10 +362,10 @@ def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehe
     console.print(f"report: {path} ({path.stat().st_size / 1e6:.2f} MB)", highlight=False)
 
 
-def _export(cfg, problem, policies, name: str, folder: Path) -> Path:
+def _export(cfg, problem, policies, name: str, folder: Path, market) -> Path:
     from rehedge.tables.export import export_policy
 
-    folder = export_policy(cfg, problem, policies, name, folder)
+    folder = export_policy(cfg, problem, policies, name, folder, market)
     size = sum(f.stat().st_size for f in folder.iterdir())
     errors.print(f"hedge table of {name}: {folder} ({size / 1e6:.2f} MB)", markup=False, highlight=False)
     return folder
@@ -385,7 +385,7 @@ def export(
     name = policy or run.config.export.policy
     if name is None:
         fail(f"no policy chosen: give --policy NAME or set export.policy; policies: {', '.join(policies)}")
-    folder = _export(run.config, run.problem, policies, name, out or run_dir / "tables" / name)
+    folder = _export(run.config, run.problem, policies, name, out or run_dir / "tables" / name, run.market)
     console.print(f"hedge table: {folder}", highlight=False)
 
 
@@ -395,12 +395,26 @@ def advise(
     spot: float = typer.Option(..., "--spot", help="Spot price of the underlying, currency per share."),
     days_left: float = typer.Option(..., "--days-left", help="Days left to the hedging horizon."),
     holding: float = typer.Option(..., "--holding", help="Current holding of the underlying, shares (- short)."),
+    variance: float = typer.Option(None, "--variance", help="Current variance, annual (0.04 = 20% volatility): "
+                                   "for a table with a variance axis."),
+    implied_vol: float = typer.Option(None, "--implied-vol", help="Current implied volatility, annual decimal "
+                                      "(0.25 = 25%): for a table with an implied_vol axis."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of text."),
 ) -> None:
     """One decision from a hedge table: target holding, trade, no-trade band, clamping, cautions."""
     from rehedge.tables.reader import HedgeTable, advice
 
-    record = advice(HedgeTable.load(table), spot, days_left, holding)
+    loaded = HedgeTable.load(table)
+    given = {"variance": variance, "implied_vol": implied_vol}
+    option = {"variance": "--variance", "implied_vol": "--implied-vol"}
+    for axis, value in given.items():
+        if value is not None and loaded.state != axis:
+            fail(f"{option[axis]}: this table has no {axis} axis"
+                 + ("" if loaded.state is None else f" (it reads the {loaded.state}: give {option[loaded.state]})"))
+    if loaded.state is not None and given[loaded.state] is None:
+        fail(f"{option[loaded.state]} is required: this table's targets depend on the {loaded.state}")
+    state = None if loaded.state is None else given[loaded.state]
+    record = advice(loaded, spot, days_left, holding, state)
     if as_json:
         sys.stdout.write(json.dumps({**record, "caution": CAUTION}, indent=2) + "\n")
         return
@@ -409,7 +423,8 @@ def advise(
     lines = [
         f"hedge table {record['table']} (policy {record['policy']}, config {record['config']}, "
         f"created {record['created']})",
-        f"at spot {spot:g} (moneyness {record['moneyness']:.4f}), {days_left:g} days left, holding {holding:,.6g} shares:",
+        f"at spot {spot:g} (moneyness {record['moneyness']:.4f}), {days_left:g} days left"
+        + ("" if state is None else f", {loaded.state} {state:g}") + f", holding {holding:,.6g} shares:",
         f"  target holding  {record['target_shares']:,.6g} shares",
         f"  trade           {action}",
     ]

@@ -101,7 +101,8 @@ def _run_config(config, config_text, runs_dir, heldout_paths, start, report, ext
         advance(1)
         if config.export.policy is not None:
             name = config.export.policy
-            export_policy(config, training.problem, training.policies, name, staging / "tables" / name)
+            export_policy(config, training.problem, training.policies, name, staging / "tables" / name,
+                          training.market)
             advance(1)
         if report:
             build_report(staging, staging=True)

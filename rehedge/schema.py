@@ -668,6 +668,9 @@ class ExportSpec(_Spec):
     moneyness_width: float = Field(
         4.0, gt=0, description="Half-width of the table's moneyness domain, in standard deviations of log spot "
                                "over the horizon (pricing volatility).")
+    state_points: int = Field(13, ge=2, description="Hedge table nodes in the observed variance or implied "
+                                                    "volatility, for a policy that reads it (equally spaced in "
+                                                    "volatility).")
     currency: str | None = Field(None, description="Currency label written into the hedge table's sidecar.")
 
 

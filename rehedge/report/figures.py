@@ -228,9 +228,9 @@ def _holding_node(run, name: str) -> float | None:
     """Spacing of the holding nodes (shares) of agent ``name``'s hedge table on the run's export grid;
     None for an agent that observes market factors (it has no table)."""
     agent = run.agents[name]
-    if getattr(agent, "factor_names", ()):
-        return None
-    holds = table_nodes(agent, run.problem, grid_of(run.config.export), run.config.pricing.volatility)[2]
+    if getattr(agent, "factor_names", ()) or run.problem.mark_volatility_observed:
+        return None  # its table would have a state axis: no one holding grid to compare with
+    holds = table_nodes(agent, run.problem, grid_of(run.config.export), run.config.pricing.volatility).holding_shares
     return float(holds[1] - holds[0])
 
 

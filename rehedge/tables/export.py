@@ -16,19 +16,21 @@ from pathlib import Path
 import numpy as np
 
 from agents.band import NO_TRADE_TOLERANCE, no_trade_band
+from hedge_env.market import MARK_VOLATILITY_FACTOR
 from hedge_env.step import observation_rows
 from rehedge.tables.reader import (
-    BAND_COLUMNS,
     BAND_FILE,
     FORMAT,
     FORMAT_VERSION,
     INTERPOLATION_RULE,
     SIDECAR,
-    TARGET_COLUMNS,
+    STATE_AXES,
     TARGETS_FILE,
     TableError,
     _leg_dict,
     _sha256,
+    band_columns,
+    target_columns,
 )
 
 # Significant digits in the CSVs: grid nodes are rounded to them, so they read back exactly.
@@ -57,6 +59,13 @@ class TableGrid:
         policy names from the ends of that range, padded by ``holding_pad`` of notional.
     holding_pad : float
         Padding of the automatic holding domain on each side, fraction of notional shares.
+    state_points : int
+        Nodes of the state axis (a policy that reads the variance or an implied
+        volatility), equally spaced in volatility (a variance axis's nodes are
+        the squares of equally spaced volatilities).
+    state_range : (float, float) or None
+        The state axis's domain, in its units; :func:`export_table` takes it from
+        its ``state_range`` argument when None.
     """
 
     moneyness_points: int = 101
@@ -65,17 +74,50 @@ class TableGrid:
     moneyness_range: tuple[float, float] | None = None
     holding_range_shares: tuple[float, float] | None = None
     holding_pad: float = 0.05
+    state_points: int = 13
+    state_range: tuple[float, float] | None = None
 
     def __post_init__(self) -> None:
-        if self.moneyness_points < 2 or self.holding_points < 2:
+        if self.moneyness_points < 2 or self.holding_points < 2 or self.state_points < 2:
             raise TableError(f"a hedge table needs >= 2 nodes per axis, got moneyness_points="
-                             f"{self.moneyness_points}, holding_points={self.holding_points}")
+                             f"{self.moneyness_points}, holding_points={self.holding_points}, "
+                             f"state_points={self.state_points}")
         for name, pair in (("moneyness_range", self.moneyness_range),
-                           ("holding_range_shares", self.holding_range_shares)):
+                           ("holding_range_shares", self.holding_range_shares),
+                           ("state_range", self.state_range)):
             if pair is not None and not pair[0] < pair[1]:
                 raise TableError(f"{name} must be (low, high) with low < high, got {pair}")
         if self.moneyness_range is not None and self.moneyness_range[0] <= 0:
             raise TableError(f"moneyness_range must be above 0, got {self.moneyness_range}")
+        if self.state_range is not None and self.state_range[0] < 0:
+            raise TableError(f"state_range must be >= 0, got {self.state_range}")
+
+
+# The market factor each state axis reads (observation column 3).
+STATE_FACTORS = {"variance": "variance", "implied_vol": MARK_VOLATILITY_FACTOR}
+
+
+def table_state(policy, problem) -> str | None:
+    """The state axis ``policy``'s table needs on ``problem``: ``implied_vol`` when the marks are at
+    an observed implied volatility (every policy prices at it), the axis of the one market factor the
+    policy reads (``variance``), or None. A policy that reads anything else is refused."""
+    if problem.mark_volatility_observed:
+        return "implied_vol"
+    names = tuple(getattr(policy, "factor_names", ()))
+    if not names:
+        return None
+    axis = next((a for a, factor in STATE_FACTORS.items() if (factor,) == names), None)
+    if axis is None:
+        raise TableError(f"policy {getattr(policy, 'name', '?')!r} observes market factors {names}: a hedge "
+                         f"table has time, moneyness, holding and at most one of {', '.join(STATE_AXES)}")
+    return axis
+
+
+def state_nodes(axis: str, low: float, high: float, points: int) -> np.ndarray:
+    """Nodes of a state axis on [low, high]: equally spaced in volatility."""
+    if axis == "variance":
+        return _round_nodes(np.linspace(math.sqrt(low), math.sqrt(high), points) ** 2)
+    return _round_nodes(np.linspace(low, high, points))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -120,40 +162,49 @@ def _days_left_nodes(problem) -> np.ndarray:
                                   for k in range(steps - 1, -1, -1)]))
 
 
-def _targets_at(policy, problem, days_nodes, money, holdings) -> np.ndarray:
-    """The policy's targets (shares) at ``holdings`` (shares) of shape (days, moneyness, ...): a holding
-    per point, or per point and holding node. One call of the policy for every point."""
-    shape = np.shape(holdings)
-    inner = (1,) * (len(shape) - 2)
+def _points(problem, days_nodes, money, states) -> tuple[np.ndarray, ...]:
+    """Years to the horizon, spot and state (or None) on the (days, moneyness[, state]) grid of a table."""
     years = np.array([problem.years_to_horizon(problem.schedule.steps - 1 - index)
                       for index in range(days_nodes.size)])
-    spot = np.broadcast_to((money * problem.reference_spot).reshape(1, -1, *inner), shape)
-    obs = observation_rows(problem, spot.ravel(), np.broadcast_to(years.reshape(-1, 1, *inner), shape).ravel(),
-                           np.ravel(holdings))
+    if states is None:
+        return years[:, None], (money * problem.reference_spot)[None, :], None
+    return years[:, None, None], (money * problem.reference_spot)[None, :, None], states[None, None, :]
+
+
+def _targets_at(policy, problem, points, holdings) -> np.ndarray:
+    """The policy's targets (shares) at ``holdings`` (shares) of shape (days, moneyness[, state], ...): a
+    holding per point, or per point and holding node. One call of the policy for every point."""
+    years, spot, states = points
+    shape = np.shape(holdings)
+    extra = (1,) * (len(shape) - years.ndim)
+    columns = [np.broadcast_to(x.reshape(x.shape + extra), shape).ravel() for x in (spot, years)]
+    factors = () if states is None else (np.broadcast_to(states.reshape(states.shape + extra), shape).ravel(),)
+    obs = observation_rows(problem, columns[0], columns[1], np.ravel(holdings), factors)
     return np.asarray(policy.act(obs), dtype=float).reshape(shape) * problem.notional_shares
 
 
-def _holding_domain(policy, problem, grid: TableGrid, days_nodes, money) -> tuple[float, float]:
+def _holding_domain(policy, problem, grid: TableGrid, points) -> tuple[float, float]:
     notional = problem.notional_shares
     if grid.holding_range_shares is not None:
         low, high = grid.holding_range_shares
     else:
-        hedge = np.empty((days_nodes.size, money.size))
-        for index in range(days_nodes.size):
-            t_days = problem.schedule.horizon_days - days_nodes[index]
-            hedge[index] = -problem.book.value_and_delta(money * problem.reference_spot, t_days, problem.marks)[1]
+        years, spot, states = points
+        t_days = problem.schedule.horizon_days - years * problem.marks.days_per_year
+        shape = np.broadcast_shapes(years.shape, spot.shape, () if states is None else states.shape)
+        hedge = -problem.book.value_and_delta(np.broadcast_to(spot, shape), np.broadcast_to(t_days, shape),
+                                              problem.marks)[1]
         low, high = min(0.0, hedge.min()), max(0.0, hedge.max())
         for edge in (low, high):
-            targets = _targets_at(policy, problem, days_nodes, money, np.full(hedge.shape, edge))
+            targets = _targets_at(policy, problem, points, np.full(hedge.shape, edge))
             low, high = min(low, targets.min()), max(high, targets.max())
         low, high = low - grid.holding_pad * notional, high + grid.holding_pad * notional
     limit = problem.frictions.position_limit_shares
     return max(low, -limit), min(high, limit)
 
 
-def _band(policy, problem, days_nodes, money, holds, targets) -> np.ndarray:
-    """Lower and upper no-trade edges (shares) per (day, moneyness); NaN where none is found."""
-    return np.stack(no_trade_band(lambda held: _targets_at(policy, problem, days_nodes, money, held), holds,
+def _band(policy, problem, points, holds, targets) -> np.ndarray:
+    """Lower and upper no-trade edges (shares) per (day, moneyness[, state]); NaN where none is found."""
+    return np.stack(no_trade_band(lambda held: _targets_at(policy, problem, points, held), holds,
                                   targets, NO_TRADE_TOLERANCE * problem.notional_shares))
 
 
@@ -173,10 +224,29 @@ def _format_rows(columns: list[np.ndarray], digits: list[int]) -> bytes:
     return text.getvalue().encode("ascii")
 
 
-def table_nodes(policy, problem, grid: TableGrid = TableGrid(),
-                volatility: float | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The nodes of ``policy``'s hedge table: days left (ascending), moneyness, and holdings (shares).
-    ``volatility`` sets the moneyness domain as in :func:`export_table`."""
+@dataclass(frozen=True)
+class TableNodes:
+    """The nodes of a hedge table: days left (ascending), moneyness, the state axis (None without
+    one) and holdings (shares)."""
+
+    days_left: np.ndarray
+    moneyness: np.ndarray
+    state: str | None
+    state_nodes: np.ndarray | None
+    holding_shares: np.ndarray
+
+    @property
+    def axes(self) -> list[tuple[str, np.ndarray]]:
+        """(name, nodes) of every axis in row order, the holding last."""
+        state = [] if self.state is None else [(self.state, self.state_nodes)]
+        return [("days_left", self.days_left), ("moneyness", self.moneyness), *state,
+                ("holding_shares", self.holding_shares)]
+
+
+def table_nodes(policy, problem, grid: TableGrid = TableGrid(), volatility: float | None = None,
+                state_range: tuple[float, float] | None = None) -> TableNodes:
+    """The nodes of ``policy``'s hedge table. ``volatility`` sets the moneyness domain and
+    ``state_range`` the state axis's (when ``grid.state_range`` does not) as in :func:`export_table`."""
     days_nodes = _days_left_nodes(problem)
     if grid.moneyness_range is not None:
         m_low, m_high = grid.moneyness_range
@@ -184,10 +254,18 @@ def table_nodes(policy, problem, grid: TableGrid = TableGrid(),
         sd = (problem.marks.volatility if volatility is None else volatility) * math.sqrt(problem.horizon_years)
         m_low, m_high = math.exp(-grid.moneyness_width * sd), math.exp(grid.moneyness_width * sd)
     money = _round_nodes(np.linspace(m_low, m_high, grid.moneyness_points))
-    h_low, h_high = _holding_domain(policy, problem, grid, days_nodes, money)
+    state = table_state(policy, problem)
+    states = None
+    if state is not None:
+        given = grid.state_range or state_range
+        if given is None:
+            raise TableError(f"policy {getattr(policy, 'name', '?')!r} reads the {state}: its table needs the "
+                             f"{state} axis's range (state_range)")
+        states = state_nodes(state, *given, grid.state_points)
+    h_low, h_high = _holding_domain(policy, problem, grid, _points(problem, days_nodes, money, states))
     if not h_low < h_high:
         raise TableError(f"empty holding domain [{h_low:g}, {h_high:g}] shares")
-    return days_nodes, money, _round_nodes(np.linspace(h_low, h_high, grid.holding_points))
+    return TableNodes(days_nodes, money, state, states, _round_nodes(np.linspace(h_low, h_high, grid.holding_points)))
 
 
 def export_table(
@@ -201,6 +279,7 @@ def export_table(
     config_hash: str | None = None,
     currency: str | None = None,
     volatility: float | None = None,
+    state_range: tuple[float, float] | None = None,
 ) -> Path:
     """Write ``policy`` on ``problem`` as a hedge table folder; returns the folder.
 
@@ -219,31 +298,35 @@ def export_table(
         Written to the sidecar (the policy's kind, the config it came from, a currency label).
     volatility : float, optional
         Volatility of the moneyness domain, annual; default the mark volatility.
+    state_range : (float, float), optional
+        Domain of the state axis (:func:`table_state`: a policy that reads the
+        variance, or marks at an observed implied volatility), unless
+        ``grid.state_range`` gives it; required for such a table.
     """
-    if getattr(policy, "factor_names", ()):
-        raise TableError(f"policy {getattr(policy, 'name', '?')!r} observes market factors "
-                         f"{tuple(policy.factor_names)}: a hedge table has only time, moneyness and holding")
     folder = Path(folder)
     notional, marks = problem.notional_shares, problem.marks
-    days_nodes, money, holds = table_nodes(policy, problem, grid, volatility)
-    targets = _targets_at(policy, problem, days_nodes, money,
-                          np.broadcast_to(holds, (days_nodes.size, money.size, holds.size)))
+    nodes = table_nodes(policy, problem, grid, volatility, state_range)
+    days_nodes, money, holds = nodes.days_left, nodes.moneyness, nodes.holding_shares
+    points = _points(problem, days_nodes, money, nodes.state_nodes)
+    point_shape = tuple(n.size for _, n in nodes.axes[:-1])
+    targets = _targets_at(policy, problem, points, np.broadcast_to(holds, point_shape + holds.shape))
     # Rounding dust far below a share (e.g. 1e-70 deep out of the money) is written as 0.
     targets[np.abs(targets) < NO_TRADE_TOLERANCE * 1e-2 * notional] = 0.0
     if not np.isfinite(targets).all():
         raise TableError(f"policy {getattr(policy, 'name', '?')!r} named non-finite targets on the table grid")
-    lower, upper = _band(policy, problem, days_nodes, money, holds, targets)
+    lower, upper = _band(policy, problem, points, holds, targets)
 
-    n_d, n_m, n_h = targets.shape
-    target_body = _format_rows(
-        [np.repeat(days_nodes, n_m * n_h), np.tile(np.repeat(money, n_h), n_d), np.tile(holds, n_d * n_m),
-         targets.ravel()], [NODE_DIGITS] * 3 + [TARGET_DIGITS])
-    band_body = _format_rows(
-        [np.repeat(days_nodes, n_m), np.tile(money, n_d), lower.ravel(), upper.ravel(),
-         targets[..., 0].ravel(), targets[..., -1].ravel()], [NODE_DIGITS] * 2 + [TARGET_DIGITS] * 4)
+    grids = [g.ravel() for g in np.meshgrid(*(n for _, n in nodes.axes), indexing="ij")]
+    point_grids = [g.ravel() for g in np.meshgrid(*(n for _, n in nodes.axes[:-1]), indexing="ij")]
+    n_axes = len(nodes.axes)
+    target_body = _format_rows(grids + [targets.ravel()], [NODE_DIGITS] * n_axes + [TARGET_DIGITS])
+    band_body = _format_rows(point_grids + [lower.ravel(), upper.ravel(), targets[..., 0].ravel(),
+                                            targets[..., -1].ravel()],
+                             [NODE_DIGITS] * (n_axes - 1) + [TARGET_DIGITS] * 4)
+    target_names, band_names = target_columns(nodes.state), band_columns(nodes.state)
     files = {
-        "targets": (TARGETS_FILE, (",".join(TARGET_COLUMNS) + "\n").encode() + target_body, n_d * n_m * n_h),
-        "band": (BAND_FILE, (",".join(BAND_COLUMNS) + "\n").encode() + band_body, n_d * n_m),
+        "targets": (TARGETS_FILE, (",".join(target_names) + "\n").encode() + target_body, targets.size),
+        "band": (BAND_FILE, (",".join(band_names) + "\n").encode() + band_body, lower.size),
     }
     frictions = {f.name: getattr(problem.frictions, f.name) for f in dataclasses.fields(problem.frictions)}
     objective = {f.name: getattr(problem.objective, f.name) for f in dataclasses.fields(problem.objective)}
@@ -272,16 +355,21 @@ def export_table(
                      "settlement": schedule.settlement, "horizon_days": float(schedule.horizon_days)},
         "frictions": _json_safe(frictions),
         "objective": _json_safe(objective),
-        "grid": {"days_left": days_nodes.tolist(), "moneyness": money.tolist(), "holding_shares": holds.tolist()},
+        "state_axis": None if nodes.state is None else {
+            "name": nodes.state, "units": STATE_AXES[nodes.state],
+            "observation": "column 3 of a policy's observation row (after spot, time and holding)"},
+        "grid": {name: values.tolist() for name, values in nodes.axes},
         "domain": {
             "days_left": [float(days_nodes[0]), float(days_nodes[-1])],
             "moneyness": [float(money[0]), float(money[-1])],
             "spot": [float(money[0] * problem.reference_spot), float(money[-1] * problem.reference_spot)],
+            **({} if nodes.state is None else {
+                nodes.state: [float(nodes.state_nodes[0]), float(nodes.state_nodes[-1])]}),
             "holding_shares": [float(holds[0]), float(holds[-1])],
         },
         "interpolation": INTERPOLATION_RULE,
         "files": {key: {"name": name, "sha256": _sha256(data), "rows": rows,
-                        "columns": list(TARGET_COLUMNS if key == "targets" else BAND_COLUMNS)}
+                        "columns": list(target_names if key == "targets" else band_names)}
                   for key, (name, data, rows) in files.items()},
     }
     return _write_folder(folder, {name: data for name, data, _ in files.values()},
@@ -322,20 +410,41 @@ def _write_folder(folder: Path, csvs: dict[str, bytes], sidecar: bytes) -> Path:
 def grid_of(export) -> TableGrid:
     """The table grid of a config's ``[export]`` section (rehedge.config.ExportSpec)."""
     return TableGrid(moneyness_points=export.moneyness_points, holding_points=export.holding_points,
-                     moneyness_width=export.moneyness_width)
+                     moneyness_width=export.moneyness_width, state_points=export.state_points)
 
 
-def export_policy(config, problem, policies: dict, name: str, folder: str | Path) -> Path:
+# Training paths drawn for the state axis's range, and the quantiles of the state that bound it.
+STATE_RANGE_PATHS = 2_000
+STATE_RANGE_QUANTILES = (0.005, 0.995)
+
+
+def state_range(source, problem, axis: str, seed: int = 0) -> tuple[float, float]:
+    """The domain of a table's ``axis`` from the training market ``source`` (a path generator):
+    the 0.5% and 99.5% quantiles of the state over ``STATE_RANGE_PATHS`` of its paths (a history's
+    windows: as many as it has) and every rehedge time, widened by half their distance on each side
+    (not below half the low quantile). Outside it a table clamps (and says so)."""
+    n_paths = STATE_RANGE_PATHS if source.max_paths is None else min(STATE_RANGE_PATHS, source.max_paths)
+    paths = source.generate(n_paths, problem.schedule.steps, problem.dt_years, seed=seed)
+    values = paths.factors[STATE_FACTORS[axis]][:, :-1]
+    low, high = np.quantile(values, STATE_RANGE_QUANTILES)
+    # Padded by half the range on each side (the low end at most halved): the state the table is used
+    # at may leave the training paths' range (a history's later years), and a clamped decision is a guess.
+    pad = 0.5 * (high - low) if high > low else 0.1 * high + 1e-6
+    return float(max(low - pad, 0.5 * low)), float(high + pad)
+
+
+def export_policy(config, problem, policies: dict, name: str, folder: str | Path, market=None) -> Path:
     """Export the policy called ``name`` among ``policies`` (of ``config``) with the grid of
-    ``config.export``; an unknown name is a TableError that lists the known ones."""
+    ``config.export``; an unknown name is a TableError that lists the known ones. ``market`` (the
+    training path generator) gives the state axis's range when the policy's table has one."""
     from rehedge.config import config_hash
 
     if name not in policies:
         known = ", ".join(repr(n) for n in policies) or "none"
         raise TableError(f"unknown policy {name!r}; policies: {known}")
     kinds = {spec.name: spec.kind for spec in [*config.baselines, *config.agents]}
+    axis = table_state(policies[name], problem)
+    bounds = None if axis is None or market is None else state_range(market, problem, axis, config.data.train_seed)
     return export_table(policies[name], problem, folder, grid=grid_of(config.export), kind=kinds.get(name, ""),
                         config_name=config.name, config_hash=config_hash(config),
-                        currency=config.export.currency, volatility=config.pricing.volatility)
-
-
+                        currency=config.export.currency, volatility=config.pricing.volatility, state_range=bounds)

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import io
+import itertools
 import json
 import math
 from dataclasses import dataclass
@@ -37,21 +38,39 @@ from rehedge.errors import UserError
 
 FORMAT = "rehedge-hedge-table"
 # 2: a target outside the band is moved onto its nearer edge (the reading rule's step 4).
-FORMAT_VERSION = 2
+# 3: an optional fourth axis, the observed volatility state (``state_axis`` in the sidecar).
+FORMAT_VERSION = 3
 SIDECAR = "table.json"
 TARGETS_FILE = "targets.csv"
 BAND_FILE = "band.csv"
 TARGET_COLUMNS = ("days_left", "moneyness", "holding_shares", "target_shares")
 BAND_COLUMNS = ("days_left", "moneyness", "band_lower_shares", "band_upper_shares",
                 "target_below_shares", "target_above_shares")
+# The fourth axis a table may have: the market state its policy reads besides spot, time and
+# holding, with its units. Its column comes after moneyness in both CSVs.
+STATE_AXES = {
+    "variance": "instantaneous variance of the underlying's return, annual (0.04 = 20% volatility)",
+    "implied_vol": "implied (mark) volatility, annual decimal (0.25 = 25%)",
+}
 
 INTERPOLATION_RULE = (
-    "target: trilinear interpolation of target_shares in (days_left, moneyness, holding_shares) "
-    "between the grid nodes around the point; band edges: bilinear in (days_left, moneyness); "
+    "target: multilinear interpolation of target_shares in (days_left, moneyness, [state,] holding_shares) "
+    "between the grid nodes around the point (trilinear; quadrilinear with a state axis); band edges: "
+    "multilinear in (days_left, moneyness[, state]); "
     "a holding inside [band_lower_shares, band_upper_shares] keeps its holding (trade 0), and from "
     "outside it a target beyond the band is moved onto its nearer edge; "
     "each coordinate outside the domain is clamped to it and the decision flagged as clamped"
 )
+
+
+def target_columns(state: str | None = None) -> tuple[str, ...]:
+    """Columns of targets.csv: a state axis's column comes after moneyness."""
+    return TARGET_COLUMNS if state is None else TARGET_COLUMNS[:2] + (state,) + TARGET_COLUMNS[2:]
+
+
+def band_columns(state: str | None = None) -> tuple[str, ...]:
+    """Columns of band.csv: a state axis's column comes after moneyness."""
+    return BAND_COLUMNS if state is None else BAND_COLUMNS[:2] + (state,) + BAND_COLUMNS[2:]
 
 class TableError(UserError):
     """A hedge table that cannot be written, read or trusted; ``str(error)`` is one line."""
@@ -62,9 +81,10 @@ class TableDecision:
     """Decisions of a hedge table at many points (arrays of one shape), shares.
 
     ``inside_band`` rows keep their holding. ``clamped`` is True where any of
-    ``days_left``, moneyness or holding was outside the table's domain and was
-    moved to its edge before the lookup (``clamped_days_left`` etc. say which).
-    Band edges are NaN where the policy has no no-trade region at that point.
+    ``days_left``, moneyness, the state (a table with a state axis) or holding
+    was outside the table's domain and was moved to its edge before the lookup
+    (``clamped_days_left`` etc. say which). Band edges are NaN where the policy
+    has no no-trade region at that point.
     """
 
     target_shares: np.ndarray
@@ -75,10 +95,11 @@ class TableDecision:
     clamped_days_left: np.ndarray
     clamped_moneyness: np.ndarray
     clamped_holding: np.ndarray
+    clamped_state: np.ndarray | bool = False
 
     @property
     def clamped(self) -> np.ndarray:
-        return self.clamped_days_left | self.clamped_moneyness | self.clamped_holding
+        return self.clamped_days_left | self.clamped_moneyness | self.clamped_state | self.clamped_holding
 
 
 # ---------------------------------------------------------------------------------------------
@@ -122,10 +143,14 @@ def _read_csv(folder: Path, entry: dict, columns: tuple[str, ...], what: str) ->
     return values
 
 
-def _check_axis_column(values: np.ndarray, nodes: np.ndarray, name: str, path: Path) -> None:
-    if not np.allclose(values, nodes, rtol=1e-9, atol=0.0):
-        raise TableError(f"{path}: column {name} does not follow the sidecar's grid in row order "
-                         "(days_left slowest, then moneyness, holding_shares fastest)")
+def _check_axis_columns(values: np.ndarray, axes: list[tuple[str, np.ndarray]], path: Path) -> None:
+    """The first columns of a CSV run over the grid of ``axes`` in row order (the first slowest)."""
+    nodes = np.meshgrid(*(n for _, n in axes), indexing="ij")
+    for column, (name, _), grid in zip(values.T, axes, nodes):
+        if not np.allclose(column, grid.ravel(), rtol=1e-9, atol=0.0):
+            order = ", then ".join(n for n, _ in axes)
+            raise TableError(f"{path}: column {name} does not follow the sidecar's grid in row order "
+                             f"({order}; the first slowest)")
 
 
 class HedgeTable:
@@ -133,27 +158,34 @@ class HedgeTable:
 
     Use :meth:`load`. Attributes: ``meta`` (the sidecar dict), ``path`` (the
     table folder), the grid nodes ``days_left``, ``moneyness``,
-    ``holding_shares`` (ascending), ``targets`` (days x moneyness x holding,
-    shares), ``band_lower`` and ``band_upper`` (days x moneyness, shares),
-    ``reference_spot``, ``notional_shares``, ``days_per_year``, ``name``.
+    ``holding_shares`` (ascending), ``state`` (the state axis's name, or None)
+    and ``state_nodes``, ``targets`` (days x moneyness [x state] x holding,
+    shares), ``band_lower`` and ``band_upper`` (days x moneyness [x state],
+    shares), ``reference_spot``, ``notional_shares``, ``days_per_year``, ``name``.
     """
 
     def __init__(self, meta: dict, path: Path, targets: np.ndarray, band: np.ndarray) -> None:
         self.meta, self.path = meta, path
         grid = meta["grid"]
+        self.state = _state_name(meta)
         self.days_left = np.asarray(grid["days_left"], dtype=float)
         self.moneyness = np.asarray(grid["moneyness"], dtype=float)
+        self.state_nodes = None if self.state is None else np.asarray(grid[self.state], dtype=float)
         self.holding_shares = np.asarray(grid["holding_shares"], dtype=float)
-        shape = (self.days_left.size, self.moneyness.size, self.holding_shares.size)
-        self.targets = targets.reshape(shape)
-        self.band_lower, self.band_upper = band[0].reshape(shape[:2]), band[1].reshape(shape[:2])
-        self.target_below, self.target_above = band[2].reshape(shape[:2]), band[3].reshape(shape[:2])
+        points = tuple(n.size for n in self.point_nodes)
+        self.targets = targets.reshape(points + (self.holding_shares.size,))
+        self.band_lower, self.band_upper, self.target_below, self.target_above = (b.reshape(points) for b in band)
         self.reference_spot = float(meta["book"]["reference_spot"])
         self.notional_shares = float(meta["book"]["notional_shares"])
         self.days_per_year = float(meta["marks"]["days_per_year"])
         self.horizon_days = float(meta["schedule"]["horizon_days"])
         self.policy_name = str(meta["policy"]["name"])
         self.name = f"{self.policy_name}.table"
+
+    @property
+    def point_nodes(self) -> list[np.ndarray]:
+        """Nodes of the axes a band is given on: days left, moneyness and the state axis if any."""
+        return [self.days_left, self.moneyness] + ([] if self.state is None else [self.state_nodes])
 
     @classmethod
     def load(cls, path: str | Path) -> HedgeTable:
@@ -176,77 +208,73 @@ class HedgeTable:
             raise TableError(f"{sidecar}: format_version {version!r} is not supported by this reader "
                              f"(reads version {FORMAT_VERSION}); export the table again with this version")
         try:
+            state = _state_name(meta)
+            names = ["days_left", "moneyness"] + ([] if state is None else [state]) + ["holding_shares"]
             files, grid = meta["files"], meta["grid"]
-            days, money, hold = (np.asarray(grid[k], dtype=float)
-                                 for k in ("days_left", "moneyness", "holding_shares"))
+            axes = [(name, np.asarray(grid[name], dtype=float)) for name in names]
             for key in ("reference_spot", "notional_shares"):
                 float(meta["book"][key])
             float(meta["marks"]["days_per_year"]), float(meta["schedule"]["horizon_days"])
             meta["policy"]["name"]
         except (KeyError, TypeError, ValueError) as exc:
             raise TableError(f"{sidecar}: sidecar field missing or malformed ({exc})") from None
-        for name, nodes in (("days_left", days), ("moneyness", money), ("holding_shares", hold)):
+        for name, nodes in axes:
             if nodes.ndim != 1 or nodes.size < 1 or not np.all(np.diff(nodes) > 0):
                 raise TableError(f"{sidecar}: grid.{name} must be a list of increasing numbers")
-        targets = _read_csv(folder, files.get("targets", {}), TARGET_COLUMNS, "targets")
-        band = _read_csv(folder, files.get("band", {}), BAND_COLUMNS, "band")
-        n_days, n_money, n_hold = days.size, money.size, hold.size
-        if targets.shape[0] != n_days * n_money * n_hold or band.shape[0] != n_days * n_money:
+        targets = _read_csv(folder, files.get("targets", {}), target_columns(state), "targets")
+        band = _read_csv(folder, files.get("band", {}), band_columns(state), "band")
+        points = math.prod(n.size for _, n in axes[:-1])
+        if targets.shape[0] != points * axes[-1][1].size or band.shape[0] != points:
             raise TableError(f"{sidecar}: the CSV row counts do not match the grid sizes")
         t_path, b_path = folder / files["targets"]["name"], folder / files["band"]["name"]
-        _check_axis_column(targets[:, 0], np.repeat(days, n_money * n_hold), "days_left", t_path)
-        _check_axis_column(targets[:, 1], np.tile(np.repeat(money, n_hold), n_days), "moneyness", t_path)
-        _check_axis_column(targets[:, 2], np.tile(hold, n_days * n_money), "holding_shares", t_path)
-        _check_axis_column(band[:, 0], np.repeat(days, n_money), "days_left", b_path)
-        _check_axis_column(band[:, 1], np.tile(money, n_days), "moneyness", b_path)
-        if not np.isfinite(targets[:, 3]).all():
+        _check_axis_columns(targets, axes, t_path)
+        _check_axis_columns(band, axes[:-1], b_path)
+        if not np.isfinite(targets[:, -1]).all():
             raise TableError(f"{t_path}: target_shares must be finite numbers")
-        return cls(meta, folder, targets[:, 3].copy(), band[:, 2:].T.copy())
+        return cls(meta, folder, targets[:, -1].copy(), band[:, len(axes) - 1:].T.copy())
 
     # --- decisions ------------------------------------------------------------------------------
 
     @property
     def domain(self) -> dict[str, tuple[float, float]]:
-        """Validity domain per coordinate (days left, moneyness, spot, holding in shares)."""
+        """Validity domain per coordinate (days left, moneyness, spot, the state, holding in shares)."""
         low, high = self.moneyness[0], self.moneyness[-1]
-        return {
+        domain = {
             "days_left": (float(self.days_left[0]), float(self.days_left[-1])),
             "moneyness": (float(low), float(high)),
             "spot": (float(low * self.reference_spot), float(high * self.reference_spot)),
             "holding_shares": (float(self.holding_shares[0]), float(self.holding_shares[-1])),
         }
+        if self.state is not None:
+            domain[self.state] = (float(self.state_nodes[0]), float(self.state_nodes[-1]))
+        return domain
 
-    def decide(self, spot, days_left, holding) -> TableDecision:
-        """Target holding at spot (currency), days left to the horizon and current holding (shares).
+    def decide(self, spot, days_left, holding, state=None) -> TableDecision:
+        """Target holding at spot (currency), days left to the horizon and current holding (shares),
+        and ``state`` (the value on the table's state axis) when the table has one.
 
-        Inputs broadcast against each other; the trilinear rule of
+        Inputs broadcast against each other; the multilinear rule of
         :data:`INTERPOLATION_RULE` applies. Raises TableError for a spot that
-        is not a positive number or a non-finite time or holding.
+        is not a positive number, a non-finite time, holding or state, or a
+        state given to a table without that axis or missing from one with it.
         """
-        spot, days, held = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (spot, days_left, holding)))
+        if (state is None) != (self.state is None):
+            raise TableError(f"this table has a {self.state} axis: give the {self.state}" if state is None else
+                             "this table has no state axis (its policy reads spot, time and holding alone)")
+        given = (spot, days_left, holding) + (() if state is None else (state,))
+        spot, days, held, *rest = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in given))
         if not (np.all(spot > 0) and np.all(np.isfinite(spot))):
             raise TableError("spot must be a positive finite number")
         if not (np.all(np.isfinite(days)) and np.all(np.isfinite(held))):
             raise TableError("days_left and holding must be finite numbers")
+        if rest and not np.all(np.isfinite(rest[0])):
+            raise TableError(f"{self.state} must be a finite number")
         shape = spot.shape
-        days, money, held = days.ravel(), spot.ravel() / self.reference_spot, held.ravel()
-        (i, wi, ci), (j, wj, cj), (k, wk, ck) = (
-            _locate(self.days_left, days), _locate(self.moneyness, money), _locate(self.holding_shares, held))
-        n_money, n_hold = self.moneyness.size, self.holding_shares.size
-        # Flat-index steps to the upper neighbour on each axis (0 on an axis of one node).
-        next_day = n_money * n_hold if self.days_left.size > 1 else 0
-        next_money = n_hold if n_money > 1 else 0
-        next_hold = 1 if n_hold > 1 else 0
-        flat = self.targets.ravel()
-        base = (i * n_money + j) * n_hold + k
-        target = np.zeros(days.size)
-        for day_step, day_weight in ((0, 1.0 - wi), (next_day, wi)):
-            for money_step, money_weight in ((0, 1.0 - wj), (next_money, wj)):
-                corner = base + day_step + money_step
-                target += day_weight * money_weight * ((1.0 - wk) * flat[corner] + wk * flat[corner + next_hold])
-        lower, upper = (
-            _bilinear_corners(edge.ravel(), i * n_money + j, wi, wj, next_day // n_hold, next_money // n_hold)
-            for edge in (self.band_lower, self.band_upper))
+        coordinates = [days.ravel(), spot.ravel() / self.reference_spot] + [r.ravel() for r in rest] + [held.ravel()]
+        located = [_locate(nodes, x) for nodes, x in zip(self.point_nodes + [self.holding_shares], coordinates)]
+        target = _interpolate(self.targets, located)
+        lower, upper = (_interpolate(edge, located[:-1]) for edge in (self.band_lower, self.band_upper))
+        held = coordinates[-1]
         inside = (held >= lower) & (held <= upper)  # NaN edges (no band) compare False
         # Interpolated separately, the targets can fall outside the interpolated band (both are
         # exact at the nodes only); a target is moved onto the nearer edge, so asking again from it
@@ -254,17 +282,21 @@ class HedgeTable:
         banded = np.isfinite(lower) & np.isfinite(upper)
         target = np.clip(target, np.where(banded, lower, -np.inf), np.where(banded, upper, np.inf))
         target = np.where(inside, held, target)
+        flags = [flag.reshape(shape) for _, _, flag in located]
         return TableDecision(
             target.reshape(shape), (target - held).reshape(shape), lower.reshape(shape), upper.reshape(shape),
-            inside.reshape(shape), ci.reshape(shape), cj.reshape(shape), ck.reshape(shape))
+            inside.reshape(shape), flags[0], flags[1], flags[-1], flags[2] if rest else False)
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         """Policy protocol: observation rows ``[spot / reference spot, years to horizon, holding /
-        notional]`` -> target per share of notional. The rows must come from a problem with this
-        table's book, reference spot and schedule (see :meth:`check_problem`)."""
+        notional(, state)]`` -> target per share of notional; a table with a state axis reads the
+        state from column 3 (the market's observed variance or implied volatility). The rows must
+        come from a problem with this table's book, reference spot and schedule (see
+        :meth:`check_problem`)."""
         obs = np.asarray(obs, dtype=float)
+        state = None if self.state is None else obs[:, 3]
         decision = self.decide(obs[:, 0] * self.reference_spot, obs[:, 1] * self.days_per_year,
-                               obs[:, 2] * self.notional_shares)
+                               obs[:, 2] * self.notional_shares, state)
         return decision.target_shares / self.notional_shares
 
     def check_problem(self, problem) -> None:
@@ -302,10 +334,18 @@ def _locate(nodes: np.ndarray, x: np.ndarray):
     return index, weight, clamped
 
 
-def _bilinear_corners(flat, base, wi, wj, step_i: int, step_j: int) -> np.ndarray:
-    """Bilinear interpolation of a flattened (days, moneyness) array from each point's lower corner."""
-    return ((1 - wi) * ((1 - wj) * flat[base] + wj * flat[base + step_j])
-            + wi * ((1 - wj) * flat[base + step_i] + wj * flat[base + step_i + step_j]))
+def _interpolate(values: np.ndarray, located) -> np.ndarray:
+    """Multilinear interpolation of ``values`` (one axis per entry of ``located``, each the points'
+    lower node index and upper weight from :func:`_locate`): the sum over the surrounding corners of
+    the node values times the product of the axis weights."""
+    total = np.zeros(located[0][0].size)
+    for corner in itertools.product((0, 1), repeat=len(located)):
+        index, weight = [], 1.0
+        for up, (lower, w, _), size in zip(corner, located, values.shape):
+            index.append(np.minimum(lower + up, size - 1))
+            weight = weight * (w if up else 1.0 - w)
+        total += weight * values[tuple(index)]
+    return total
 
 
 def tables_as_policies(paths, problem) -> tuple[dict[str, HedgeTable], dict[str, str]]:
@@ -326,14 +366,27 @@ def tables_as_policies(paths, problem) -> tuple[dict[str, HedgeTable], dict[str,
     return tables, {name: "table" for name in tables}
 
 
-def advice(table: HedgeTable, spot: float, days_left: float, holding: float) -> dict:
+def _state_name(meta: dict) -> str | None:
+    """The sidecar's state axis name (``state_axis.name``), or None for a table without one."""
+    axis = meta.get("state_axis")
+    if axis is None:
+        return None
+    name = axis.get("name") if isinstance(axis, dict) else None
+    if name not in STATE_AXES:
+        raise TableError(f"state_axis.name must be one of {', '.join(STATE_AXES)}, got {name!r}")
+    return name
+
+
+def advice(table: HedgeTable, spot: float, days_left: float, holding: float, state: float | None = None) -> dict:
     """One decision of ``table`` as a JSON-ready record: target, trade, band, clamping notes."""
-    decision = table.decide(spot, days_left, holding)
+    decision = table.decide(spot, days_left, holding, state)
     domain = table.domain
     notes = []
-    for axis, value, flag in (("days_left", days_left, decision.clamped_days_left),
-                              ("spot", spot, decision.clamped_moneyness),
-                              ("holding_shares", holding, decision.clamped_holding)):
+    checks = [("days_left", days_left, decision.clamped_days_left), ("spot", spot, decision.clamped_moneyness),
+              ("holding_shares", holding, decision.clamped_holding)]
+    if table.state is not None:
+        checks.insert(2, (table.state, state, decision.clamped_state))
+    for axis, value, flag in checks:
         if bool(flag):
             low, high = domain[axis]
             edge = low if value < low else high
@@ -349,6 +402,7 @@ def advice(table: HedgeTable, spot: float, days_left: float, holding: float) -> 
         "spot": float(spot),
         "moneyness": float(spot) / table.reference_spot,
         "days_left": float(days_left),
+        **({} if table.state is None else {table.state: float(state)}),
         "holding_shares": float(holding),
         "target_shares": float(decision.target_shares),
         "trade_shares": float(decision.trade_shares),

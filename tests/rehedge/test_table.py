@@ -79,7 +79,8 @@ def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
     problem, _, tables, _ = exported
     table = tables["grid_dp"]
     meta = table.meta
-    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 2
+    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 3
+    assert meta["state_axis"] is None and table.state is None  # the policy reads spot, time and holding alone
     n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
     assert (n_days, n_money, n_hold) == (10, 101, 41)
     assert meta["grid"]["days_left"] == [float(d) for d in range(1, 11)]  # days left at each rehedge
@@ -270,6 +271,8 @@ def test_advise_says_when_it_clamped(exported):
 
 @pytest.mark.parametrize("edit, args, message", [
     (None, ("--spot", "0", "--days-left", "4", "--holding", "0"), "error: spot must be a positive finite number"),
+    (None, ("--spot", "100", "--days-left", "4", "--holding", "0", "--variance", "0.04"),
+     "error: --variance: this table has no variance axis"),
     ("tamper", ("--spot", "100", "--days-left", "4", "--holding", "0"), "band.csv: SHA-256"),
     ("missing", ("--spot", "100", "--days-left", "4", "--holding", "0"), "no hedge table here"),
 ])
