@@ -5,7 +5,7 @@ dV/dS + rho xi / S dV/dv (the regression of dV on dS, the variance moving with t
 rho); it hedges better than the model delta dV/dS when spot and variance move together. Under
 Merton's jump diffusion it is (sigma^2 dV/dS + lambda/S E[(e^z - 1)(V(S e^z) - V(S))]) /
 (sigma^2 + lambda E[(e^z - 1)^2]) (Cont and Tankov 2004, quadratic hedging in jump models;
-docs/references.md, "Model marks").
+docs/references.md, "Minimum-variance hedges and the conditional move").
 """
 
 from __future__ import annotations

@@ -3,7 +3,8 @@
 Outside fact (from memory; the Heston model's variance process, Heston 1993): the expected
 integrated variance over a step of length dt from v is theta dt + (v - theta)(1 - exp(-kappa dt)) /
 kappa, so E[R^2 | v] of the step's return R rises with v at the slope (1 - exp(-kappa dt)) / kappa
-(up to O(dt^2) terms from the drift, far below the standard errors here).
+(up to O(dt^2) terms from the drift, far below the standard errors here). See
+docs/references.md, "Minimum-variance hedges and the conditional move".
 """
 
 from __future__ import annotations
