@@ -224,7 +224,7 @@ class BackwardQAgent(BaseEstimator):
         :func:`return_moment_sums` (summed in chunk order)."""
         self.move_ = hedge_move(self.problem)
         check_anchor(self.problem, self.anchor, tuple(self.factor_names))
-        check_terms(self.terms, tuple(self.factor_names))
+        check_terms(self._fitted_terms(), tuple(self.factor_names))
         self._setup()
         moments = sum(moment_sums, ReturnMoments())
         self.mean_squared_return_, self.mean_variance_, self.variance_slope_ = moments.second_moment_line()
@@ -242,7 +242,8 @@ class BackwardQAgent(BaseEstimator):
         if column is None:
             return False
         name = self.factor_names[column[0]]
-        in_terms = any(factor.partition("^")[0] == name for term in self.terms for factor in term.split("*"))
+        in_terms = any(factor.partition("^")[0] == name
+                       for term in self._fitted_terms() for factor in term.split("*"))
         return in_terms or (self.anchor != "delta" and name == self.problem.mark_factor)
 
     def second_moment(self, state: StateFeatures) -> np.ndarray | float:
@@ -261,7 +262,7 @@ class BackwardQAgent(BaseEstimator):
         problem = self.problem
         state = state_features(problem, chunk.obs[k], self.factor_names, self.anchor)
         targets = chunk.actions[k]
-        X = basis_columns(self.terms, state, targets)
+        X = self._design(state, targets)
         second_moment = self.second_moment(state)
         y = chunk.rewards[k] - known_part(problem, state, targets, second_moment)
         notional, spot = problem.notional_shares, state.spot
@@ -289,6 +290,14 @@ class BackwardQAgent(BaseEstimator):
         if not chunk.done(k):
             y = y + self.value(chunk.next_observations(k, next_moneyness), k + 1).reshape(y.shape)
         return X, y
+
+    def _fitted_terms(self) -> tuple[str, ...]:
+        """Every term the fitted part reads."""
+        return self.terms
+
+    def _design(self, state: StateFeatures, targets: np.ndarray):
+        """The regression's design for candidate ``targets`` (n, M): the basis, term-major."""
+        return basis_columns(self.terms, state, targets)
 
     # -- using the fitted Q ------------------------------------------------------------------
     def _known(self, state: StateFeatures, targets: np.ndarray) -> np.ndarray:

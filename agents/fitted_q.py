@@ -21,7 +21,8 @@ from sklearn.base import clone
 from sklearn.ensemble import HistGradientBoostingRegressor
 
 from agents.backward import DEFAULT_PARTIAL_MOVES, BackwardQAgent
-from agents.features import HATS, TREE_BASIS, basis, state_features
+from agents.features import HATS, TREE_BASIS, basis, basis_columns, combination, polynomial_basis, state_features
+from agents.linear import NormalEquations, within_state
 from hedge_env.problem import HedgingProblem
 
 # Fewer band edges than the linear agent: every candidate costs a tree-ensemble prediction.
@@ -74,7 +75,13 @@ def _cell_coefficients(table: np.ndarray) -> np.ndarray:
 
 
 class FittedQAgent(BackwardQAgent):
-    """Q_k(s, a) = known cost part + regressor_k(basis(s, a)).
+    """Q_k(s, a) = known cost part + theta_k . linear_basis(s, a) + regressor_k(basis(s, a)).
+
+    With ``linear_basis`` (the default) each decision time's fit is in two stages on the same
+    backward targets: ridge least squares on the linear agent's basis first (within states, as
+    agents.linear fits it), then the regressor on what that leaves (residual boosting). The linear
+    stage carries the smooth shape of Q in the gap; the trees the kinks and interactions it misses.
+    ``linear_basis=None`` fits the regressor alone.
 
     Parameters
     ----------
@@ -94,6 +101,11 @@ class FittedQAgent(BackwardQAgent):
         The hedge the gap and the candidate targets are measured from:
         ``delta`` (Black-Scholes at the mark volatility; the model's delta under
         Merton marks), ``model_delta`` or ``minimum_variance_delta``.
+    linear_basis : tuple of str, "polynomial" or None
+        Terms of the first, linear stage; "polynomial": the linear agent's default
+        basis (agents.features.polynomial_basis of the observed factors); None: none.
+    ridge : float
+        Ridge penalty of the linear stage, relative to each column's sum of squares.
     max_rows_per_step : int
         Regression rows kept per decision time: beyond it every r-th training
         state is kept (with all its replayed targets), so memory stays bounded
@@ -106,10 +118,21 @@ class FittedQAgent(BackwardQAgent):
     def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, max_rows_per_step: int = 2_000_000, anchor: str = "delta",
-                 name: str = "fitted_q"):
+                 linear_basis="polynomial", ridge: float = 1e-6, name: str = "fitted_q"):
         super().__init__(problem, basis, band_widths, partial_moves, factor_names, drift, anchor, name)
         self.regressor = regressor
         self.max_rows_per_step = max_rows_per_step
+        self.linear_basis = linear_basis
+        self.ridge = ridge
+
+    @property
+    def linear_terms(self) -> tuple[str, ...]:
+        """Terms of the linear stage (empty without one)."""
+        if self.linear_basis is None:
+            return ()
+        if isinstance(self.linear_basis, str):
+            return polynomial_basis(tuple(self.factor_names))
+        return tuple(self.linear_basis)
 
     def _setup(self) -> None:
         steps = self.problem.schedule.steps
@@ -121,7 +144,8 @@ class FittedQAgent(BackwardQAgent):
         tabulable = not self.problem.mark_volatility_observed and not state_anchor and all(
             factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
         self.tables_: list | None = [None] * steps if tabulable else None
-        self._rows: list[tuple[np.ndarray, np.ndarray]] = []
+        self.linear_coef_ = np.zeros((steps, len(self.linear_terms)))
+        self._rows: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
 
     def _begin_fit(self, moment_sums) -> None:
         moment_sums = list(moment_sums)
@@ -129,8 +153,16 @@ class FittedQAgent(BackwardQAgent):
         # Each chunk's return count is its states times the decision times.
         self._states = sum(moments.count for moments in moment_sums) // self.problem.schedule.steps
 
+    def _fitted_terms(self) -> tuple[str, ...]:
+        return self.terms + self.linear_terms
+
+    def _design(self, state, targets: np.ndarray):
+        """The regressor's columns and the linear stage's terms, each term-major (terms, n, M)."""
+        return basis_columns(self.terms, state, targets), basis_columns(self.linear_terms, state, targets)
+
     def _start_step(self, k: int) -> None:
         self._rows = []
+        self._normal = NormalEquations.empty(len(self.linear_terms))
         self._seen = 0
         self._moneyness_range = (np.inf, -np.inf)
 
@@ -140,26 +172,34 @@ class FittedQAgent(BackwardQAgent):
         self._moneyness_range = (min(low, moneyness.min()), max(high, moneyness.max()))
         return super()._regression_rows(chunk, k)
 
-    def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
+    def _add(self, k: int, design, y: np.ndarray) -> None:
         # Within-state targets: the M actions of a state are independent draws of the behaviour, so
         # E[y_j - mean_i y_i | s, a_j] = (M - 1) / M * (Q(s, a_j) - mean over actions of Q(s, .)).
         # Rescaled, the regression learns Q up to a function of the state, without the noise that
         # the actions share.
+        X, linear = design
         m = y.shape[1]
         if m < 2:
             raise ValueError("fitted Q needs exploration.actions_per_state >= 2")
+        if len(linear):
+            self._normal = self._normal + within_state(linear, y)
         centred = (y - y.mean(axis=1, keepdims=True)) * (m / (m - 1))
         # Keep every stride-th state: ceil(states / stride) states of m rows each stay within the cap.
         stride = -(-self._states // max(1, self.max_rows_per_step // m))
         if stride > 1:  # the same states at every decision time
             keep = (self._seen + np.arange(len(y))) % stride == 0
-            X, centred = X[:, keep], centred[keep]
+            X, centred, linear = X[:, keep], centred[keep], linear[:, keep]
         self._seen += len(y)
-        self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1)))
+        # The linear stage's terms centred within states: the residual's state part does not matter.
+        linear = linear - linear.mean(axis=2, keepdims=True)
+        self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1), linear.reshape(len(linear), -1).T))
 
     def _finish_step(self, k: int) -> None:
-        X = np.concatenate([x for x, _ in self._rows])
-        y = np.concatenate([t for _, t in self._rows])
+        X = np.concatenate([x for x, _, _ in self._rows])
+        y = np.concatenate([t for _, t, _ in self._rows])
+        if len(self.linear_terms):
+            self.linear_coef_[k] = self._normal.solve(self.ridge)
+            y = y - np.concatenate([lin for _, _, lin in self._rows]) @ self.linear_coef_[k]
         self._rows = []
         base = default_regressor() if self.regressor is None else self.regressor
         self.regressors_[k] = clone(base).fit(X, y)
@@ -184,10 +224,14 @@ class FittedQAgent(BackwardQAgent):
 
     def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
         if self.tables_ is None:
-            return self._regress(k, state, targets)
-        moneyness, table = self.tables_[k]
-        gaps = (targets - state.hedge[:, None]) / self.move_
-        return _bilinear(table, moneyness, TABLE_GAPS, state.values["moneyness"], gaps, self._cells(k))
+            trees = self._regress(k, state, targets)
+        else:
+            moneyness, table = self.tables_[k]
+            gaps = (targets - state.hedge[:, None]) / self.move_
+            trees = _bilinear(table, moneyness, TABLE_GAPS, state.values["moneyness"], gaps, self._cells(k))
+        if len(self.linear_terms):
+            trees += combination(self.linear_terms, self.linear_coef_[k], state, targets)
+        return trees
 
     def _cells(self, k: int) -> np.ndarray:
         """Cell coefficients of ``tables_[k]``, kept once built (a cache, not pickled)."""

@@ -105,7 +105,7 @@ class LinearBasisAgent(BackwardQAgent):
         self.statistics_[k] = NormalEquations.empty(len(self.terms))
 
     def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
-        self.statistics_[k] = self.statistics_[k] + _within_state(X, y)
+        self.statistics_[k] = self.statistics_[k] + within_state(X, y)
 
     def _finish_step(self, k: int) -> None:
         later = k + 1 < self.problem.schedule.steps
@@ -118,7 +118,7 @@ class LinearBasisAgent(BackwardQAgent):
     def step_statistics(self, transitions: Transitions, k: int) -> NormalEquations:
         """Normal equations of decision time k from one block of transitions, using the fitted
         coefficients of later times: what one worker contributes before the sum and the solve."""
-        return _within_state(*self._regression_rows(transitions, k))
+        return within_state(*self._regression_rows(transitions, k))
 
     def fit_map(self, map_chunks, progress=None):
         """The fit of :meth:`fit` with each chunk's work done where the chunk is held.
@@ -148,7 +148,7 @@ def chunk_statistics(chunk: Transitions, agent: LinearBasisAgent, k: int) -> Nor
     return agent.step_statistics(chunk, k)
 
 
-def _within_state(X: np.ndarray, y: np.ndarray) -> NormalEquations:
+def within_state(X: np.ndarray, y: np.ndarray) -> NormalEquations:
     """Normal equations of the fixed-effects regression: design (terms, n, M) and targets (n, M)
     centred on each state's mean, so terms of the state alone carry nothing."""
     X = X - X.mean(axis=2, keepdims=True)

@@ -20,6 +20,7 @@ from agents.baselines import (
 )
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
+from agents.grid_heston import HestonGridDPAgent
 from agents.linear import LinearBasisAgent
 
 BASELINES = {
@@ -36,6 +37,7 @@ AGENTS = {
     "linear": LinearBasisAgent,
     "fitted_q": FittedQAgent,
     "grid_dp": GridDPAgent,
+    "heston_grid_dp": HestonGridDPAgent,
 }
 
 # Agent kinds that fit on training transitions (the others solve the model they are given).

@@ -30,6 +30,7 @@ from pydantic import (
 )
 from pydantic_core import PydanticCustomError
 
+from agents.grid_heston import DEFAULT_GRID as HESTON_GRID_DEFAULTS
 from agents.registry import REGRESSORS
 from hedge_env.model_pricing import HestonPricer, MertonPricer
 
@@ -639,8 +640,30 @@ class GridDPAgentSpec(_NamedPolicy):
         return {"drift": market.drift, "volatility": market.volatility}
 
 
+class HestonGridDPAgentSpec(_NamedPolicy):
+    """Model-based dynamic programming on a (time, log spot, variance, holding) grid: the reference
+    optimum under Heston."""
+
+    kind: Literal["heston_grid_dp"] = Field(description="Agent type.")
+    name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
+    spot_points: int = Field(HESTON_GRID_DEFAULTS["spot_points"], ge=11, description="Log-spot grid points.")
+    variance_points: int = Field(HESTON_GRID_DEFAULTS["variance_points"], ge=5,
+                                 description="Variance grid points (equally spaced in volatility from 0).")
+    holding_points: int = Field(HESTON_GRID_DEFAULTS["holding_points"], ge=11,
+                                description="Holding grid points (also the candidate targets).")
+    variance_nodes: int = Field(HESTON_GRID_DEFAULTS["variance_nodes"], ge=3,
+                                description="Quadrature nodes of the next variance.")
+    spot_nodes: int = Field(HESTON_GRID_DEFAULTS["spot_nodes"], ge=3,
+                            description="Gauss-Hermite nodes of the next spot given the variance.")
+
+    def model_inputs(self, market) -> dict:
+        """Constructor arguments that the agent takes from the Heston market it solves."""
+        return {key: getattr(market, key) for key in ("drift", "initial_variance", "mean_reversion",
+                                                      "long_run_variance", "vol_of_vol", "correlation")}
+
+
 AgentSpec = Annotated[
-    Union[FittedQAgentSpec, LinearAgentSpec, GridDPAgentSpec],
+    Union[FittedQAgentSpec, LinearAgentSpec, GridDPAgentSpec, HestonGridDPAgentSpec],
     Field(discriminator="kind"),
 ]
 
@@ -790,7 +813,18 @@ class Config(_Spec):
         for i, agent in enumerate(self.agents):
             if agent.kind == "grid_dp" and self.market.model != "gbm":
                 raise _rule(f"grid_dp solves a one-factor GBM market only, got market.model = "
-                            f"{self.market.model!r}", "agents", i, "kind")
+                            f"{self.market.model!r}" + (" (heston_grid_dp solves Heston)" if
+                                                         self.market.model == "heston" else ""),
+                            "agents", i, "kind")
+            if agent.kind == "heston_grid_dp":
+                if self.market.model != "heston":
+                    raise _rule(f"heston_grid_dp solves a Heston market only, got market.model = "
+                                f"{self.market.model!r}", "agents", i, "kind")
+                if self.pricing.marks != "model" or not self.market.variance_observed:
+                    raise _rule("heston_grid_dp needs pricing.marks = 'model' and market.variance_observed = "
+                                "true (its state is the spot, the variance and the holding)", "agents", i, "kind")
+                if self.frictions.permanent_impact:
+                    raise _rule("heston_grid_dp does not model permanent impact", "agents", i, "kind")
 
         seen: set[str] = set()
         for section, policies in (("baselines", self.baselines), ("agents", self.agents)):

@@ -422,3 +422,25 @@ def test_hedges_at_the_model_greeks_need_model_marks_and_the_observed_variance()
     data["pricing"]["marks"] = "black_scholes"
     with pytest.raises(ConfigError, match=r"needs pricing\.marks = 'model'"):
         parse_config(data)
+
+
+def test_the_heston_grid_optimum_needs_a_heston_market_with_model_marks_and_the_variance_observed():
+    data = _heston_data()
+    data["agents"] = [{"kind": "heston_grid_dp", "variance_points": 31}]
+    assert parse_config(data).agents[0].variance_points == 31
+    data["agents"] = [{"kind": "grid_dp"}]
+    with pytest.raises(ConfigError) as wrong_kind:
+        parse_config(data)
+    assert str(wrong_kind.value) == ("agents[0].kind: grid_dp solves a one-factor GBM market only, got "
+                                     "market.model = 'heston' (heston_grid_dp solves Heston)")
+    data["agents"] = [{"kind": "heston_grid_dp"}]
+    data["market"]["variance_observed"] = False
+    data["baselines"] = [{"kind": "delta"}]
+    data["report"]["reference_policy"] = "delta"
+    with pytest.raises(ConfigError, match=r"^agents\[0\]\.kind: heston_grid_dp needs pricing\.marks = 'model' and "
+                                          r"market\.variance_observed = true"):
+        parse_config(data)
+    demo = tomllib.loads((Path(__file__).resolve().parents[2] / "configs" / "demo.toml").read_text())
+    demo["agents"] = [{"kind": "heston_grid_dp"}]
+    with pytest.raises(ConfigError, match=r"^agents\[0\]\.kind: heston_grid_dp solves a Heston market only"):
+        parse_config(demo)
