@@ -70,6 +70,10 @@ def polynomial_basis(factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
 
 # Raw columns for a tree ensemble, which finds its own interactions.
 TREE_BASIS = ("moneyness", "hedge", "gamma", "target", "gap", "abs_gap")
+# The same without the hedge and the target, which move with the market state when the agent is
+# anchored on a hedge at a stochastic-volatility model's Greeks: what is left is a function of
+# moneyness and the gap at a decision time, so the trees still tabulate (the linear stage carries the state).
+TREE_BASIS_STATE_ANCHOR = ("moneyness", "gamma", "gap", "abs_gap")
 
 
 @dataclass(frozen=True)

@@ -21,7 +21,16 @@ from sklearn.base import clone
 from sklearn.ensemble import HistGradientBoostingRegressor
 
 from agents.backward import DEFAULT_PARTIAL_MOVES, BackwardQAgent
-from agents.features import HATS, TREE_BASIS, basis, basis_columns, combination, polynomial_basis, state_features
+from agents.features import (
+    HATS,
+    TREE_BASIS,
+    TREE_BASIS_STATE_ANCHOR,
+    basis,
+    basis_columns,
+    combination,
+    polynomial_basis,
+    state_features,
+)
 from agents.linear import NormalEquations, within_state
 from hedge_env.problem import HedgingProblem
 
@@ -89,7 +98,8 @@ class FittedQAgent(BackwardQAgent):
     regressor : scikit-learn regressor, optional
         Cloned for every decision time; default a histogram gradient-boosted tree ensemble.
     basis : tuple of str
-        Columns given to the regressor (see agents.features); default ``TREE_BASIS``.
+        Columns given to the regressor (see agents.features); default ``TREE_BASIS``, or
+        ``TREE_BASIS_STATE_ANCHOR`` when the anchor reads the market state (Heston).
     band_widths, partial_moves : tuple of float
         Candidate targets besides no trade and the hedge (per share of notional).
     factor_names : tuple of str
@@ -101,9 +111,9 @@ class FittedQAgent(BackwardQAgent):
         The hedge the gap and the candidate targets are measured from:
         ``delta`` (Black-Scholes at the mark volatility; the model's delta under
         Merton marks), ``model_delta`` or ``minimum_variance_delta``.
-    linear_basis : tuple of str, "polynomial" or None
+    linear_basis : tuple of str, "polynomial", "none" or None
         Terms of the first, linear stage; "polynomial": the linear agent's default
-        basis (agents.features.polynomial_basis of the observed factors); None: none.
+        basis (agents.features.polynomial_basis of the observed factors); "none" or None: none.
     ridge : float
         Ridge penalty of the linear stage, relative to each column's sum of squares.
     max_rows_per_step : int
@@ -115,7 +125,7 @@ class FittedQAgent(BackwardQAgent):
 
     label = "fitted-Q agent"  # what reports call the kind
 
-    def __init__(self, problem: HedgingProblem, regressor=None, basis=TREE_BASIS,
+    def __init__(self, problem: HedgingProblem, regressor=None, basis=None,
                  band_widths=TREE_BAND_WIDTHS, partial_moves=DEFAULT_PARTIAL_MOVES, factor_names=(),
                  drift: float | None = None, max_rows_per_step: int = 2_000_000, anchor: str = "delta",
                  linear_basis="polynomial", ridge: float = 1e-6, name: str = "fitted_q"):
@@ -126,11 +136,21 @@ class FittedQAgent(BackwardQAgent):
         self.ridge = ridge
 
     @property
+    def terms(self) -> tuple[str, ...]:
+        if self.basis is not None:
+            return tuple(self.basis)
+        return TREE_BASIS_STATE_ANCHOR if self._state_anchor() else TREE_BASIS
+
+    def _state_anchor(self) -> bool:
+        """Whether the anchor depends on the mark model's state (a Heston hedge), not on spot and time alone."""
+        return self.anchor != "delta" and self.problem.mark_state_column is not None
+
+    @property
     def linear_terms(self) -> tuple[str, ...]:
         """Terms of the linear stage (empty without one)."""
-        if self.linear_basis is None:
+        if self.linear_basis is None or self.linear_basis == "none":
             return ()
-        if isinstance(self.linear_basis, str):
+        if self.linear_basis == "polynomial":
             return polynomial_basis(tuple(self.factor_names))
         return tuple(self.linear_basis)
 
@@ -138,11 +158,11 @@ class FittedQAgent(BackwardQAgent):
         steps = self.problem.schedule.steps
         self.regressors_: list = [None] * steps
         # Terms of observed factors (not on the table's moneyness x gap grid) need the regressor itself,
-        # and so do an observed mark volatility and an anchor at a Heston model's Greeks: the hedge of a
-        # row then depends on them too.
-        state_anchor = self.anchor != "delta" and self.problem.mark_state_column is not None
-        tabulable = not self.problem.mark_volatility_observed and not state_anchor and all(
-            factor.partition("^")[0] in TABULABLE for term in self.terms for factor in term.split("*"))
+        # and so does an observed mark volatility (the hedge and gamma of a row depend on it); under an
+        # anchor at a Heston model's Greeks so do the hedge and the target.
+        tabulable_terms = TABULABLE - {"hedge", "target", "abs_target"} if self._state_anchor() else TABULABLE
+        tabulable = not self.problem.mark_volatility_observed and all(
+            factor.partition("^")[0] in tabulable_terms for term in self.terms for factor in term.split("*"))
         self.tables_: list | None = [None] * steps if tabulable else None
         self.linear_coef_ = np.zeros((steps, len(self.linear_terms)))
         self._rows: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
@@ -214,7 +234,8 @@ class FittedQAgent(BackwardQAgent):
         moneyness = np.linspace(low - pad, high + pad, TABLE_MONEYNESS_POINTS)
         obs = np.column_stack([np.exp(moneyness), np.full_like(moneyness, self.problem.years_to_horizon(k)),
                                np.zeros_like(moneyness)])
-        state = state_features(self.problem, obs, anchor=self.anchor)
+        # A state anchor leaves the hedge out of the (tabulable) columns: any hedge gives the same gaps.
+        state = state_features(self.problem, obs, anchor="delta" if self._state_anchor() else self.anchor)
         targets = state.hedge[:, None] + self.move_ * TABLE_GAPS[None, :]
         return moneyness, self._regress(k, state, targets)
 

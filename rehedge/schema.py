@@ -597,6 +597,9 @@ class FittedQAgentSpec(_LearnedAgent):
     regressor_params: dict[str, Any] = Field(default_factory=dict,
                                              description="Keyword arguments of the regressor.")
     basis: BasisTerms | None = Field(None, description="Feature columns (agents.features); default the tree set.")
+    linear_basis: BasisTerms | Literal["polynomial", "none"] = Field(
+        "polynomial", description="Terms of the linear stage fitted before the regressor, which then fits what "
+                                  "it leaves: the linear agent's default basis, a list of terms, or none.")
     max_rows_per_step: int = Field(2_000_000, ge=1000, description="Regression rows kept per decision time "
                                    "(every r-th training state beyond it): bounds memory at any path count.")
 

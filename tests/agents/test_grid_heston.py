@@ -79,6 +79,7 @@ def test_with_no_costs_and_no_drift_the_heston_grid_hedges_at_the_minimum_varian
 
 
 def test_the_heston_grid_refuses_a_problem_without_the_variance():
-    problem = HedgingProblem(Book((OptionLeg("call", 100.0, 10, -1.0),)), mark_model=HestonPricer(KAPPA, THETA, XI, RHO))
+    pricer = HestonPricer(KAPPA, THETA, XI, RHO)
+    problem = HedgingProblem(Book((OptionLeg("call", 100.0, 10, -1.0),)), mark_model=pricer)
     with pytest.raises(ValueError, match="variance observed"):
         HestonGridDPAgent(problem).fit()
