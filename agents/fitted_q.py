@@ -212,7 +212,7 @@ class FittedQAgent(BackwardQAgent):
         self._seen += len(y)
         # The linear stage's terms centred within states: the residual's state part does not matter.
         linear = linear - linear.mean(axis=2, keepdims=True)
-        self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1), linear.reshape(len(linear), -1).T))
+        self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1), linear.reshape(len(linear), centred.size).T))
 
     def _finish_step(self, k: int) -> None:
         X = np.concatenate([x for x, _, _ in self._rows])

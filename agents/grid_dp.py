@@ -23,7 +23,16 @@ from scipy.interpolate import CubicSpline
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
-from agents.grid_numerics import evaluate_spline, normal_quadrature, q_columns, reward_coefficients, rows_by_time
+from agents.grid_numerics import (
+    decision_indices,
+    evaluate_spline,
+    normal_quadrature,
+    q_columns,
+    reward_coefficients,
+    rows_by_time,
+    stay_value,
+    trade_charge,
+)
 from agents.policy import decode
 from hedge_env.problem import HedgingProblem
 from hedge_env.step import HedgeState, hedge_step
@@ -266,21 +275,6 @@ class GridDPAgent(BaseEstimator):
         holding = flat(holdings)
         return HedgeState(k, spot, np.ones_like(spot), holding, -(holding * spot + mark), mark, delta)
 
-    def _trade_charge(self, spots, sizes):
-        """What a trade of ``sizes`` shares at ``spots`` takes out of the step's P&L, currency.
-
-        The step pays ``trading_cost + impact_cost`` out of cash; cash then
-        earns the step's financing, so the charge is the costs less the
-        interest they would have earned. These are the frictions' own
-        methods, the ones :func:`hedge_step` calls; ``fit`` checks the sum
-        against ``hedge_step``.
-        """
-        frictions = self.problem.frictions
-        paid = frictions.trading_cost(sizes, spots) + frictions.impact_cost(sizes, spots)
-        if frictions.has_financing:
-            paid = paid - frictions.financing(-paid, 0.0 * paid, spots, self.problem.dt_years)
-        return paid
-
     def _check_separation(self, spots: np.ndarray) -> None:
         """Raise unless ``hedge_step`` with a trade equals the no-trade step minus the trade charge."""
         problem = self.problem
@@ -295,13 +289,13 @@ class GridDPAgent(BaseEstimator):
             next_spot = spot * self._growth(nodes[i, rng.integers(nodes.shape[1], size=n)])
             with_trade = hedge_step(problem, self._grid_state(k, spot, held), target, next_spot).pnl
             without = hedge_step(problem, self._grid_state(k, spot, target), target, next_spot).pnl
-            separated = without - self._trade_charge(spot, np.abs(target - held))
+            separated = without - trade_charge(self.problem, spot, np.abs(target - held))
             scale = problem.notional_shares * problem.reference_spot
             if not np.allclose(with_trade, separated, rtol=1e-9, atol=1e-11 * scale):
                 worst = float(np.max(np.abs(with_trade - separated)))
                 raise RuntimeError(
                     f"hedge_step no longer separates into a no-trade step and a trade charge (off by {worst:g} "
-                    f"at step {k}); GridDPAgent._trade_charge must follow the step's accounting"
+                    f"at step {k}); agents.grid_numerics.trade_charge must follow the step's accounting"
                 )
 
     def _no_trade_pnl(self, k, spots, actions, next_spots) -> np.ndarray:
@@ -369,7 +363,7 @@ class GridDPAgent(BaseEstimator):
         rows = max(1, _CHUNK_ELEMENTS // sizes.size)
         for start in range(0, spots.size, rows):
             block = slice(start, min(start + rows, spots.size))
-            charge = self._trade_charge(spots[block, None, None], sizes[None])
+            charge = trade_charge(self.problem, spots[block, None, None], sizes[None])
             q = level[block, None, :] - charge * slope[block, None, :]
             if c2:
                 q += c2 * (charge * charge)
@@ -430,7 +424,7 @@ class GridDPAgent(BaseEstimator):
         if obs.ndim != 2 or obs.shape[1] < 3:
             raise ValueError(f"observations must be an (n, >= 3) array of rows, got shape {obs.shape}")
         decoded = decode(self.problem, obs)
-        return decoded, self._decision_indices(decoded.t_days, decoded.spot.size)
+        return decoded, decision_indices(self.problem, decoded.t_days, decoded.spot.size)
 
     def _best(self, obs) -> tuple[np.ndarray, np.ndarray]:
         decoded, times = self._decode(obs)
@@ -514,19 +508,6 @@ class GridDPAgent(BaseEstimator):
             targets[block] = self._best_exact(table, spot[block], held[block])[0]
         return targets
 
-    def _decision_indices(self, t_days, n: int) -> np.ndarray:
-        schedule = self.problem.schedule
-        days = np.broadcast_to(np.asarray(t_days, dtype=float), (n,))
-        k = np.rint(days / schedule.step_days)
-        off_grid = np.abs(days - k * schedule.step_days) > 1e-3 * schedule.step_days
-        if off_grid.any() or ((k < 0) | (k >= schedule.steps)).any():
-            bad = float(days[off_grid | (k < 0) | (k >= schedule.steps)][0])
-            raise ValueError(
-                f"observation at day {bad:g} is not a decision time of the schedule "
-                f"(0 .. {schedule.horizon_days - schedule.step_days:g} every {schedule.step_days:g} days)"
-            )
-        return k.astype(int)
-
     def _best_exact(self, table, spot, held, columns=None) -> tuple[np.ndarray, np.ndarray]:
         """Best of the grid targets and "no trade", with Q at the rows' own spot and holding.
 
@@ -546,21 +527,20 @@ class GridDPAgent(BaseEstimator):
             level, slope = q_columns(table, np.log(spot), np.hstack([columns, middle[:, None] + np.arange(-1, 2)]))
             nearest, level, slope = level[:, -3:], level[:, :-3], slope[:, :-3]
             choices = actions[columns]
-        charge = self._trade_charge(spot[:, None], np.abs(choices - held[:, None]))
+        charge = trade_charge(self.problem, spot[:, None], np.abs(choices - held[:, None]))
         q = level - charge * slope
         if c2:
             q += c2 * (charge * charge)
         rows = np.arange(spot.size)
         best = q.argmax(axis=1)
         best_q = q[rows, best]
-        # Not trading: Q(S, h, h) is the no-trade value at a = h, quadratic through the three nearest
-        # targets (linear would be biased low, the value being concave in a, and narrow the band).
+        # Not trading: Q(S, h, h) is the no-trade value at a = h (grid_numerics.stay_value).
         t = (held - actions[middle]) / step
         if columns is None:
             below, centre, above = level[rows, middle - 1], level[rows, middle], level[rows, middle + 1]
         else:
             below, centre, above = nearest[:, 0], nearest[:, 1], nearest[:, 2]
-        stay_q = centre + 0.5 * t * (above - below) + 0.5 * t * t * (above - 2.0 * centre + below)
+        stay_q = stay_value(below, centre, above, t)
         stay = stay_q >= best_q
         return np.where(stay, held, choices[rows, best]), np.where(stay, stay_q, best_q)
 

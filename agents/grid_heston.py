@@ -39,7 +39,14 @@ from scipy.interpolate import CubicSpline
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
-from agents.grid_numerics import normal_quadrature, reward_coefficients, rows_by_time
+from agents.grid_numerics import (
+    decision_indices,
+    normal_quadrature,
+    reward_coefficients,
+    rows_by_time,
+    stay_value,
+    trade_charge,
+)
 from agents.policy import decode
 from hedge_env.market import QE_PSI_SWITCH
 from hedge_env.problem import HedgingProblem
@@ -225,8 +232,9 @@ class HestonGridDPAgent(BaseEstimator):
                           if not leg.live_at(schedule.time_days(k + 1))})
         log_spots = self.log_spots_
         if strikes:
-            # Kinks at the strikes: per (spot, variance, node) its own split rule, placed with the exact
-            # normal martingale correction (the quadrature's own differs from it by far less than a node).
+            # Kinks at the strikes: per (spot, variance, node) its own split rule, placed with the
+            # martingale correction of the exact normal (the quadrature's own, below, differs from it
+            # only by the variance quadrature's error).
             approximate = -np.log((v_weights * np.exp(centre + 0.5 * scale * scale)).sum(axis=1, keepdims=True))
             base = log_spots[:, None, None] + (centre + approximate)[None] + self.drift * dt
             zs, ws = normal_quadrature(self.spot_nodes, np.exp(base).ravel(), strikes, 0.0,
@@ -320,21 +328,13 @@ class HestonGridDPAgent(BaseEstimator):
         self.no_trade_value_[k], self.cost_weight_[k] = level, slope
         sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])   # (holding, action)
         for i in range(spots.size):
-            charge = self._trade_charge(spots[i], sizes)
+            charge = trade_charge(self.problem, spots[i], sizes)
             q = level[i][:, None, :] - charge[None] * slope[i][:, None, :]    # (variance, holding, action)
             if c2:
                 q += c2 * (charge * charge)[None]
             best = q.argmax(axis=2)
             self.policy_[k, i] = self.holdings_[best]
             self.value_[k, i] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
-
-    def _trade_charge(self, spots, sizes):
-        """The trade's costs less the interest they forgo (as agents.grid_dp.GridDPAgent)."""
-        frictions = self.problem.frictions
-        paid = frictions.trading_cost(sizes, spots) + frictions.impact_cost(sizes, spots)
-        if frictions.has_financing:
-            paid = paid - frictions.financing(-paid, 0.0 * paid, spots, self.problem.dt_years)
-        return paid
 
     # --- the greedy policy ----------------------------------------------------------------------
 
@@ -352,8 +352,7 @@ class HestonGridDPAgent(BaseEstimator):
         obs = np.asarray(obs, dtype=float)
         decoded = decode(self.problem, obs)
         variance = self.problem.observed_mark_state(obs)
-        days = np.broadcast_to(np.asarray(decoded.t_days, dtype=float), (obs.shape[0],))
-        times = np.rint(days / self.problem.schedule.step_days).astype(int)
+        times = decision_indices(self.problem, decoded.t_days, obs.shape[0])
         targets, values = np.empty(obs.shape[0]), np.empty(obs.shape[0])
         per_block = max(1, _CHUNK_ELEMENTS // (4 * self.holdings_.size))
         c2 = self.reward_coefficients_[1]
@@ -367,7 +366,7 @@ class HestonGridDPAgent(BaseEstimator):
                 spot, held = decoded.spot[block], decoded.holding_shares[block]
                 both = table(np.log(spot), variance[block])
                 level, slope = both[..., 0], both[..., 1]
-                charge = self._trade_charge(spot[:, None], np.abs(actions[None, :] - held[:, None]))
+                charge = trade_charge(self.problem, spot[:, None], np.abs(actions[None, :] - held[:, None]))
                 q = level - charge * slope
                 if c2:
                     q += c2 * (charge * charge)
@@ -376,7 +375,7 @@ class HestonGridDPAgent(BaseEstimator):
                 middle = np.clip(np.rint((held - actions[0]) / step).astype(int), 1, actions.size - 2)
                 t = (held - actions[middle]) / step
                 below, centre, above = level[pick, middle - 1], level[pick, middle], level[pick, middle + 1]
-                stay_q = centre + 0.5 * t * (above - below) + 0.5 * t * t * (above - 2.0 * centre + below)
+                stay_q = stay_value(below, centre, above, t)
                 stay = stay_q >= q[pick, best]
                 targets[block] = np.where(stay, held, actions[best])
                 values[block] = np.where(stay, stay_q, q[pick, best])

@@ -54,6 +54,44 @@ def reward_coefficients(problem: HedgingProblem) -> tuple[float, float]:
     return c1, c2
 
 
+def trade_charge(problem: HedgingProblem, spots, sizes):
+    """What a trade of ``sizes`` shares at ``spots`` takes out of the step's P&L, currency.
+
+    The step pays ``trading_cost + impact_cost`` out of cash; cash then earns the step's financing,
+    so the charge is the costs less the interest they would have earned. These are the frictions'
+    own methods, the ones :func:`hedge_env.step.hedge_step` calls; the grid optima check the sum
+    against ``hedge_step``.
+    """
+    frictions = problem.frictions
+    paid = frictions.trading_cost(sizes, spots) + frictions.impact_cost(sizes, spots)
+    if frictions.has_financing:
+        paid = paid - frictions.financing(-paid, 0.0 * paid, spots, problem.dt_years)
+    return paid
+
+
+def stay_value(below, centre, above, t):
+    """Q of not trading at a holding a fraction ``t`` of a node spacing from the nearest grid target
+    (whose no-trade values are ``centre``, with its neighbours ``below`` and ``above``): quadratic
+    through the three (linear would be biased low, the value being concave in the target, and
+    would narrow the band)."""
+    return centre + 0.5 * t * (above - below) + 0.5 * t * t * (above - 2.0 * centre + below)
+
+
+def decision_indices(problem: HedgingProblem, t_days, n: int) -> np.ndarray:
+    """Decision time index of each of ``n`` rows at ``t_days``; ValueError off the schedule's times."""
+    schedule = problem.schedule
+    days = np.broadcast_to(np.asarray(t_days, dtype=float), (n,))
+    k = np.rint(days / schedule.step_days)
+    off_grid = np.abs(days - k * schedule.step_days) > 1e-3 * schedule.step_days
+    if off_grid.any() or ((k < 0) | (k >= schedule.steps)).any():
+        bad = float(days[off_grid | (k < 0) | (k >= schedule.steps)][0])
+        raise ValueError(
+            f"observation at day {bad:g} is not a decision time of the schedule "
+            f"(0 .. {schedule.horizon_days - schedule.step_days:g} every {schedule.step_days:g} days)"
+        )
+    return k.astype(int)
+
+
 def rows_by_time(times: np.ndarray):
     """(k, rows) per decision time present; rows is a slice when all rows share one time (a rollout)."""
     if times.size and (times == times[0]).all():

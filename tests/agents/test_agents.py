@@ -164,6 +164,16 @@ def test_zero_cost_fitted_q_agent_holds_the_black_scholes_delta_within_two_hedge
     assert (gaps <= 0.05).mean() >= 0.95
 
 
+def test_fitted_q_without_its_linear_stage_fits_the_trees_alone():
+    problem = reference(0.001)[0]
+    agent = FittedQAgent(problem, linear_basis="none").fit(training_data(0.001))
+    assert agent.linear_terms == () and agent.linear_coef_.shape == (problem.schedule.steps, 0)
+    with_stage = fitted("fitted_q", 0.001)
+    assert len(with_stage.linear_terms) > 0 and np.any(with_stage.linear_coef_ != 0)
+    obs = rows_at(problem, np.linspace(95.0, 105.0, 5), 10, np.full(5, -0.5))
+    assert np.all(np.isfinite(agent.act(obs)))
+
+
 # --- proportional costs: the reference case ------------------------------------------------------
 
 
