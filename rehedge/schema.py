@@ -551,7 +551,7 @@ class ExplorationSpec(_Spec):
     no_trade: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
         0.3, description="Probability of keeping the holding.")
     delta: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
-        0.2, description="Probability of trading to the Black-Scholes hedge.")
+        0.2, description="Probability of trading to the hedge (the agent's anchor).")
     spread: float = Field(1.1, ge=0, description="Std of other targets around the hedge or the holding, "
                                                  "in hedge moves (typical one-step change of the hedge).")
     actions_per_state: int = Field(8, ge=2, description="Targets replayed on each state's market move.")
