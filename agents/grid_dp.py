@@ -20,6 +20,7 @@ import math
 
 import numpy as np
 from scipy.interpolate import CubicSpline
+from scipy.special import logsumexp
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
@@ -72,6 +73,11 @@ class GridDPAgent(BaseEstimator):
         book delta's range over the spot grid and the rehedge times, widened
         to include 0 and padded by 10% of notional on each side. Always cut
         back to the position limit.
+    utility : str
+        ``"mean_variance"``: the per-step objective ``E[sum_k r_k]``;
+        ``"exponential"``: the expected exponential utility of the wealth at the
+        horizon, ``objective.risk_aversion`` its absolute risk aversion
+        (:meth:`_induct_exponential`); ``value`` then gives the certainty equivalent.
     name : str
         Policy name in reports.
 
@@ -136,6 +142,7 @@ class GridDPAgent(BaseEstimator):
         quadrature_nodes: int = 16,
         log_spot_width: float = 8.0,
         holding_range: tuple[float, float] | None = None,
+        utility: str = "mean_variance",
         name: str = "grid_dp",
     ):
         self.problem = problem
@@ -146,6 +153,7 @@ class GridDPAgent(BaseEstimator):
         self.quadrature_nodes = quadrature_nodes
         self.log_spot_width = log_spot_width
         self.holding_range = holding_range
+        self.utility = utility
         self.name = name
 
     # --- fitting --------------------------------------------------------------------------------
@@ -178,7 +186,9 @@ class GridDPAgent(BaseEstimator):
         self._validate_parameters()
         problem = self.problem
         steps = problem.schedule.steps
-        self.reward_coefficients_ = reward_coefficients(problem)
+        exponential = self.utility == "exponential"
+        # Under exponential utility Q is kept as -log E[exp(-gamma W_T)]: level - charge x gamma_k, linear.
+        self.reward_coefficients_ = (1.0, 0.0) if exponential else reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
         spots = np.exp(self.log_spots_)
         self.holdings_ = self._holding_grid(spots)
@@ -194,7 +204,9 @@ class GridDPAgent(BaseEstimator):
         for k in reversed(range(steps)):
             nodes, weights = self._quadrature(k, spots)
             next_spots = spots[:, None] * self._growth(nodes)
-            if separable:
+            if exponential:
+                self._induct_exponential(k, spots, next_spots, weights, value_next)
+            elif separable:
                 self._induct_separated(k, spots, next_spots, weights, value_next)
             else:
                 self._induct_directly(k, spots, next_spots, weights, value_next)
@@ -211,6 +223,11 @@ class GridDPAgent(BaseEstimator):
             )
         if not (self.volatility > 0 and self.log_spot_width > 0):
             raise ValueError(f"volatility and log_spot_width must be > 0, got {self.volatility}, {self.log_spot_width}")
+        if self.utility not in ("mean_variance", "exponential"):
+            raise ValueError(f"utility must be 'mean_variance' or 'exponential', got {self.utility!r}")
+        if self.utility == "exponential" and not (self.problem.objective.risk_aversion > 0
+                                                  and not self.problem.frictions.permanent_impact):
+            raise ValueError("exponential utility needs objective.risk_aversion > 0 and no permanent impact")
         if self.holding_range is not None and not self.holding_range[0] < self.holding_range[1]:
             raise ValueError(f"holding_range must be (low, high) with low < high, got {self.holding_range}")
 
@@ -371,6 +388,43 @@ class GridDPAgent(BaseEstimator):
             self.policy_[k, block] = self.holdings_[best]
             self.value_[k, block] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
 
+    def _utility_weight(self, k: int) -> float:
+        """gamma_k: the exponential utility's risk aversion applied to step k's P&L, grown to the horizon
+        at the cash rate (a step's P&L earns interest until then, so it weighs that much more)."""
+        problem = self.problem
+        remaining = problem.horizon_years - (k + 1) * problem.dt_years
+        return problem.objective.risk_aversion * math.exp(problem.frictions.cash_rate * remaining)
+
+    def _induct_exponential(self, k, spots, next_spots, weights, value_next) -> None:
+        """Exponential utility: with constant absolute risk aversion the value separates from wealth,
+        ``E[-exp(-gamma W_T)] = -exp(-gamma W) phi_k(S, h)``, and with ``L = -log phi``
+
+            L_k(S, h) = max_a [ -gamma_k P(S, |a - h|) - log E[exp(-gamma_k dW0(S, a, S') - L_{k+1}(S', a))] ]
+
+        (the trade charge separates as in the mean-variance grid; gamma_k from
+        :meth:`_utility_weight`). ``value_`` holds L; ``L / gamma`` is the certainty equivalent of
+        the wealth at the horizon. The expectation is a log-sum-exp over the quadrature nodes."""
+        gamma = self._utility_weight(k)
+        pnl = self._no_trade_pnl(k, spots, self.holdings_, next_spots)            # (spot, action, node)
+        exponent = -gamma * pnl
+        if value_next is not None:
+            spline = CubicSpline(self.log_spots_, value_next, axis=0)
+            later = evaluate_spline(spline, np.log(next_spots).ravel()).reshape(*next_spots.shape, -1)
+            exponent -= later.transpose(0, 2, 1)
+        with np.errstate(divide="ignore"):
+            log_weights = np.log(weights)[:, None, :]
+        level = -logsumexp(exponent + log_weights, axis=2)
+        slope = np.full_like(level, gamma)
+        self.no_trade_value_[k], self.cost_weight_[k] = level, slope
+        sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])
+        rows = max(1, _CHUNK_ELEMENTS // sizes.size)
+        for start in range(0, spots.size, rows):
+            block = slice(start, min(start + rows, spots.size))
+            q = level[block, None, :] - gamma * trade_charge(self.problem, spots[block, None, None], sizes[None])
+            best = q.argmax(axis=2)
+            self.policy_[k, block] = self.holdings_[best]
+            self.value_[k, block] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
+
     def _induct_directly(self, k, spots, next_spots, weights, value_next) -> None:
         """Every (spot, holding, action, node) through hedge_step: the trade moves S' (permanent impact)."""
         holdings = actions = self.holdings_
@@ -415,8 +469,10 @@ class GridDPAgent(BaseEstimator):
         return self._best(obs)[0] / self.problem.notional_shares
 
     def value(self, obs) -> np.ndarray:
-        """``V_k`` at observation rows: the optimal expected sum of rewards from their state on, currency."""
-        return self._best(obs)[1]
+        """``V_k`` at observation rows, currency: the optimal expected sum of rewards from their state
+        on; under exponential utility the certainty equivalent of the wealth at the horizon."""
+        value = self._best(obs)[1]
+        return value / self.problem.objective.risk_aversion if self.utility == "exponential" else value
 
     def _decode(self, obs):
         check_is_fitted(self, "value_")
