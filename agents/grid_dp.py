@@ -328,39 +328,59 @@ class GridDPAgent(BaseEstimator):
             pnl[block] = hedge_step(self.problem, state, state.holding, exogenous).pnl.reshape(shape)
         return pnl
 
-    def _no_trade_moments(self, k, spots, next_spots, weights) -> tuple[np.ndarray, np.ndarray]:
-        """E[dW0] and E[dW0**2] per (spot, action), dW0 the P&L of hedge_step without a trade.
+    def _affine_pieces(self, k, spots, next_spots):
+        """The no-trade P&L at the ends of its affine pieces in the holding, or None.
 
         Before the last step the no-trade P&L is affine in the holding on each
         side of 0 (hedge gain, interest, dividends; the borrow fee bends it at
         0). Then hedge_step runs at the ends of each piece only, plus two
-        probe holdings that must come out on the lines; if they do not, every
-        holding goes through hedge_step. The last step (the unwind) always does.
+        probe holdings that must come out on the lines; if they do not, None
+        (every holding must go through hedge_step). The last step (the unwind)
+        always does. Returns ``(u, v, piece, fraction)``: ``dW0(a) = u + f v``
+        on piece ``piece[a]`` at fraction ``fraction[a]``, ``u`` and ``v`` of
+        shape (spot, piece, node).
         """
         actions = self.holdings_
+        if k >= self.problem.schedule.steps - 1:
+            return None
+        anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
+        probes = np.array([actions.size // 3, (2 * actions.size) // 3])
+        pnl = self._no_trade_pnl(k, spots, np.concatenate([anchors, actions[probes]]), next_spots)
+        anchor_pnl, probe_pnl = pnl[:, : anchors.size], pnl[:, anchors.size :]
+        piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
+        fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
+        start, end = anchor_pnl[:, piece[probes]], anchor_pnl[:, piece[probes] + 1]
+        on_lines = start + fraction[probes][None, :, None] * (end - start)
+        scale = self.problem.notional_shares * self.problem.reference_spot
+        if not np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
+            return None
+        u = anchor_pnl[:, :-1]
+        return u, anchor_pnl[:, 1:] - u, piece, fraction
+
+    def _no_trade_moments(self, k, spots, next_spots, weights) -> tuple[np.ndarray, np.ndarray]:
+        """E[dW0] and E[dW0**2] per (spot, action), dW0 the P&L of hedge_step without a trade
+        (from the affine pieces when there are: :meth:`_affine_pieces`)."""
         w = weights[:, None, :]
-        if k < self.problem.schedule.steps - 1:
-            anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
-            probes = np.array([actions.size // 3, (2 * actions.size) // 3])
-            pnl = self._no_trade_pnl(k, spots, np.concatenate([anchors, actions[probes]]), next_spots)
-            anchor_pnl, probe_pnl = pnl[:, : anchors.size], pnl[:, anchors.size :]
-            piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
-            fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
-            start, end = anchor_pnl[:, piece[probes]], anchor_pnl[:, piece[probes] + 1]
-            on_lines = start + fraction[probes][None, :, None] * (end - start)
-            scale = self.problem.notional_shares * self.problem.reference_spot
-            if np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
-                # pnl(a) = u + f v on the piece of a: moments from E[u], E[v], E[u^2], E[u v], E[v^2] per spot.
-                u = anchor_pnl[:, :-1]
-                v = anchor_pnl[:, 1:] - u
-                mean_u, mean_v = (u * w).sum(axis=2), (v * w).sum(axis=2)
-                mean_uu, mean_uv, mean_vv = (u * u * w).sum(axis=2), (u * v * w).sum(axis=2), (v * v * w).sum(axis=2)
-                f = fraction[None, :]
-                first = mean_u[:, piece] + f * mean_v[:, piece]
-                second = mean_uu[:, piece] + 2.0 * f * mean_uv[:, piece] + f * f * mean_vv[:, piece]
-                return first, second
-        pnl = self._no_trade_pnl(k, spots, actions, next_spots)
+        pieces = self._affine_pieces(k, spots, next_spots)
+        if pieces is not None:
+            # pnl(a) = u + f v on the piece of a: moments from E[u], E[v], E[u^2], E[u v], E[v^2] per spot.
+            u, v, piece, fraction = pieces
+            mean_u, mean_v = (u * w).sum(axis=2), (v * w).sum(axis=2)
+            mean_uu, mean_uv, mean_vv = (u * u * w).sum(axis=2), (u * v * w).sum(axis=2), (v * v * w).sum(axis=2)
+            f = fraction[None, :]
+            first = mean_u[:, piece] + f * mean_v[:, piece]
+            second = mean_uu[:, piece] + 2.0 * f * mean_uv[:, piece] + f * f * mean_vv[:, piece]
+            return first, second
+        pnl = self._no_trade_pnl(k, spots, self.holdings_, next_spots)
         return (pnl * w).sum(axis=2), (pnl * pnl * w).sum(axis=2)
+
+    def _no_trade_pnl_all(self, k, spots, next_spots) -> np.ndarray:
+        """dW0 at every (spot, action, node): from the affine pieces when there are."""
+        pieces = self._affine_pieces(k, spots, next_spots)
+        if pieces is None:
+            return self._no_trade_pnl(k, spots, self.holdings_, next_spots)
+        u, v, piece, fraction = pieces
+        return u[:, piece] + fraction[None, :, None] * v[:, piece]
 
     def _continuation(self, value_next, next_spots, weights) -> np.ndarray:
         """E[V_{k+1}(S', a)] per (spot, action), cubic spline in log spot with linear tails."""
@@ -405,8 +425,7 @@ class GridDPAgent(BaseEstimator):
         :meth:`_utility_weight`). ``value_`` holds L; ``L / gamma`` is the certainty equivalent of
         the wealth at the horizon. The expectation is a log-sum-exp over the quadrature nodes."""
         gamma = self._utility_weight(k)
-        pnl = self._no_trade_pnl(k, spots, self.holdings_, next_spots)            # (spot, action, node)
-        exponent = -gamma * pnl
+        exponent = -gamma * self._no_trade_pnl_all(k, spots, next_spots)          # (spot, action, node)
         if value_next is not None:
             spline = CubicSpline(self.log_spots_, value_next, axis=0)
             later = evaluate_spline(spline, np.log(next_spots).ravel()).reshape(*next_spots.shape, -1)
