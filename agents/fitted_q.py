@@ -210,8 +210,10 @@ class FittedQAgent(BackwardQAgent):
             keep = (self._seen + np.arange(len(y))) % stride == 0
             X, centred, linear = X[:, keep], centred[keep], linear[:, keep]
         self._seen += len(y)
-        # The linear stage's terms centred within states: the residual's state part does not matter.
-        linear = linear - linear.mean(axis=2, keepdims=True)
+        # The linear stage's terms centred within states and rescaled like the targets, so that the
+        # residual the trees fit is (M / (M - 1)) (y - theta . x) centred: the same estimator of Q up to
+        # a function of the state, less the linear stage (not less (M - 1) / M of it).
+        linear = (linear - linear.mean(axis=2, keepdims=True)) * (m / (m - 1))
         self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1), linear.reshape(len(linear), centred.size).T))
 
     def _finish_step(self, k: int) -> None:
