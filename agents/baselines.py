@@ -166,10 +166,9 @@ def _merton_minimum_variance(problem: HedgingProblem, spot, t_days, value, delta
         log_spot = np.log(spot[rows])
         inside = (log_spot >= nodes[0]) & (log_spot <= nodes[-1])
         out[rows] = np.interp(log_spot, nodes, ratio)
-        if not inside.all():  # off the table: exactly
+        if not inside.all():  # off the table: exactly, from the rows' own value and delta
             far = np.flatnonzero(rows)[~inside]
-            value_far, delta_far = problem.model_greeks(spot[far], float(t))[:2]
-            out[far] = _merton_ratio(problem, spot[far], float(t), value_far, delta_far)
+            out[far] = _merton_ratio(problem, spot[far], float(t), value[far], delta[far])
     return out
 
 

@@ -25,6 +25,7 @@ from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
 from agents.grid_numerics import (
+    best_targets,
     decision_indices,
     evaluate_spline,
     normal_quadrature,
@@ -395,18 +396,19 @@ class GridDPAgent(BaseEstimator):
         m1, m2 = self._no_trade_moments(k, spots, next_spots, weights)
         level = c1 * m1 + c2 * m2 + self._continuation(value_next, next_spots, weights)
         slope = c1 + 2.0 * c2 * m1
+        self._maximise(k, spots, level, slope, c2)
+
+    def _maximise(self, k, spots, level, slope, c2: float) -> None:
+        """``policy_[k]``, ``value_[k]`` (and the tables the greedy policy reads) from the no-trade
+        value and the cost weight of every (spot, target)."""
         self.no_trade_value_[k], self.cost_weight_[k] = level, slope
         sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])  # (holding, action)
         rows = max(1, _CHUNK_ELEMENTS // sizes.size)
         for start in range(0, spots.size, rows):
             block = slice(start, min(start + rows, spots.size))
             charge = trade_charge(self.problem, spots[block, None, None], sizes[None])
-            q = level[block, None, :] - charge * slope[block, None, :]
-            if c2:
-                q += c2 * (charge * charge)
-            best = q.argmax(axis=2)
-            self.policy_[k, block] = self.holdings_[best]
-            self.value_[k, block] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
+            self.policy_[k, block], self.value_[k, block] = best_targets(level[block], slope[block], charge, c2,
+                                                                         self.holdings_)
 
     def _utility_weight(self, k: int) -> float:
         """gamma_k: the exponential utility's risk aversion applied to step k's P&L, grown to the horizon
@@ -433,16 +435,7 @@ class GridDPAgent(BaseEstimator):
         with np.errstate(divide="ignore"):
             log_weights = np.log(weights)[:, None, :]
         level = -logsumexp(exponent + log_weights, axis=2)
-        slope = np.full_like(level, gamma)
-        self.no_trade_value_[k], self.cost_weight_[k] = level, slope
-        sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])
-        rows = max(1, _CHUNK_ELEMENTS // sizes.size)
-        for start in range(0, spots.size, rows):
-            block = slice(start, min(start + rows, spots.size))
-            q = level[block, None, :] - gamma * trade_charge(self.problem, spots[block, None, None], sizes[None])
-            best = q.argmax(axis=2)
-            self.policy_[k, block] = self.holdings_[best]
-            self.value_[k, block] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
+        self._maximise(k, spots, level, np.full_like(level, gamma), 0.0)
 
     def _induct_directly(self, k, spots, next_spots, weights, value_next) -> None:
         """Every (spot, holding, action, node) through hedge_step: the trade moves S' (permanent impact)."""

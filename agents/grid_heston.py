@@ -40,6 +40,7 @@ from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
 from agents.grid_numerics import (
+    best_targets,
     decision_indices,
     normal_quadrature,
     reward_coefficients,
@@ -327,14 +328,9 @@ class HestonGridDPAgent(BaseEstimator):
         slope = c1 + 2.0 * c2 * m1
         self.no_trade_value_[k], self.cost_weight_[k] = level, slope
         sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])   # (holding, action)
-        for i in range(spots.size):
+        for i in range(spots.size):  # (variance, holding, action) per spot
             charge = trade_charge(self.problem, spots[i], sizes)
-            q = level[i][:, None, :] - charge[None] * slope[i][:, None, :]    # (variance, holding, action)
-            if c2:
-                q += c2 * (charge * charge)[None]
-            best = q.argmax(axis=2)
-            self.policy_[k, i] = self.holdings_[best]
-            self.value_[k, i] = np.take_along_axis(q, best[..., None], axis=2)[..., 0]
+            self.policy_[k, i], self.value_[k, i] = best_targets(level[i], slope[i], charge, c2, self.holdings_)
 
     # --- the greedy policy ----------------------------------------------------------------------
 

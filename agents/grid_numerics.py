@@ -69,6 +69,17 @@ def trade_charge(problem: HedgingProblem, spots, sizes):
     return paid
 
 
+def best_targets(level, slope, charge, c2: float, targets: np.ndarray):
+    """The best target and its Q from every holding: ``Q = level - charge x slope + c2 charge^2``,
+    ``level`` and ``slope`` of shape (..., target), ``charge`` (..., holding, target) the charge of
+    the trade from each holding to each target. Returns (targets, values), each (..., holding)."""
+    q = level[..., None, :] - charge * slope[..., None, :]
+    if c2:
+        q += c2 * (charge * charge)
+    best = q.argmax(axis=-1)
+    return targets[best], np.take_along_axis(q, best[..., None], axis=-1)[..., 0]
+
+
 def stay_value(below, centre, above, t):
     """Q of not trading at a holding a fraction ``t`` of a node spacing from the nearest grid target
     (whose no-trade values are ``centre``, with its neighbours ``below`` and ``above``): quadratic
