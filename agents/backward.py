@@ -73,11 +73,17 @@ def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: f
 
 
 def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray,
-               second_moment: np.ndarray | float) -> np.ndarray:
+               second_moment: np.ndarray | float, growth: float = 1.0) -> np.ndarray:
     """What is known of the reward of moving to ``targets`` (n, C): the trade's cost and the
     leading one-step risk of the gap, ``-paid - kappa/2 paid^2 - kappa/2 (gap N S)^2 m2``, with
-    ``m2`` the second moment of the next return, one for all rows or one per row."""
+    ``m2`` the second moment of the next return, one for all rows or one per row.
+
+    Under the exponential objective, the certainty equivalent's counterpart in money at the
+    horizon: ``-G (paid + gamma G / 2 (gap N S)^2 m2)``, G the growth of the step's P&L to the
+    horizon at the cash rate (``growth``): a sure amount passes through a certainty equivalent
+    unchanged, and a normal one-step gap move costs gamma/2 times its variance."""
     frictions, kappa = problem.frictions, problem.objective.risk_aversion
+    exponential = problem.objective.exponential
     notional = problem.notional_shares
     spot = state.spot[:, None]
     # In place on the (n, C) arrays: this runs for every row and candidate of the greedy policy.
@@ -89,12 +95,23 @@ def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarra
         paid = paid + impact
     gap_risk = targets - state.hedge[:, None]
     gap_risk *= gap_risk
-    gap_risk *= (0.5 * kappa * notional * notional) * (spot * spot * np.reshape(second_moment, (-1, 1)))
-    known = paid * paid
-    known *= 0.5 * kappa
-    known += paid
-    known += gap_risk
+    risk_aversion = kappa * growth if exponential else kappa
+    gap_risk *= (0.5 * risk_aversion * notional * notional) * (spot * spot * np.reshape(second_moment, (-1, 1)))
+    if exponential:
+        known = gap_risk
+        known += paid
+        known *= growth
+    else:
+        known = paid * paid
+        known *= 0.5 * kappa
+        known += paid
+        known += gap_risk
     return np.negative(known, out=known)
+
+
+def horizon_growth(problem: HedgingProblem, k: int) -> float:
+    """G_k: what one unit of step k's P&L (at t_{k+1}) is worth at the horizon at the cash rate."""
+    return math.exp(problem.frictions.cash_rate * (problem.years_to_horizon(k) - problem.dt_years))
 
 
 def check_anchor(problem: HedgingProblem, anchor: str, factor_names: tuple[str, ...]) -> None:
@@ -258,15 +275,39 @@ class BackwardQAgent(BaseEstimator):
 
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Design, term-major of shape (n_terms, n, M), and targets (n, M) of step k: one row per
-        state and tried action."""
+        state and tried action (under the exponential objective, targets (3, n, M): see
+        :meth:`_certainty_equivalent_targets`)."""
         problem = self.problem
         state = state_features(problem, chunk.obs[k], self.factor_names, self.anchor)
         targets = chunk.actions[k]
         X = self._design(state, targets)
         second_moment = self.second_moment(state)
-        y = chunk.rewards[k] - known_part(problem, state, targets, second_moment)
-        notional, spot = problem.notional_shares, state.spot
+        notional = problem.notional_shares
         gap_shares = (targets - state.hedge[:, None]) * notional
+        move_surprise, square_surprise, next_moneyness = self._surprises(chunk, k, state, second_moment)
+        if problem.objective.exponential:
+            growth = horizon_growth(problem, k)
+            y = chunk.rewards[k] * growth - known_part(problem, state, targets, second_moment, growth)
+            hedge_surprise = growth * (gap_shares * move_surprise)
+            square_gap_surprise = (growth * growth) * (gap_shares * gap_shares * square_surprise)
+        else:
+            y = chunk.rewards[k] - known_part(problem, state, targets, second_moment)
+            y = y - targets * (notional * move_surprise)
+            y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise
+        if not chunk.done(k):
+            y = y + self.value(chunk.next_observations(k, next_moneyness), k + 1).reshape(y.shape)
+        if problem.objective.exponential:
+            spot = state.spot[:, None]
+            return X, np.stack(np.broadcast_arrays(y, hedge_surprise, square_gap_surprise, move_surprise / spot,
+                                                   square_surprise / (spot * spot)))
+        return X, y
+
+    def _surprises(self, chunk: Transitions, k: int, state: StateFeatures, second_moment):
+        """The market move's surprises at step k, broadcast to (n, M): ``S' - S - S m1`` and
+        ``(S' - S)^2 - S^2 m2(s)`` (zero mean given the state), and the next moneyness of each tried
+        target where targets move the market (else None)."""
+        problem = self.problem
+        spot = state.spot
         factors = replayed_impact(problem, chunk, k)
         growth = np.expm1(self.drift_ * problem.dt_years)
         if factors is None:
@@ -274,22 +315,16 @@ class BackwardQAgent(BaseEstimator):
             move = chunk.next_obs[k, :, 0] * problem.reference_spot - spot
             move_surprise = (move - spot * growth)[:, None]
             square_surprise = (move * move - spot * spot * second_moment)[:, None]
-            next_moneyness = None
-        else:
-            # Each target moved the market by its own factor f: E[S' | s, a] = S f (1 + m1) and
-            # E[(S' - S)^2 | s, a] = S^2 (f^2 E[R^2] - 2 f (1 + m1) + 1), R the market's return.
-            next_spots = replayed_next_spots(problem, chunk, k, factors)
-            move = next_spots - spot[:, None]
-            move_surprise = move - spot[:, None] * (factors * (1.0 + growth) - 1.0)
-            second = np.reshape(second_moment, (-1, 1)) + (2.0 * growth + 1.0)
-            square_surprise = move * move - (spot * spot)[:, None] * (
-                factors * factors * second - 2.0 * factors * (1.0 + growth) + 1.0)
-            next_moneyness = next_spots / problem.reference_spot
-        y = y - targets * (notional * move_surprise)
-        y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise
-        if not chunk.done(k):
-            y = y + self.value(chunk.next_observations(k, next_moneyness), k + 1).reshape(y.shape)
-        return X, y
+            return move_surprise, square_surprise, None
+        # Each target moved the market by its own factor f: E[S' | s, a] = S f (1 + m1) and
+        # E[(S' - S)^2 | s, a] = S^2 (f^2 E[R^2] - 2 f (1 + m1) + 1), R the market's return.
+        next_spots = replayed_next_spots(problem, chunk, k, factors)
+        move = next_spots - spot[:, None]
+        move_surprise = move - spot[:, None] * (factors * (1.0 + growth) - 1.0)
+        second = np.reshape(second_moment, (-1, 1)) + (2.0 * growth + 1.0)
+        square_surprise = move * move - (spot * spot)[:, None] * (
+            factors * factors * second - 2.0 * factors * (1.0 + growth) + 1.0)
+        return move_surprise, square_surprise, next_spots / problem.reference_spot
 
     def _fitted_terms(self) -> tuple[str, ...]:
         """Every term the fitted part reads."""
@@ -300,11 +335,11 @@ class BackwardQAgent(BaseEstimator):
         return basis_columns(self.terms, state, targets)
 
     # -- using the fitted Q ------------------------------------------------------------------
-    def _known(self, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-        return known_part(self.problem, state, targets, self.second_moment(state))
+    def _known(self, state: StateFeatures, targets: np.ndarray, growth: float = 1.0) -> np.ndarray:
+        return known_part(self.problem, state, targets, self.second_moment(state), growth)
 
     def _q(self, k: int, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-        return self._known(state, targets) + self._predict(k, state, targets)
+        return self._known(state, targets, horizon_growth(self.problem, k)) + self._predict(k, state, targets)
 
     def _limit(self) -> float:
         return self.problem.frictions.position_limit_shares / self.problem.notional_shares

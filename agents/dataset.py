@@ -71,7 +71,10 @@ class Transitions:
     Shapes: ``obs`` (steps, n, n_obs): the visited states; ``actions``,
     ``rewards``, ``next_holding`` (steps, n, M): M targets tried at each
     state (column 0 the behaviour's), per share of notional, their rewards
-    and the holding they led to; ``next_obs`` (steps, n, n_obs): the next
+    (under the exponential objective the step's P&L instead: its reward
+    reads the wealth gathered before, which is the behaviour's, and the
+    agents' certainty-equivalent recursion takes the P&L) and the holding
+    they led to; ``next_obs`` (steps, n, n_obs): the next
     observation with the holding column of the behaviour action (replace it
     with ``next_holding`` for the other columns). The step after the last
     decision is terminal (``done``).
@@ -161,7 +164,7 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
             problem, _tile(state, m), actions[k].T.reshape(-1) * notional, np.tile(spot[k + 1], m),
             None if mark_vol is None else np.tile(mark_vol[k + 1], m),
         )
-        rewards[k] = outcome.reward.reshape(m, n).T
+        rewards[k] = (outcome.pnl if problem.objective.exponential else outcome.reward).reshape(m, n).T
         next_holding[k] = (outcome.state.holding / notional).reshape(m, n).T
         state = _first_rows(outcome.state, n)  # the trajectory follows the behaviour action
         next_obs[k] = observe(problem, state, [factors[f][k + 1] for f in observed])

@@ -63,9 +63,26 @@ POLYNOMIAL_BASIS = (
 FACTOR_TERMS = ("gap*{f}", "gap*moneyness*{f}", "gap^2*{f}", "abs_gap*{f}")
 
 
-def polynomial_basis(factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
-    """The linear agent's default basis: ``POLYNOMIAL_BASIS`` and ``FACTOR_TERMS`` of each observed factor."""
-    return POLYNOMIAL_BASIS + tuple(term.format(f=name) for name in factor_names for term in FACTOR_TERMS)
+def level_basis(factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
+    """Terms of the state alone that the exponential objective's fits add: the tents in moneyness (a
+    partition of unity, so they hold the constant too) and, per observed factor, each tent times it.
+    Under exponential utility the value's level across next states is not common to the tried
+    targets: how it moves with the next spot is a risk the hedge takes on, so it is fitted."""
+    return HATS + tuple(f"{hat}*{name}" for name in factor_names for hat in HATS)
+
+
+# What the exponential objective's default basis adds: a curvature in the gap that differs above and
+# below the hedge. Measured on the reference case at 50 bps (scratch seeds, 60,000 training paths): the
+# linear agent's share of the optimum's certainty-equivalent gain went from 94.8% to 97.1% (97.5% and
+# 97.6% at 10 bps); terms in the hedge did as well at 50 bps and no better at 10 bps, tents times the gap worse.
+EXPONENTIAL_TERMS = ("abs_gap*gap",)
+
+
+def polynomial_basis(factor_names: tuple[str, ...] = (), exponential: bool = False) -> tuple[str, ...]:
+    """The linear agent's default basis: ``POLYNOMIAL_BASIS`` (and ``EXPONENTIAL_TERMS`` under the
+    exponential objective) and ``FACTOR_TERMS`` of each observed factor."""
+    return (POLYNOMIAL_BASIS + (EXPONENTIAL_TERMS if exponential else ())
+            + tuple(term.format(f=name) for name in factor_names for term in FACTOR_TERMS))
 
 
 # Raw columns for a tree ensemble, which finds its own interactions.
@@ -276,6 +293,11 @@ def _split_term(term: str) -> tuple[tuple[tuple[str, int], ...], tuple[str, ...]
         else:
             state_part.append(factor)
     return tuple(sorted(powers.items())), tuple(state_part)
+
+
+def target_part(term: str) -> tuple[tuple[str, int], ...]:
+    """The target factors of a term with their powers; empty for a term of the state alone."""
+    return _split_term(term)[0]
 
 
 def _power_name(name: str, power: int) -> str:

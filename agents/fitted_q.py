@@ -21,6 +21,7 @@ from sklearn.base import clone
 from sklearn.ensemble import HistGradientBoostingRegressor
 
 from agents.backward import DEFAULT_PARTIAL_MOVES, BackwardQAgent
+from agents.certainty import StepRows, certainty_equivalent_fit
 from agents.features import (
     HATS,
     TREE_BASIS,
@@ -28,8 +29,10 @@ from agents.features import (
     basis,
     basis_columns,
     combination,
+    level_basis,
     polynomial_basis,
     state_features,
+    target_part,
 )
 from agents.linear import NormalEquations, within_state
 from hedge_env.problem import HedgingProblem
@@ -92,6 +95,11 @@ class FittedQAgent(BackwardQAgent):
     stage carries the smooth shape of Q in the gap; the trees the kinks and interactions it misses.
     ``linear_basis=None`` fits the regressor alone.
 
+    Under the exponential objective the linear stage is the linear agent's certainty-equivalent
+    fit (agents.certainty, with the ``level_basis`` terms added: it carries the value's level),
+    and the regressor fits, within states, what it leaves of each row's certainty-equivalent
+    target; a linear stage is then required.
+
     Parameters
     ----------
     problem : HedgingProblem
@@ -150,9 +158,12 @@ class FittedQAgent(BackwardQAgent):
         """Terms of the linear stage (empty without one)."""
         if self.linear_basis is None or self.linear_basis == "none":
             return ()
-        if self.linear_basis == "polynomial":
-            return polynomial_basis(tuple(self.factor_names))
-        return tuple(self.linear_basis)
+        factors, exponential = tuple(self.factor_names), self.problem.objective.exponential
+        polynomial = self.linear_basis == "polynomial"
+        terms = polynomial_basis(factors, exponential) if polynomial else tuple(self.linear_basis)
+        if exponential:
+            terms += tuple(term for term in level_basis(factors) if term not in terms)
+        return terms
 
     def _setup(self) -> None:
         steps = self.problem.schedule.steps
@@ -168,6 +179,9 @@ class FittedQAgent(BackwardQAgent):
         self._rows: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
 
     def _begin_fit(self, moment_sums) -> None:
+        if self.problem.objective.exponential and not self.linear_terms:
+            raise ValueError("fitted Q under the exponential objective needs a linear stage (linear_basis not "
+                             "'none'): it carries the value's level across states")
         moment_sums = list(moment_sums)
         super()._begin_fit(moment_sums)
         # Each chunk's return count is its states times the decision times.
@@ -183,6 +197,7 @@ class FittedQAgent(BackwardQAgent):
     def _start_step(self, k: int) -> None:
         self._rows = []
         self._normal = NormalEquations.empty(len(self.linear_terms))
+        self._certainty_rows = StepRows()
         self._seen = 0
         self._moneyness_range = (np.inf, -np.inf)
 
@@ -198,28 +213,61 @@ class FittedQAgent(BackwardQAgent):
         # Rescaled, the regression learns Q up to a function of the state, without the noise that
         # the actions share.
         X, linear = design
-        m = y.shape[1]
+        m = y.shape[-1]
         if m < 2:
             raise ValueError("fitted Q needs exploration.actions_per_state >= 2")
+        keep = self._kept(y.shape[-2], m)
+        if self.problem.objective.exponential:
+            # The certainty-equivalent stage needs every row; the regressor's rows are cut like the others.
+            self._certainty_rows = self._certainty_rows + StepRows.of(linear, y)
+            self._rows.append((X if keep is None else X[:, keep], keep, None))
+            return
         if len(linear):
             self._normal = self._normal + within_state(linear, y)
         centred = (y - y.mean(axis=1, keepdims=True)) * (m / (m - 1))
-        # Keep every stride-th state: ceil(states / stride) states of m rows each stay within the cap.
-        stride = -(-self._states // max(1, self.max_rows_per_step // m))
-        if stride > 1:  # the same states at every decision time
-            keep = (self._seen + np.arange(len(y))) % stride == 0
+        if keep is not None:
             X, centred, linear = X[:, keep], centred[keep], linear[:, keep]
-        self._seen += len(y)
         # The linear stage's terms centred within states and rescaled like the targets, so that the
         # residual the trees fit is (M / (M - 1)) (y - theta . x) centred: the same estimator of Q up to
         # a function of the state, less the linear stage (not less (M - 1) / M of it).
         linear = (linear - linear.mean(axis=2, keepdims=True)) * (m / (m - 1))
         self._rows.append((X.reshape(len(X), -1).T, centred.reshape(-1), linear.reshape(len(linear), centred.size).T))
 
+    def _kept(self, n: int, m: int) -> np.ndarray | None:
+        """Which of the next ``n`` states the regressor keeps (None: all): every stride-th, so that
+        ceil(states / stride) states of m rows each stay within ``max_rows_per_step``, the same states
+        at every decision time."""
+        stride = -(-self._states // max(1, self.max_rows_per_step // m))
+        keep = (self._seen + np.arange(n)) % stride == 0 if stride > 1 else None
+        self._seen += n
+        return keep
+
+    def _certainty_equivalent_rows(self, k: int) -> None:
+        """Under the exponential objective: the linear stage's certainty-equivalent fit, and the
+        regressor's rows (design, within-state residual of each row's certainty-equivalent target)."""
+        action = np.array([bool(target_part(term)) for term in self.linear_terms])
+        coef, target = certainty_equivalent_fit(self._certainty_rows, self.problem.objective.risk_aversion,
+                                                self.ridge, action)
+        self.linear_coef_[k] = coef
+        residual = target - np.tensordot(coef, np.concatenate(self._certainty_rows.designs, axis=1), axes=1)
+        m = residual.shape[1]
+        residual = (residual - residual.mean(axis=1, keepdims=True)) * (m / (m - 1))
+        self._certainty_rows = StepRows()
+        rows, start = [], 0
+        for X, keep, _ in self._rows:
+            n = len(keep) if keep is not None else X.shape[1]
+            part = residual[start:start + n]
+            start += n
+            part = part if keep is None else part[keep]
+            rows.append((X.reshape(len(X), -1).T, part.reshape(-1), None))
+        self._rows = rows
+
     def _finish_step(self, k: int) -> None:
+        if self.problem.objective.exponential:
+            self._certainty_equivalent_rows(k)
         X = np.concatenate([x for x, _, _ in self._rows])
         y = np.concatenate([t for _, t, _ in self._rows])
-        if len(self.linear_terms):
+        if len(self.linear_terms) and not self.problem.objective.exponential:
             self.linear_coef_[k] = self._normal.solve(self.ridge)
             y = y - np.concatenate([lin for _, _, lin in self._rows]) @ self.linear_coef_[k]
         self._rows = []

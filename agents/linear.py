@@ -13,8 +13,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent, return_moment_sums
+from agents.certainty import StepRows, certainty_equivalent_fit
 from agents.dataset import Transitions
-from agents.features import combination, polynomial_basis
+from agents.features import combination, level_basis, polynomial_basis, target_part
 from hedge_env.problem import HedgingProblem
 
 
@@ -57,12 +58,18 @@ class NormalEquations:
 class LinearBasisAgent(BackwardQAgent):
     """Q_k(s, a) = known cost part + theta_k . basis(s, a), theta_k by ridge least squares.
 
+    Under the exponential objective theta_k comes from the certainty-equivalent recursion
+    instead (agents.certainty: least squares, then a Poisson fit of the exponentiated
+    residual), over every row rather than within states, with ``level_basis`` terms added to
+    the basis; ``smoothing`` is not used there.
+
     Parameters
     ----------
     problem : HedgingProblem
     basis : tuple of str, optional
         Basis terms (see agents.features); default ``POLYNOMIAL_BASIS`` and, per
         observed factor, its ``FACTOR_TERMS`` (agents.features.polynomial_basis).
+        The exponential objective adds the ``level_basis`` terms the basis lacks.
     ridge : float
         Ridge penalty relative to each column's sum of squares.
     smoothing : float
@@ -95,30 +102,47 @@ class LinearBasisAgent(BackwardQAgent):
 
     @property
     def terms(self) -> tuple[str, ...]:
-        return polynomial_basis(tuple(self.factor_names)) if self.basis is None else tuple(self.basis)
+        factors = tuple(self.factor_names)
+        exponential = self.problem.objective.exponential
+        terms = polynomial_basis(factors, exponential) if self.basis is None else tuple(self.basis)
+        if exponential:
+            terms += tuple(term for term in level_basis(factors) if term not in terms)
+        return terms
 
     def _setup(self) -> None:
         self.coef_ = np.zeros((self.problem.schedule.steps, len(self.terms)))
-        self.statistics_: dict[int, NormalEquations] = {}
+        self.statistics_: dict[int, NormalEquations | StepRows | None] = {}
 
     def _start_step(self, k: int) -> None:
-        self.statistics_[k] = NormalEquations.empty(len(self.terms))
+        exponential = self.problem.objective.exponential
+        self.statistics_[k] = StepRows() if exponential else NormalEquations.empty(len(self.terms))
 
     def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
-        self.statistics_[k] = self.statistics_[k] + within_state(X, y)
+        self.statistics_[k] = self.statistics_[k] + self._statistics(X, y)
+
+    def _statistics(self, X: np.ndarray, y: np.ndarray) -> NormalEquations | StepRows:
+        return StepRows.of(X, y) if self.problem.objective.exponential else within_state(X, y)
 
     def _finish_step(self, k: int) -> None:
+        statistics = self.statistics_[k]
+        if isinstance(statistics, StepRows):
+            action = np.array([bool(target_part(term)) for term in self.terms])
+            self.coef_[k] = certainty_equivalent_fit(statistics, self.problem.objective.risk_aversion, self.ridge,
+                                                     action)[0]
+            self.statistics_[k] = None  # the rows are large; the coefficients are what is kept
+            return
         later = k + 1 < self.problem.schedule.steps
         prior = self.coef_[k + 1] if later else None
-        self.coef_[k] = self.statistics_[k].solve(self.ridge, prior, self.smoothing if later else 0.0)
+        self.coef_[k] = statistics.solve(self.ridge, prior, self.smoothing if later else 0.0)
 
     def _predict(self, k: int, state, targets: np.ndarray) -> np.ndarray:
         return combination(self.terms, self.coef_[k], state, targets)
 
-    def step_statistics(self, transitions: Transitions, k: int) -> NormalEquations:
+    def step_statistics(self, transitions: Transitions, k: int) -> NormalEquations | StepRows:
         """Normal equations of decision time k from one block of transitions, using the fitted
-        coefficients of later times: what one worker contributes before the sum and the solve."""
-        return within_state(*self._regression_rows(transitions, k))
+        coefficients of later times: what one worker contributes before the sum and the solve
+        (under the exponential objective the rows themselves)."""
+        return self._statistics(*self._regression_rows(transitions, k))
 
     def fit_map(self, map_chunks, progress=None):
         """The fit of :meth:`fit` with each chunk's work done where the chunk is held.

@@ -2,10 +2,12 @@
 
     python -m benchmarks.agents [--config FILE ...] [--costs 0.001,0.005] [--smoothing 0,0.3,1,3,10,100]
 
-Per config (default: the GBM reference case, whose sweep gives 10 and 50 bps, and
-configs/heston.toml at ``--costs``): every policy's held-out objective, the share
-of the optimum's gain over the reference hedge it captures ((policy - reference) /
-(optimum - reference), paired on the same paths, 95% bootstrap CI over paths),
+Per config (default: the GBM reference case, whose sweep gives 10 and 50 bps, the
+same under exponential utility, and configs/heston.toml at ``--costs``): every
+policy's held-out objective (the certainty equivalent under exponential utility),
+the share of the optimum's gain over the reference hedge it captures ((policy -
+reference) / (optimum - reference), paired on the same paths, 95% bootstrap CI
+over batches of paths),
 its paired difference from the tuned Whalley-Wilmott band, and fit times. The
 optimum is the config's ``grid_dp`` (GBM) or ``heston_grid_dp`` agent (added
 when the config has none); the reference is the config's
@@ -31,25 +33,25 @@ from agents.dataset import Exploration, collect
 from agents.linear import LinearBasisAgent
 from hedge_env.rollout import rollout_many
 from rehedge.build import training_path_set
+from rehedge.compare import objective_versus, resample_batches, resampled_objective
 from rehedge.config import load_variants, parse_config
 from rehedge.training import train
 
 BOOTSTRAP = 1000
 
 
-def share_with_ci(policy: np.ndarray, delta: np.ndarray, optimum: np.ndarray, rng) -> tuple[float, float, float]:
-    """Share of the optimum's gain over the reference (``delta``), with a paired bootstrap 95% interval
-    over paths."""
-    gain, best = policy - delta, optimum - delta
-    share = gain.mean() / best.mean()
-    rows = rng.integers(0, gain.size, size=(BOOTSTRAP, gain.size))
-    shares = gain[rows].mean(axis=1) / best[rows].mean(axis=1)
-    low, high = np.quantile(shares, [0.025, 0.975])
-    return float(share), float(low), float(high)
+def share_with_ci(results, name: str, reference: str, optimum: str, seed: int) -> tuple[float, float, float]:
+    """Share of the optimum's gain over the reference in the objective (mean summed reward, or the
+    certainty equivalent under exponential utility), with a paired bootstrap 95% interval over paths."""
+    resamples = resample_batches(results[reference].n_paths, BOOTSTRAP, seed)
+    (value, values), (base, bases), (best, bests) = (resampled_objective(results[key], resamples)
+                                                     for key in (name, reference, optimum))
+    low, high = np.quantile((values - bases) / (bests - bases), [0.025, 0.975])
+    return float((value - base) / (best - base)), float(low), float(high)
 
 
 OPTIMA = ("grid_dp", "heston_grid_dp")
-DEFAULT_CONFIGS = ("configs/reference-gbm.toml", "configs/heston.toml")
+DEFAULT_CONFIGS = ("configs/reference-gbm.toml", "configs/reference-exponential.toml", "configs/heston.toml")
 
 
 def variants(path: str, costs: list[float]):
@@ -79,17 +81,16 @@ def main() -> None:
     parser.add_argument("--figure", default="runs/agents-per-step-vs-pooled.png")
     parser.add_argument("--smoothing", default="", help="e.g. 0,0.3,1,3,10,100: the GBM smoothing figure")
     args = parser.parse_args()
-    rng = np.random.default_rng(0)
     figure_rows = []
     costs = [float(x) for x in args.costs.split(",")]
     for path in args.config or DEFAULT_CONFIGS:
         for config in variants(path, costs):
-            figure_rows += _compare(config, rng, args.smoothing)
+            figure_rows += _compare(config, args.smoothing)
     if figure_rows:
         _figure(figure_rows, Path(args.figure))
 
 
-def _compare(config, rng, smoothing: str) -> list:
+def _compare(config, smoothing: str) -> list:
     started = time.perf_counter()
     training = train(config)
     train_s = time.perf_counter() - started
@@ -97,21 +98,21 @@ def _compare(config, rng, smoothing: str) -> list:
     policies = training.policies
     heldout = training.heldout_market or market
     results = rollout_many(problem, policies, heldout, config.data.heldout_paths, config.data.heldout_seed)
-    optimum_name = next(spec.name for spec in config.agents if spec.kind in OPTIMA)
-    reference_name = config.report.reference_policy
-    reference, optimum = results[reference_name].reward, results[optimum_name].reward
-    band = results["whalley_wilmott"].reward
+    optimum = next(spec.name for spec in config.agents if spec.kind in OPTIMA)
+    reference = config.report.reference_policy
+    seed = config.data.heldout_seed + 1
+    versus_band = objective_versus(results, "whalley_wilmott", BOOTSTRAP, seed)
+    objective = "certainty equivalent" if problem.objective.exponential else "objective"
     print(f"\n{config.name}: cost {config.frictions.cost_rate * 1e4:g} bps, "
           f"{config.data.train_paths:,} training / {config.data.heldout_paths:,} held-out paths "
-          f"(training {train_s:.1f} s); shares of the gain of {optimum_name} over {reference_name}")
+          f"(training {train_s:.1f} s); shares of the gain of {optimum} over {reference} in the {objective}")
     print(f"{'policy':<24}{'objective':>11}{'share of gain [95% CI]':>30}{'minus WW band [95% CI]':>30}{'fit s':>8}")
     for name, result in sorted(results.items(), key=lambda item: -item[1].objective_value):
-        share, low, high = share_with_ci(result.reward, reference, optimum, rng)
-        diff = result.reward - band
-        half = 1.96 * diff.std(ddof=1) / np.sqrt(diff.size)
+        share, low, high = share_with_ci(results, name, reference, optimum, seed)
+        band = versus_band[name]
         fit = training.timings.get(f"fit_{name}_s", training.timings.get("tune_s") if name in training.tuning else 0.0)
         print(f"{name:<24}{result.objective_value:>11.5f}{share:>12.3f} [{low:.3f}, {high:.3f}]"
-              f"{diff.mean():>14.5f} [{diff.mean() - half:+.5f}, {diff.mean() + half:+.5f}]{fit:>8.1f}")
+              f"{band['mean']:>14.5f} [{band['ci_low']:+.5f}, {band['ci_high']:+.5f}]{fit:>8.1f}")
     if not smoothing or config.market.model != "gbm":
         return []
     # One regression per decision time against pooling: the same transitions, growing smoothing.
@@ -125,9 +126,8 @@ def _compare(config, rng, smoothing: str) -> list:
     base = training.agents[spec.name]
     for value in [float(x) for x in smoothing.split(",")]:
         agent = LinearBasisAgent(**{**base.get_params(), "smoothing": value}).fit(transitions)
-        reward = rollout_many(problem, {"a": agent}, heldout, config.data.heldout_paths,
-                              config.data.heldout_seed)["a"].reward
-        share, low, high = share_with_ci(reward, reference, optimum, rng)
+        smoothed = rollout_many(problem, {"a": agent}, heldout, config.data.heldout_paths, config.data.heldout_seed)
+        share, low, high = share_with_ci({**results, **smoothed}, "a", reference, optimum, seed)
         rows.append((config.frictions.cost_rate, value, share, low, high))
         print(f"  linear, smoothing {value:>6g}: share of the optimum's gain {share:.3f} [{low:.3f}, {high:.3f}]")
     return rows

@@ -1,17 +1,37 @@
 """Reward and risk measures.
 
-The training reward is a per-step mean-variance penalty,
-``r = dW - kappa / 2 * dW**2`` with kappa the risk aversion per currency
-unit. Evaluation looks at the whole distribution of total P&L: losses are
+Two objectives (``Objective.kind``):
+
+- ``mean_variance`` (the default): the per-step penalty
+  ``r = dW - kappa / 2 * dW**2`` with kappa the risk aversion per currency
+  unit; a policy's objective is the mean over paths of its summed rewards.
+- ``exponential``: exponential (constant absolute risk aversion) utility of
+  the terminal P&L W_T, with gamma = ``risk_aversion`` per currency unit. A
+  policy's objective is the certainty equivalent
+  ``CE = -1/gamma log E[exp(-gamma W_T)]`` over paths (computed with a
+  log-sum-exp, so no exponent overflows). The per-step reward is the
+  telescoping increment of the utility ``u(W) = (1 - exp(-gamma W)) / gamma``,
+  ``r_k = u(W_{k+1}) - u(W_k) = exp(-gamma W_k) (1 - exp(-gamma dW)) / gamma``:
+  an episode's summed reward is then exactly its terminal utility u(W_T), so
+  a reinforcement learner that maximises expected return maximises expected
+  utility, whose certainty equivalent is ``-log(1 - gamma E[u]) / gamma``.
+  The increment depends on the wealth W_k gathered so far (the price of that
+  exactness: utility is not additive over steps); the batch agents do not
+  read it, they fit the certainty-equivalent recursion on the step P&L.
+
+Evaluation looks at the whole distribution of total P&L: losses are
 positive numbers in VaR and CVaR.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import logsumexp
+
+OBJECTIVE_KINDS = ("mean_variance", "exponential")
 
 
 @dataclass(frozen=True)
@@ -21,20 +41,40 @@ class Objective:
     Parameters
     ----------
     risk_aversion : float
-        kappa, per currency unit, in the per-step reward.
+        kappa, per currency unit, in the per-step reward (mean-variance), or
+        gamma, the absolute risk aversion of the exponential utility.
     var_levels : tuple of float
         Confidence levels of VaR and CVaR, e.g. (0.95, 0.99).
     entropic_risk_aversion : float or None
         theta of the entropic risk ``log E[exp(-theta X)] / theta``; None uses
         ``risk_aversion`` (and skips the measure when that is 0).
+    kind : str
+        ``"mean_variance"`` or ``"exponential"`` (see the module's text).
     """
 
     risk_aversion: float = 0.0
     var_levels: tuple[float, ...] = (0.95, 0.99)
     entropic_risk_aversion: float | None = None
+    kind: str = "mean_variance"
 
-    def reward(self, pnl):
-        """Per-step reward of a wealth change ``pnl`` (float or array)."""
+    def __post_init__(self) -> None:
+        if self.kind not in OBJECTIVE_KINDS:
+            raise ValueError(f"objective kind {self.kind!r} is not one of {', '.join(OBJECTIVE_KINDS)}")
+        if self.exponential and not self.risk_aversion > 0:
+            raise ValueError("an exponential objective needs risk_aversion > 0")
+
+    @property
+    def exponential(self) -> bool:
+        return self.kind == "exponential"
+
+    def reward(self, pnl, wealth=0.0):
+        """Per-step reward of a wealth change ``pnl`` (float or array); ``wealth``, the P&L gathered
+        before the step, is read only by the exponential objective."""
+        if self.exponential:
+            gamma = self.risk_aversion
+            if isinstance(pnl, float):
+                return -math.exp(-gamma * wealth) * math.expm1(-gamma * pnl) / gamma
+            return np.exp(-gamma * wealth) * -np.expm1(-gamma * pnl) / gamma
         if not self.risk_aversion:
             return pnl
         # pnl - (kappa / 2) pnl^2 in one buffer for arrays: the same bits, as negation is exact.
@@ -42,6 +82,13 @@ class Objective:
         reward *= -0.5 * self.risk_aversion
         reward += pnl
         return reward
+
+    def score(self, pnl: np.ndarray, reward: np.ndarray) -> float:
+        """A policy's objective from its per-path total P&L and summed rewards: the mean summed
+        reward (mean-variance) or the certainty equivalent of the P&L (exponential)."""
+        if self.exponential:
+            return certainty_equivalent(pnl, self.risk_aversion)
+        return float(np.mean(reward))
 
     @property
     def entropic_theta(self) -> float:
@@ -83,6 +130,11 @@ def conditional_value_at_risk(pnl: np.ndarray, level: float, presorted: bool = F
     if whole < ordered.size:
         total += (tail - whole) * ordered[whole]
     return float(-total / tail)
+
+
+def certainty_equivalent(pnl: np.ndarray, gamma: float) -> float:
+    """``-1/gamma log E[exp(-gamma X)]``: the sure amount worth as much as ``pnl`` under exponential utility."""
+    return -entropic_risk(pnl, gamma)
 
 
 def entropic_risk(pnl: np.ndarray, theta: float) -> float:

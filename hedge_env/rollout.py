@@ -29,7 +29,9 @@ class HedgeResult:
     Money in currency; ``traded_shares`` is total shares traded, ``trades``
     the number of non-zero trades, both including the unwind at the horizon.
     ``pnl`` is the total P&L against the initial mark; ``reward`` is the sum
-    of per-step rewards (its mean is the objective). ``holdings`` (n_paths,
+    of per-step rewards (its mean is the mean-variance objective; under the
+    exponential objective the terminal utility, and the objective is the
+    certainty equivalent of ``pnl``). ``holdings`` (n_paths,
     steps), in shares, is kept only on request.
     """
 
@@ -54,7 +56,7 @@ class HedgeResult:
 
     @property
     def objective_value(self) -> float:
-        return float(self.reward.mean())
+        return self.objective.score(self.pnl, self.reward)
 
     def summary(self) -> pd.Series:
         """One row of metrics: objective, P&L distribution, costs and trading activity."""

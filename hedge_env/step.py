@@ -262,8 +262,11 @@ def hedge_step(
         trades += unwind > 0
 
     next_state = HedgeState(state.k + 1, spot_next, impact, holding, cash, mark_next, delta_next)
+    objective = problem.objective
+    # The exponential objective's reward reads the wealth before the step (the P&L gathered so far).
+    wealth = state.wealth() if objective.exponential else 0.0
     return StepOutcome(
-        next_state, target, pnl, problem.objective.reward(pnl), hedge_gain, book_change, financing,
+        next_state, target, pnl, objective.reward(pnl, wealth), hedge_gain, book_change, financing,
         trading_cost, impact_cost, traded_shares, trades,
     )
 

@@ -67,6 +67,7 @@ def build_problem(config: Config) -> HedgingProblem:
             risk_aversion=config.objective.risk_aversion,
             var_levels=tuple(config.objective.var_levels),
             entropic_risk_aversion=config.objective.entropic_risk_aversion,
+            kind=config.objective.kind,
         ),
         schedule=Schedule(
             steps=config.schedule.steps,

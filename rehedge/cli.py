@@ -177,7 +177,8 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
         console.print(caution, highlight=False)
     reference = evaluation.reference
     if reference in evaluation.results:
-        console.print(f"objective difference from {reference}, paired over paths, bootstrap 95% CI "
+        objective = "certainty equivalent" if cfg.objective.kind == "exponential" else "objective"
+        console.print(f"{objective} difference from {reference}, paired over paths, bootstrap 95% CI "
                       f"({evaluation.bootstrap_samples} resamples, seed {evaluation.bootstrap_seed}):", highlight=False)
         for record in records:
             if record["name"] != reference:
@@ -301,6 +302,10 @@ def run(
         report_variants(run_dirs)
 
 
+OBJECTIVE_WORDS = {"mean_variance": "mean-variance objective",
+                   "exponential": "exponential utility (a utility-indifference price)"}
+
+
 @app.command()
 def quote(
     source: Path = typer.Argument(..., help="TOML config file, or a run folder."),
@@ -311,7 +316,7 @@ def quote(
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
     threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
 ) -> None:
-    """Bid and ask per policy: the premium the kept risk justifies (mean-variance and CVaR 95)."""
+    """Bid and ask per policy: the premium the kept risk justifies (indifference under the objective, and CVaR 95)."""
 
     cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or (), threads)
 
@@ -319,7 +324,7 @@ def quote(
     if as_json:
         keys = ("mark", "quote_bid", "quote_ask", "cvar_bid", "cvar_ask", "spread_bid", "spread_ask",
                 "spread_bid_vol_points", "spread_ask_vol_points", "vega_per_vol_point")
-        out = {"config": cfg.name, "heldout_paths": n_paths, "heldout_seed": seed,
+        out = {"config": cfg.name, "objective_kind": cfg.objective.kind, "heldout_paths": n_paths, "heldout_seed": seed,
                "quotes": [{"name": r["name"], "kind": r["kind"], **{k: r[k] for k in keys}} for r in rows],
                "caution": CAUTION}
         sys.stdout.write(json.dumps(out, indent=2) + "\n")
@@ -342,8 +347,9 @@ def quote(
     sold = rows[0]["mark"] > 0
     console.print(("ask: the premium to receive for selling this book as configured" if sold else
                    "ask: the premium for taking on this book as configured (negative: paid)")
-                  + " and hedging it with the policy, at which the desk is indifferent under its mean-variance "
-                  + ("objective; bid: the premium to pay for buying it back" if sold else "objective; bid: the same")
+                  + " and hedging it with the policy, at which the desk is indifferent under its "
+                  + OBJECTIVE_WORDS[cfg.objective.kind]
+                  + ("; bid: the premium to pay for buying it back" if sold else "; bid: the same")
                   + " (the opposite book, the policy mirrored). CVaR-95: the mark plus (ask) or minus (bid) the "
                   "95% CVaR of the hedged loss.", highlight=False)
     if any(r["kind"] == "no_hedge" for r in rows):

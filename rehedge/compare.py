@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -20,29 +21,86 @@ from hedge_env.rollout import HedgeResult, PolicyOutputError, rollout_many
 from rehedge.errors import PolicyError
 
 
-def paired_bootstrap(differences: dict[str, np.ndarray], samples: int = 2000, seed: int = 0,
-                     batches: int = 2000, level: float = 0.95) -> dict[str, dict[str, float]]:
-    """Mean of each per-path difference and its percentile bootstrap interval.
-
-    The resampling is over paths, in ``batches`` consecutive batches of paths
-    (iid, like the paths themselves; with fewer paths than batches, one path
-    a batch); the same resamples serve every policy, so the intervals are
-    paired and reproducible from ``seed``.
-    """
-    n = len(next(iter(differences.values())))
+def resample_batches(n: int, samples: int, seed: int, batches: int = 2000):
+    """Bootstrap resamples of ``n`` paths in ``batches`` consecutive batches (iid, like the paths
+    themselves; with fewer paths than batches, one path a batch): the batch starts, the resampled
+    batch indices (samples, groups) and each resample's path count."""
     groups = min(n, batches)
     starts = (np.arange(groups) * n) // groups
     counts = np.diff(np.append(starts, n))
     draws = np.random.default_rng(seed).integers(0, groups, size=(samples, groups))
-    resampled_counts = counts[draws].sum(axis=1)
+    return starts, draws, counts[draws].sum(axis=1)
+
+
+def _interval(name_values: dict[str, tuple[float, np.ndarray]], level: float) -> dict[str, dict[str, float]]:
     tail = (1.0 - level) / 2.0
     out = {}
-    for name, diff in differences.items():
-        sums = np.add.reduceat(diff, starts)
-        means = sums[draws].sum(axis=1) / resampled_counts
-        low, high = np.quantile(means, [tail, 1.0 - tail])
-        out[name] = {"mean": float(diff.mean()), "ci_low": float(low), "ci_high": float(high)}
+    for name, (mean, resampled) in name_values.items():
+        low, high = np.quantile(resampled, [tail, 1.0 - tail])
+        out[name] = {"mean": float(mean), "ci_low": float(low), "ci_high": float(high)}
     return out
+
+
+def paired_bootstrap(differences: dict[str, np.ndarray], samples: int = 2000, seed: int = 0,
+                     batches: int = 2000, level: float = 0.95) -> dict[str, dict[str, float]]:
+    """Mean of each per-path difference and its percentile bootstrap interval.
+
+    The resampling is over paths (:func:`resample_batches`); the same resamples serve every
+    policy, so the intervals are paired and reproducible from ``seed``.
+    """
+    n = len(next(iter(differences.values())))
+    starts, draws, counts = resample_batches(n, samples, seed, batches)
+    return _interval({name: (diff.mean(), np.add.reduceat(diff, starts)[draws].sum(axis=1) / counts)
+                      for name, diff in differences.items()}, level)
+
+
+def resampled_certainty_equivalent(pnl: np.ndarray, gamma: float, resamples) -> tuple[float, np.ndarray]:
+    """``-1/gamma log mean exp(-gamma P&L)`` of all paths and of each resample of
+    :func:`resample_batches`. The exponentials are shifted by the largest exponent, so none
+    overflows (a log-sum-exp)."""
+    starts, draws, counts = resamples
+    exponent = -gamma * pnl
+    shift = exponent.max()
+    sums = np.add.reduceat(np.exp(exponent - shift), starts)
+    return (-(shift + math.log(sums.sum() / pnl.size)) / gamma,
+            -(shift + np.log(sums[draws].sum(axis=1) / counts)) / gamma)
+
+
+def resampled_objective(result: HedgeResult, resamples) -> tuple[float, np.ndarray]:
+    """A policy's objective on all paths and on each resample of :func:`resample_batches`: the mean
+    summed reward, or the certainty equivalent under the exponential objective."""
+    objective = result.objective
+    if objective.exponential:
+        return resampled_certainty_equivalent(result.pnl, objective.risk_aversion, resamples)
+    starts, draws, counts = resamples
+    return float(result.reward.mean()), np.add.reduceat(result.reward, starts)[draws].sum(axis=1) / counts
+
+
+def certainty_equivalent_bootstrap(pnl: dict[str, np.ndarray], reference: str, gamma: float, samples: int = 2000,
+                                   seed: int = 0, batches: int = 2000,
+                                   level: float = 0.95) -> dict[str, dict[str, float]]:
+    """Each policy's certainty equivalent ``-1/gamma log E[exp(-gamma P&L)]`` minus the reference's, and
+    the percentile bootstrap interval of that difference: the resamples of :func:`paired_bootstrap`
+    (the same for every policy), each policy's CE recomputed on each resample."""
+    resamples = resample_batches(len(pnl[reference]), samples, seed, batches)
+    base, base_resampled = resampled_certainty_equivalent(pnl[reference], gamma, resamples)
+    values = {}
+    for name, x in pnl.items():
+        ce, ce_resampled = resampled_certainty_equivalent(x, gamma, resamples)
+        values[name] = (ce - base, ce_resampled - base_resampled)
+    return _interval(values, level)
+
+
+def objective_versus(results: dict[str, HedgeResult], reference: str, samples: int = 2000, seed: int = 0,
+                     batches: int = 2000, level: float = 0.95) -> dict[str, dict[str, float]]:
+    """Each policy's objective minus the reference's on the same paths, with its paired bootstrap
+    interval: per-path reward differences (mean-variance) or certainty equivalents (exponential)."""
+    objective = results[reference].objective
+    if objective.exponential:
+        return certainty_equivalent_bootstrap({name: r.pnl for name, r in results.items()}, reference,
+                                              objective.risk_aversion, samples, seed, batches, level)
+    base = results[reference].reward
+    return paired_bootstrap({name: r.reward - base for name, r in results.items()}, samples, seed, batches, level)
 
 
 @dataclass
@@ -63,9 +121,7 @@ class Evaluation:
         table = pd.DataFrame(rows)
         table.insert(0, "kind", [self.kinds.get(name, "") for name in table.index])
         if self.reference in self.results:
-            base = self.results[self.reference].reward
-            versus = paired_bootstrap({name: r.reward - base for name, r in self.results.items()},
-                                      self.bootstrap_samples, self.bootstrap_seed)
+            versus = objective_versus(self.results, self.reference, self.bootstrap_samples, self.bootstrap_seed)
             for key in ("mean", "ci_low", "ci_high"):
                 table[f"vs_reference_{key}"] = [versus[name][key] for name in table.index]
         if self.quotes:
@@ -161,7 +217,12 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
     short book, the premium of the options sold. Mean-variance indifference:
     ``quote_ask = mark - objective`` (the premium at which the expected summed
     reward plus premium minus mark is zero) and ``quote_bid = mark +
-    objective of the opposite book``; conservative: ``cvar_ask = mark + CVaR95``
+    objective of the opposite book``. Exponential utility: the same with the
+    certainty equivalent discounted from the horizon, ``quote_ask = mark -
+    exp(-r T) CE``: the utility-indifference prices (Hodges and Neuberger
+    1989), exact because the certainty equivalent is cash invariant, the
+    policy does not read the cash, and a premium above the mark earns
+    ``exp(r T)`` by the horizon in the cash account; conservative: ``cvar_ask = mark + CVaR95``
     and ``cvar_bid = mark - CVaR95`` of the opposite book. Spreads over the mark
     are in currency and in volatility points (implied volatility of the quote
     minus the mark volatility, x 100; for a book with no implied volatility at
@@ -179,14 +240,16 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
         leg.shares * float(pricing.vega(spot, leg.strike, leg.expiry_days / marks.days_per_year, marks.volatility,
                                         marks.rate, marks.dividend_yield, leg.is_call)[0])
         for leg in problem.book.legs))
+    # The mean-variance objective is a sum of step rewards, not a horizon amount: it is not discounted.
+    discount = math.exp(-problem.frictions.cash_rate * problem.horizon_years) if problem.objective.exponential else 1.0
     out = {}
     for name, result in evaluation.results.items():
         other = opposite.results[name]
         mine, theirs = result.summary(), other.summary()
         row = {
             "mark": mark,
-            "quote_ask": mark - result.objective_value,
-            "quote_bid": mark + other.objective_value,
+            "quote_ask": mark - discount * result.objective_value,
+            "quote_bid": mark + discount * other.objective_value,
             "cvar_ask": mark + float(mine["cvar_95"]),
             "cvar_bid": mark - float(theirs["cvar_95"]),
             "vega_per_vol_point": vega_point,

@@ -397,8 +397,14 @@ class FrictionsSpec(_Spec):
 class ObjectiveSpec(_Spec):
     """Risk appetite: the reward and the risk measures reported."""
 
+    kind: Literal["mean_variance", "exponential"] = Field(
+        "mean_variance",
+        description=("mean_variance: the mean over paths of summed step rewards dW - kappa/2 dW^2; exponential: "
+                     "the certainty equivalent -1/gamma log E[exp(-gamma P&L)] of the total P&L."),
+    )
     risk_aversion: float = Field(
-        ge=0, description="kappa per currency unit: reward r = dW - kappa/2 * dW^2 per step."
+        ge=0, description=("kappa per currency unit: reward r = dW - kappa/2 * dW^2 per step; under kind = "
+                           "'exponential', gamma, the absolute risk aversion per currency unit (> 0).")
     )
     var_levels: list[Annotated[float, AfterValidator(_check_open_unit)]] = Field(
         default_factory=lambda: [0.95, 0.99], description="Confidence levels for VaR/CVaR, each in (0, 1)."
@@ -422,6 +428,8 @@ class ObjectiveSpec(_Spec):
 
     @model_validator(mode="after")
     def _resolve_entropic(self) -> ObjectiveSpec:
+        if self.kind == "exponential" and not self.risk_aversion > 0:
+            raise _rule("must be > 0 with kind = 'exponential' (gamma of the utility)", "risk_aversion")
         if self.entropic_risk_aversion is None and self.risk_aversion > 0:
             self.entropic_risk_aversion = self.risk_aversion
         return self
@@ -828,6 +836,14 @@ class Config(_Spec):
                                 "true (its state is the spot, the variance and the holding)", "agents", i, "kind")
                 if self.frictions.permanent_impact:
                     raise _rule("heston_grid_dp does not model permanent impact", "agents", i, "kind")
+                if self.objective.kind != "mean_variance":
+                    raise _rule("heston_grid_dp solves objective.kind = 'mean_variance' only", "agents", i, "kind")
+            if agent.kind == "fitted_q" and self.objective.kind == "exponential" and agent.linear_basis == "none":
+                raise _rule("must not be 'none' with objective.kind = 'exponential' (the linear stage carries the "
+                            "value's level across states)", "agents", i, "linear_basis")
+            if agent.kind == "grid_dp" and self.objective.kind == "exponential" and self.frictions.permanent_impact:
+                raise _rule("grid_dp under objective.kind = 'exponential' does not model permanent impact",
+                            "agents", i, "kind")
 
         seen: set[str] = set()
         for section, policies in (("baselines", self.baselines), ("agents", self.agents)):

@@ -109,9 +109,12 @@ def _scenario_html(scored: Scored) -> str:
                       f"impact {frictions.permanent_impact:g}; ADV {frictions.adv_shares:,.0f} shares; borrow fee "
                       f"{format_percent(frictions.borrow_fee)} a year; position limit "
                       f"{'none' if limit is None else f'{limit:,.0f} shares'}"),
-        ("objective", f"mean over paths of the summed step rewards dW - {objective.risk_aversion:g} / 2 dW^2 "
-                      f"(risk aversion per currency unit); VaR/CVaR levels "
-                      f"{', '.join(format_percent(v) for v in objective.var_levels)}"),
+        ("objective", (f"certainty equivalent of the total P&L under exponential utility, -1/gamma log "
+                       f"E[exp(-gamma P&L)], gamma = {objective.risk_aversion:g} per currency unit"
+                       if objective.kind == "exponential" else
+                       f"mean over paths of the summed step rewards dW - {objective.risk_aversion:g} / 2 dW^2 "
+                       f"(risk aversion per currency unit)")
+                      + f"; VaR/CVaR levels {', '.join(format_percent(v) for v in objective.var_levels)}"),
         ("held-out paths", heldout_text(paths, config.data.heldout_paths, metrics.get("heldout_seed"),
                                         config.market.model == "historical")
                            + _dates_text(manifest, "heldout", config.horizon_days)
@@ -238,13 +241,18 @@ def _summary_html(scored: Scored) -> str:
     note = ("Ranked by objective (higher is better), in the same order in every table. Every number is from "
             "this run's metrics.json, formatted; money in the config's currency, costs and P&L per path over "
             "the horizon, VaR and CVaR as positive losses. ")
+    exponential = scored.run.config.objective.kind == "exponential"
     if has_versus:
-        note += (f"The difference from {reference_label} is the mean per-path difference in summed reward, with a "
-                 f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples); "
+        difference = ("difference in certainty equivalent" if exponential else
+                      "mean per-path difference in summed reward")
+        note += (f"The difference from {reference_label} is the {difference}, with a "
+                 f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples of the paths); "
                  "'above' or 'below' when the interval excludes zero. ")
     if "quote_bid" in records[0]:
-        note += ("Bid and ask: mean-variance indifference premiums for the opposite and the configured book; "
-                 "spreads are each quote's distance from the mark, in Black-Scholes implied-volatility points.")
+        note += (("Bid and ask: utility-indifference premiums under exponential utility" if exponential else
+                  "Bid and ask: mean-variance indifference premiums")
+                 + " for the opposite and the configured book; spreads are each quote's distance from the mark, "
+                 "in Black-Scholes implied-volatility points.")
     parts = [f'<h2>Summary</h2><p class="muted">{_e(note)}</p>']
     for title, prefixes in _SUMMARY_TABLES:
         chosen = [c for c in columns if c.key.startswith(prefixes)]

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import math
 import statistics
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -279,6 +280,30 @@ def test_rollout_objective_is_the_mean_of_summed_step_rewards_and_cvar_is_at_lea
     for tag in ("95", "99"):
         assert row[f"cvar_{tag}"] >= row[f"var_{tag}"]
     assert row["cvar_99"] >= row["cvar_95"]
+
+
+def test_exponential_step_rewards_telescope_to_the_terminal_utility_and_the_objective_is_its_certainty_equivalent():
+    # u(W) = (1 - exp(-gamma W)) / gamma: the per-step rewards u(W_{k+1}) - u(W_k) sum to u(W_T) on every
+    # path, with financing, fees, temporary and permanent impact (the wealth the reward reads, cash +
+    # shares x spot + book, must be the P&L gathered so far). Common practice, no source.
+    gamma = 0.05
+    problem = replace(friction_problem(), objective=Objective(risk_aversion=gamma, kind="exponential"))
+    paths = GBMMarket(spot=100.0, volatility=0.25).generate(500, problem.schedule.steps, problem.dt_years, seed=6)
+    result = rollout(problem, DeltaHedge(problem), paths)
+    np.testing.assert_allclose(result.reward, -np.expm1(-gamma * result.pnl) / gamma, rtol=1e-9, atol=1e-12)
+    expected = -math.log(statistics.fmean(math.exp(-gamma * x) for x in result.pnl.tolist())) / gamma
+    assert result.objective_value == pytest.approx(expected, rel=1e-10)
+    assert result.summary()["objective"] == pytest.approx(-result.summary()["entropic_risk"], rel=1e-12)
+    # The same paths under the mean-variance objective: the P&L is the same to the bit.
+    mean_variance = rollout(friction_problem(), DeltaHedge(problem), paths)
+    np.testing.assert_array_equal(mean_variance.pnl, result.pnl)
+
+
+def test_certainty_equivalent_does_not_overflow_where_the_exponent_would():
+    # exp(-gamma x) overflows a double beyond 709; the log-sum-exp does not. Two outcomes -1000 and 0
+    # at gamma 1: CE = -1000 - log(1/2 (1 + e^-1000)) = -1000 + log 2. Common practice, no source.
+    objective = Objective(risk_aversion=1.0, kind="exponential")
+    assert objective.score(np.array([-1000.0, 0.0]), np.zeros(2)) == pytest.approx(-1000.0 + math.log(2.0), rel=1e-12)
 
 
 def test_holdings_are_kept_only_on_request_with_shape_paths_by_steps():

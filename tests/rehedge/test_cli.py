@@ -223,3 +223,37 @@ def test_quote_screen_gives_units_the_books_vega_what_bid_and_ask_mean_and_no_qu
     (row,) = [line for line in done.stdout.splitlines() if line.strip().startswith("no_hedge")]
     assert row.split()[1:] == ["*", "-", "-", "-", "-", "-"]
     assert "not hedging: its premiums price the whole unhedged risk" in text
+
+
+def test_an_exponential_run_ranks_by_certainty_equivalent_and_quotes_indifference_prices(tmp_path):
+    # objective.kind = "exponential": every policy's objective is -1/gamma log mean exp(-gamma P&L) of
+    # its own held-out P&L (recomputed here from heldout.npz), the paired differences are differences
+    # of certainty equivalents, and with no rate the indifference ask is the mark minus the certainty
+    # equivalent (cash invariance of the certainty equivalent, common practice, no source).
+    from hedge_env.objective import certainty_equivalent
+    from tests.scenarios import DELTA, small_gbm
+
+    config = tmp_path / "exponential.toml"
+    config.write_text(small_gbm(
+        "exponential-test", 3, 8, train=600, heldout=1500, chunk=500, cost_rate=0.005,
+        baselines=(DELTA, {"kind": "whalley_wilmott", "risk_aversion": 1.0}),
+        agents=({"kind": "linear"}, {"kind": "grid_dp", "spot_points": 41, "holding_points": 51}),
+        objective={"kind": "exponential", "risk_aversion": 1.0}, report={"bootstrap_samples": 200}))
+    done = rehedge("run", str(config), "--runs-dir", str(tmp_path / "runs"), "--json", "--quiet")
+    assert done.returncode == 0, done.stderr
+    records = json.loads(done.stdout)["policies"]
+    run_dir = next((tmp_path / "runs").iterdir())
+    heldout = np.load(run_dir / "heldout.npz")
+    objectives = {r["name"]: r["objective"] for r in records}
+    for name, value in objectives.items():
+        assert value == pytest.approx(certainty_equivalent(heldout[f"pnl__{name}"], 1.0), rel=1e-12)
+    assert [r["objective"] for r in records] == sorted(objectives.values(), reverse=True)
+    for r in records:
+        assert r["vs_reference"]["mean"] == pytest.approx(r["objective"] - objectives["delta"], abs=1e-12)
+        assert r["quote_ask"] == pytest.approx(r["mark"] - r["objective"], rel=1e-12)
+    html = (run_dir / "report.html").read_text()
+    assert "certainty equivalent of the total P&amp;L under exponential utility" in html
+    assert "utility-indifference premiums" in html
+    quoted = rehedge("quote", str(config), "--quiet")
+    assert quoted.returncode == 0, quoted.stderr
+    assert "exponential utility (a utility-indifference price)" in " ".join(quoted.stdout.split())

@@ -278,6 +278,23 @@ BAD_INPUTS = [
         id="unknown-reference-policy",
     ),
     pytest.param(
+        variant("risk_aversion = 0.001", 'kind = "exponential"\nrisk_aversion = 0'),
+        "objective.risk_aversion: must be > 0 with kind = 'exponential' (gamma of the utility)",
+        id="exponential-without-risk-aversion",
+    ),
+    pytest.param(
+        variant("risk_aversion = 0.001", 'kind = "power"\nrisk_aversion = 0.001'),
+        "objective.kind: must be one of 'mean_variance', 'exponential', got 'power'",
+        id="unknown-objective-kind",
+    ),
+    pytest.param(
+        variant("risk_aversion = 0.001", 'kind = "exponential"\nrisk_aversion = 0.001')
+        + '\n[[agents]]\nkind = "fitted_q"\nlinear_basis = "none"\n',
+        "agents[0].linear_basis: must not be 'none' with objective.kind = 'exponential' (the linear stage "
+        "carries the value's level across states)",
+        id="exponential-fitted-q-without-linear-stage",
+    ),
+    pytest.param(
         variant('name = "unit-test"', 'name = "unit test"'),
         "name: must use only letters, digits, '_', '.', '-' (it names run folders), got 'unit test'",
         id="name-unsafe-for-folders",

@@ -7,7 +7,7 @@ import pytest
 
 from agents.baselines import DeltaHedge, FixedBand, NoHedge
 from hedge_env.env import default_problem
-from rehedge.compare import evaluate_policies, paired_bootstrap
+from rehedge.compare import certainty_equivalent_bootstrap, evaluate_policies, paired_bootstrap
 from rehedge.errors import PolicyError
 
 
@@ -36,6 +36,33 @@ def test_bootstrap_interval_covers_a_known_difference_at_about_the_nominal_rate(
     assert 0.95 - 3 * se - 0.015 <= rate <= 0.95 + 3 * se
 
 
+def test_certainty_equivalent_interval_covers_a_known_difference_at_about_the_nominal_rate():
+    # Normal P&L has a closed-form certainty equivalent, CE(N(mu, s^2)) = mu - gamma s^2 / 2 (the
+    # normal's moment generating function, common practice, no source): N(0.3, 0.5^2) against N(0, 1)
+    # at gamma 1 differ by 0.3 + (1 - 0.25) / 2 = 0.675. Coverage tolerance as in the test above.
+    rng = np.random.default_rng(12)
+    trials, n, truth = 300, 2000, 0.675
+    covered = 0
+    for t in range(trials):
+        pnl = {"ref": rng.standard_normal(n), "p": 0.3 + 0.5 * rng.standard_normal(n)}
+        ci = certainty_equivalent_bootstrap(pnl, "ref", 1.0, samples=800, seed=t, batches=250)["p"]
+        covered += ci["ci_low"] <= truth <= ci["ci_high"]
+    rate = covered / trials
+    se = np.sqrt(0.95 * 0.05 / trials)
+    assert 0.95 - 3 * se - 0.015 <= rate <= 0.95 + 3 * se
+
+
+def test_certainty_equivalent_interval_survives_exponents_a_double_cannot_hold():
+    # exp(1000) overflows; shifting by the largest exponent does not. Shifting a policy's P&L by -1000
+    # shifts its certainty equivalent by -1000 exactly (cash invariance, common practice, no source).
+    rng = np.random.default_rng(3)
+    base = rng.standard_normal(4000)
+    out = certainty_equivalent_bootstrap({"ref": base, "far": base - 1000.0}, "ref", 1.0, samples=200)
+    assert out["far"]["mean"] == pytest.approx(-1000.0, abs=1e-9)
+    assert out["far"]["ci_low"] == pytest.approx(-1000.0, abs=1e-9)
+    assert out["far"]["ci_high"] == pytest.approx(-1000.0, abs=1e-9)
+
+
 def test_bootstrap_is_reproducible_from_its_seed_and_paired_across_policies():
     rng = np.random.default_rng(2)
     base = rng.standard_normal(5000)
@@ -60,26 +87,44 @@ def test_table_is_ranked_by_objective_and_records_keep_the_promised_fields():
         assert record["vs_reference"]["policy"] == "delta"
 
 
-def test_quotes_of_a_zero_cost_delta_hedge_tend_to_the_black_scholes_price_as_rehedging_gets_finer():
+@pytest.mark.parametrize("kind", ["mean_variance", "exponential"])
+def test_quotes_of_a_zero_cost_delta_hedge_tend_to_the_black_scholes_price_as_rehedging_gets_finer(kind):
     # Black-Scholes (1973): with continuous frictionless rehedging the hedged book is riskless, so
     # the premium the risk justifies tends to the Black-Scholes price. With N rehedges the
     # mean-variance quote exceeds it by about kappa/2 times the hedging-error variance, which
-    # falls like 1/N (Kamal and Derman 1999, from memory), and the bid sits below by as much.
+    # falls like 1/N (Kamal and Derman 1999, from memory), and the bid sits below by as much. The
+    # exponential utility's indifference price does the same (Hodges and Neuberger 1989, from
+    # memory): its certainty equivalent is -gamma/2 times the variance to leading order. That case
+    # runs with a 5% rate (marks, drift and cash), where the quote discounts the certainty equivalent.
     from dataclasses import replace
 
+    from hedge_env.book import MarkParameters
     from hedge_env.frictions import Frictions
+    from hedge_env.market import GBMMarket
+    from hedge_env.objective import Objective
     from hedge_env.problem import Schedule
     from rehedge.compare import evaluate_with_quotes
 
     problem, market = default_problem()
+    if kind == "exponential":
+        rate = 0.05
+        problem = replace(problem, objective=Objective(risk_aversion=1.0, kind=kind),
+                          marks=MarkParameters(volatility=0.2, rate=rate))
+        market = GBMMarket(spot=100.0, drift=rate, volatility=0.2)
     excess = []
     for steps in (8, 32, 128):
-        fine = replace(problem, frictions=Frictions(), schedule=Schedule(steps=steps, step_days=30 / steps))
+        fine = replace(problem, frictions=Frictions(cash_rate=problem.marks.rate),
+                       schedule=Schedule(steps=steps, step_days=30 / steps))
         evaluation = evaluate_with_quotes(fine, {"delta": DeltaHedge(fine)}, market, 20000, seed=4)
         q = evaluation.quotes["delta"]
         result = evaluation.results["delta"]
-        # Monte Carlo error of the quote: the standard error of the mean summed reward.
-        se = result.reward.std(ddof=1) / np.sqrt(result.n_paths)
+        # Monte Carlo error of the quote: the standard error of the mean summed reward, or of the
+        # certainty equivalent by the delta method (std of exp(-gamma X) over gamma E[exp(-gamma X)]).
+        if kind == "exponential":
+            weights = np.exp(-result.pnl)
+            se = weights.std(ddof=1) / weights.mean() / np.sqrt(result.n_paths)
+        else:
+            se = result.reward.std(ddof=1) / np.sqrt(result.n_paths)
         excess.append((q["quote_ask"] - q["mark"], q["mark"] - q["quote_bid"], se))
     asks = [a for a, _, _ in excess]
     assert asks[0] > asks[1] > asks[2] > 0
