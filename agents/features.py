@@ -63,12 +63,21 @@ POLYNOMIAL_BASIS = (
 FACTOR_TERMS = ("gap*{f}", "gap*moneyness*{f}", "gap^2*{f}", "abs_gap*{f}")
 
 
+# Terms of the state alone that the exponential objective's fits add: under exponential utility the
+# value's level across next states is not common to the tried targets (how it moves with the next spot
+# is a risk the hedge takes on), so it is fitted. A polynomial in the hedge and gamma: bounded features,
+# so the level cannot blow up off the states a decision time saw. (Tents in moneyness did as well on
+# the reference case but, at early decision times where the outer tents see almost no state, one took
+# a coefficient of 800 whose value at the next step's states was squared by the variance stage, step
+# after step, to 1e146.)
+LEVEL_TERMS = ("1", "hedge", "hedge^2", "hedge^3", "gamma", "gamma^2", "hedge*gamma")
+LEVEL_FACTOR_TERMS = ("{f}", "{f}^2", "{f}*hedge", "{f}*gamma")
+
+
 def level_basis(factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
-    """Terms of the state alone that the exponential objective's fits add: the tents in moneyness (a
-    partition of unity, so they hold the constant too) and, per observed factor, each tent times it.
-    Under exponential utility the value's level across next states is not common to the tried
-    targets: how it moves with the next spot is a risk the hedge takes on, so it is fitted."""
-    return HATS + tuple(f"{hat}*{name}" for name in factor_names for hat in HATS)
+    """The state's terms the exponential objective's fits add: ``LEVEL_TERMS`` and, per observed
+    factor, ``LEVEL_FACTOR_TERMS``."""
+    return LEVEL_TERMS + tuple(term.format(f=name) for name in factor_names for term in LEVEL_FACTOR_TERMS)
 
 
 # What the exponential objective's default basis adds: a curvature in the gap that differs above and
