@@ -109,11 +109,6 @@ def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarra
     return np.negative(known, out=known)
 
 
-def horizon_growth(problem: HedgingProblem, k: int) -> float:
-    """G_k: what one unit of step k's P&L (at t_{k+1}) is worth at the horizon at the cash rate."""
-    return math.exp(problem.frictions.cash_rate * (problem.years_to_horizon(k) - problem.dt_years))
-
-
 def check_anchor(problem: HedgingProblem, anchor: str, factor_names: tuple[str, ...]) -> None:
     """An anchor other than the Black-Scholes delta is a hedge at the mark model's Greeks: the problem
     must give them, and the agent must see the model's state where it has one."""
@@ -286,7 +281,7 @@ class BackwardQAgent(BaseEstimator):
         gap_shares = (targets - state.hedge[:, None]) * notional
         move_surprise, square_surprise, next_moneyness = self._surprises(chunk, k, state, second_moment)
         if problem.objective.exponential:
-            growth = horizon_growth(problem, k)
+            growth = problem.horizon_growth(k)
             y = chunk.rewards[k] * growth - known_part(problem, state, targets, second_moment, growth)
             hedge_surprise = growth * (gap_shares * move_surprise)
             square_gap_surprise = (growth * growth) * (gap_shares * gap_shares * square_surprise)
@@ -339,7 +334,7 @@ class BackwardQAgent(BaseEstimator):
         return known_part(self.problem, state, targets, self.second_moment(state), growth)
 
     def _q(self, k: int, state: StateFeatures, targets: np.ndarray) -> np.ndarray:
-        return self._known(state, targets, horizon_growth(self.problem, k)) + self._predict(k, state, targets)
+        return self._known(state, targets, self.problem.horizon_growth(k)) + self._predict(k, state, targets)
 
     def _limit(self) -> float:
         return self.problem.frictions.position_limit_shares / self.problem.notional_shares

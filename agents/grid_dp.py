@@ -412,23 +412,18 @@ class GridDPAgent(BaseEstimator):
             self.policy_[k, block], self.value_[k, block] = best_targets(level[block], slope[block], charge, c2,
                                                                          self.holdings_)
 
-    def _utility_weight(self, k: int) -> float:
-        """gamma_k: the exponential utility's risk aversion applied to step k's P&L, grown to the horizon
-        at the cash rate (a step's P&L earns interest until then, so it weighs that much more)."""
-        problem = self.problem
-        remaining = problem.horizon_years - (k + 1) * problem.dt_years
-        return problem.objective.risk_aversion * math.exp(problem.frictions.cash_rate * remaining)
-
     def _induct_exponential(self, k, spots, next_spots, weights, value_next) -> None:
         """Exponential utility: with constant absolute risk aversion the value separates from wealth,
         ``E[-exp(-gamma W_T)] = -exp(-gamma W) phi_k(S, h)``, and with ``L = -log phi``
 
             L_k(S, h) = max_a [ -gamma_k P(S, |a - h|) - log E[exp(-gamma_k dW0(S, a, S') - L_{k+1}(S', a))] ]
 
-        (the trade charge separates as in the mean-variance grid; gamma_k from
-        :meth:`_utility_weight`). ``value_`` holds L; ``L / gamma`` is the certainty equivalent of
-        the wealth at the horizon. The expectation is a log-sum-exp over the quadrature nodes."""
-        gamma = self._utility_weight(k)
+        (the trade charge separates as in the mean-variance grid; gamma_k is the risk aversion times
+        the growth of step k's P&L to the horizon at the cash rate: a step's P&L earns interest until
+        then, so it weighs that much more). ``value_`` holds L; ``L / gamma`` is the certainty
+        equivalent of the wealth at the horizon. The expectation is a log-sum-exp over the quadrature
+        nodes."""
+        gamma = self.problem.objective.risk_aversion * self.problem.horizon_growth(k)
         exponent = -gamma * self._no_trade_pnl_all(k, spots, next_spots)          # (spot, action, node)
         if value_next is not None:
             spline = CubicSpline(self.log_spots_, value_next, axis=0)

@@ -36,6 +36,7 @@ import numpy as np
 from numpy.polynomial.hermite_e import hermegauss
 from numpy.polynomial.laguerre import laggauss
 from scipy.interpolate import CubicSpline
+from scipy.special import logsumexp
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
@@ -143,7 +144,9 @@ class HestonGridDPAgent(BaseEstimator):
                 self.variance_nodes, self.spot_nodes) < 2:
             raise ValueError("need spot_points, variance_points, holding_points >= 4 and quadrature nodes >= 2")
         steps = problem.schedule.steps
-        self.reward_coefficients_ = reward_coefficients(problem)
+        exponential = problem.objective.exponential
+        # Under exponential utility Q is kept as -log E[exp(-gamma W_T)]: level - charge x gamma_k, linear.
+        self.reward_coefficients_ = (1.0, 0.0) if exponential else reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
         self.variances_ = self._variance_grid()
         spots = np.exp(self.log_spots_)
@@ -154,7 +157,8 @@ class HestonGridDPAgent(BaseEstimator):
         value_next = None
         for k in reversed(range(steps)):
             next_spots, next_variances, weights = self._transition(k, spots)
-            self._induct(k, spots, next_spots, next_variances, weights, value_next)
+            induct = self._induct_exponential if exponential else self._induct
+            induct(k, spots, next_spots, next_variances, weights, value_next)
             value_next = self.value_[k]
         return self
 
@@ -279,35 +283,44 @@ class HestonGridDPAgent(BaseEstimator):
             out[i] = hedge_step(self.problem, state, held, exogenous, vol_next).pnl.reshape(shape)
         return out
 
-    def _moments(self, k, spots, next_spots, next_variances, weights) -> tuple[np.ndarray, np.ndarray]:
-        """E[dW0] and E[dW0^2] per (spot, variance, action), dW0 the no-trade step's P&L. Where dW0 is
-        affine in the holding on each side of 0 (the borrow fee and a proportional unwind cost bend it
-        there; checked at two probes per state and node) hedge_step runs at the ends of each piece
-        only; else (impact, a fixed cost on the unwind) at every action."""
+    def _affine_pieces(self, k, spots, next_spots, next_variances):
+        """The no-trade P&L at the ends of its affine pieces in the holding, or None. Where dW0 is affine
+        in the holding on each side of 0 (the borrow fee and a proportional unwind cost bend it there;
+        checked at two probes per state and node) hedge_step runs at the ends of each piece only.
+        Returns ``(u, v, piece, fraction)``: ``dW0(a) = u + f v`` on piece ``piece[a]`` at fraction
+        ``fraction[a]``, ``u`` and ``v`` of shape (spot, variance, nodes..., piece)."""
         actions = self.holdings_
+        anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
+        if anchors.size < 2:
+            return None
+        probes = np.array([actions.size // 3, (2 * actions.size) // 3])
+        pnl = self._no_trade_pnl(k, spots, next_spots, next_variances, np.concatenate([anchors, actions[probes]]))
+        anchor_pnl, probe_pnl = pnl[..., : anchors.size], pnl[..., anchors.size:]
+        piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
+        fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
+        start, end = anchor_pnl[..., piece[probes]], anchor_pnl[..., piece[probes] + 1]
+        on_lines = start + fraction[probes] * (end - start)
+        scale = self.problem.notional_shares * self.problem.reference_spot
+        if not np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
+            return None
+        u = anchor_pnl[..., :-1]
+        return u, anchor_pnl[..., 1:] - u, piece, fraction
+
+    def _moments(self, k, spots, next_spots, next_variances, weights) -> tuple[np.ndarray, np.ndarray]:
+        """E[dW0] and E[dW0^2] per (spot, variance, action), dW0 the no-trade step's P&L: from its
+        affine pieces where it has them (:meth:`_affine_pieces`), else (impact, a fixed cost on the
+        unwind) from hedge_step at every action."""
         w = weights[..., None]
         axes = (2, 3)
-        anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
-        if anchors.size >= 2:
-            probes = np.array([actions.size // 3, (2 * actions.size) // 3])
-            pnl = self._no_trade_pnl(k, spots, next_spots, next_variances,
-                                     np.concatenate([anchors, actions[probes]]))
-            anchor_pnl, probe_pnl = pnl[..., : anchors.size], pnl[..., anchors.size:]
-            piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
-            fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
-            start, end = anchor_pnl[..., piece[probes]], anchor_pnl[..., piece[probes] + 1]
-            on_lines = start + fraction[probes] * (end - start)
-            scale = self.problem.notional_shares * self.problem.reference_spot
-            if np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
-                u = anchor_pnl[..., :-1]
-                dv = anchor_pnl[..., 1:] - u
-                mu, mv = (u * w).sum(axis=axes), (dv * w).sum(axis=axes)
-                muu, muv, mvv = (u * u * w).sum(axis=axes), (u * dv * w).sum(axis=axes), (dv * dv * w).sum(axis=axes)
-                f = fraction
-                first = mu[..., piece] + f * mv[..., piece]
-                second = muu[..., piece] + 2.0 * f * muv[..., piece] + f * f * mvv[..., piece]
-                return first, second
-        pnl = self._no_trade_pnl(k, spots, next_spots, next_variances, actions)
+        pieces = self._affine_pieces(k, spots, next_spots, next_variances)
+        if pieces is not None:
+            u, dv, piece, f = pieces
+            mu, mv = (u * w).sum(axis=axes), (dv * w).sum(axis=axes)
+            muu, muv, mvv = (u * u * w).sum(axis=axes), (u * dv * w).sum(axis=axes), (dv * dv * w).sum(axis=axes)
+            first = mu[..., piece] + f * mv[..., piece]
+            second = muu[..., piece] + 2.0 * f * muv[..., piece] + f * f * mvv[..., piece]
+            return first, second
+        pnl = self._no_trade_pnl(k, spots, next_spots, next_variances, self.holdings_)
         return (pnl * w).sum(axis=axes), (pnl * pnl * w).sum(axis=axes)
 
     def _continuation(self, value_next, next_spots, next_variances, weights) -> np.ndarray | float:
@@ -320,6 +333,35 @@ class HestonGridDPAgent(BaseEstimator):
             values = table(np.log(next_spots[i]).ravel(), next_variances[i].ravel())
             out[i] = (values.reshape(*next_spots.shape[1:], -1) * weights[i][..., None]).sum(axis=(1, 2))
         return out
+
+    def _induct_exponential(self, k, spots, next_spots, next_variances, weights, value_next) -> None:
+        """Exponential utility, as agents.grid_dp.GridDPAgent._induct_exponential: ``L = -log phi`` with
+        ``E[-exp(-gamma W_T)] = -exp(-gamma W) phi_k(S, v, h)`` and
+
+            L_k(S, v, h) = max_a [ -gamma_k P - log E[exp(-gamma_k dW0(S, v, a, S', v') - L_{k+1}(S', v', a))] ],
+
+        the expectation a log-sum-exp over the two-dimensional quadrature, one spot at a time."""
+        gamma = self.problem.objective.risk_aversion * self.problem.horizon_growth(k)
+        pieces = self._affine_pieces(k, spots, next_spots, next_variances)
+        table = None if value_next is None else _SpotVarianceTable(self.log_spots_, self.variances_, value_next)
+        sizes = np.abs(self.holdings_[:, None] - self.holdings_[None, :])   # (holding, action)
+        for i in range(spots.size):
+            if pieces is not None:
+                u, dv, piece, fraction = pieces
+                pnl = u[i][..., piece] + fraction * dv[i][..., piece]          # (variance, nodes..., action)
+            else:
+                one = slice(i, i + 1)
+                pnl = self._no_trade_pnl(k, spots[one], next_spots[one], next_variances[one], self.holdings_)[0]
+            exponent = -gamma * pnl
+            if table is not None:
+                exponent -= table(np.log(next_spots[i]).ravel(), next_variances[i].ravel()).reshape(exponent.shape)
+            with np.errstate(divide="ignore"):
+                exponent += np.log(weights[i])[..., None]
+            level = -logsumexp(exponent, axis=(1, 2))                            # (variance, action)
+            slope = np.full_like(level, gamma)
+            self.no_trade_value_[k, i], self.cost_weight_[k, i] = level, slope
+            charge = trade_charge(self.problem, spots[i], sizes)
+            self.policy_[k, i], self.value_[k, i] = best_targets(level, slope, charge, 0.0, self.holdings_)
 
     def _induct(self, k, spots, next_spots, next_variances, weights, value_next) -> None:
         c1, c2 = self.reward_coefficients_
@@ -340,8 +382,11 @@ class HestonGridDPAgent(BaseEstimator):
         return self._best(obs)[0] / self.problem.notional_shares
 
     def value(self, obs) -> np.ndarray:
-        """``V_k`` at observation rows, currency."""
-        return self._best(obs)[1]
+        """``V_k`` at observation rows, currency: the optimal expected sum of rewards from their state on;
+        under exponential utility the certainty equivalent of the wealth at the horizon."""
+        value = self._best(obs)[1]
+        objective = self.problem.objective
+        return value / objective.risk_aversion if objective.exponential else value
 
     def _best(self, obs):
         check_is_fitted(self, "value_")

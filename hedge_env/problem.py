@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Literal
@@ -143,6 +144,10 @@ class HedgingProblem:
 
     def years_to_horizon(self, k: int) -> float:
         return (self.schedule.steps - k) * self.dt_years
+
+    def horizon_growth(self, k: int) -> float:
+        """What one unit of step k's P&L (booked at t_{k+1}) grows to by the horizon in the cash account."""
+        return math.exp(self.frictions.cash_rate * (self.years_to_horizon(k) - self.dt_years))
 
     def days_from_years_to_horizon(self, years_left):
         """Days elapsed at an observation's years to horizon: how policies read time.

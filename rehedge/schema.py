@@ -836,14 +836,12 @@ class Config(_Spec):
                                 "true (its state is the spot, the variance and the holding)", "agents", i, "kind")
                 if self.frictions.permanent_impact:
                     raise _rule("heston_grid_dp does not model permanent impact", "agents", i, "kind")
-                if self.objective.kind != "mean_variance":
-                    raise _rule("heston_grid_dp solves objective.kind = 'mean_variance' only", "agents", i, "kind")
-            if agent.kind == "fitted_q" and self.objective.kind == "exponential" and agent.linear_basis == "none":
-                raise _rule("must not be 'none' with objective.kind = 'exponential' (the linear stage carries the "
-                            "value's level across states)", "agents", i, "linear_basis")
             if agent.kind == "grid_dp" and self.objective.kind == "exponential" and self.frictions.permanent_impact:
                 raise _rule("grid_dp under objective.kind = 'exponential' does not model permanent impact",
                             "agents", i, "kind")
+            if agent.kind == "fitted_q" and self.objective.kind == "exponential" and agent.linear_basis == "none":
+                raise _rule("must not be 'none' with objective.kind = 'exponential' (the linear stage carries the "
+                            "value's level across states)", "agents", i, "linear_basis")
 
         seen: set[str] = set()
         for section, policies in (("baselines", self.baselines), ("agents", self.agents)):
