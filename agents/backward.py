@@ -29,6 +29,11 @@ the gap risk.) The line is used only when the fitted part can follow the
 variance too (a basis term or the anchor reads it): see ``_uses_variance``.
 m1 comes from the given drift or from the training paths.
 
+Under the exponential objective (``objective.kind = "exponential"``) Q is the certainty
+equivalent of the step's P&L and what follows, in money at the horizon: the known part is the
+trade's cost and the gap's one-step risk at gamma, and the targets keep their whole noise, which
+is the risk being priced; agents.certainty fits them (``_regression_rows`` says what it gets).
+
 The greedy action maximises Q over a candidate set that always holds no
 trade, the Black-Scholes hedge, band edges around it
 (``hedge +/- band_widths``, in hedge moves: agents.features.hedge_move) and
@@ -270,8 +275,16 @@ class BackwardQAgent(BaseEstimator):
 
     def _regression_rows(self, chunk: Transitions, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Design, term-major of shape (n_terms, n, M), and targets (n, M) of step k: one row per
-        state and tried action (under the exponential objective, targets (3, n, M): see
-        :meth:`_certainty_equivalent_targets`)."""
+        state and tried action.
+
+        Under the exponential objective the targets are (5, n, M), in money at the horizon (a step's
+        P&L grown by G at the cash rate): ``Y = G dW + V_{k+1}(s') - known``, whose certainty
+        equivalent given (s, a) is ``Q_k(s, a) - known(s, a)``, with no control variate taken out (a
+        term of zero mean changes a certainty equivalent); the hedge gain's surprise ``G gap N (S' -
+        S - S m1)`` and the gap's squared surprise ``G^2 (gap N)^2 ((S' - S)^2 - S^2 m2)`` against the
+        anchor; and the return's surprises ``R - m1`` and ``R^2 - m2``: what agents.certainty needs.
+        With a cash rate the interest that the behaviour path's past P&L earns is in dW, the same for
+        every tried target of a state."""
         problem = self.problem
         state = state_features(problem, chunk.obs[k], self.factor_names, self.anchor)
         targets = chunk.actions[k]

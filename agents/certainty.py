@@ -39,6 +39,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from agents.features import target_part
+
 
 @dataclass
 class StepRows:
@@ -83,13 +85,13 @@ def _controlled(X: np.ndarray, controls: tuple[np.ndarray, ...]) -> np.ndarray:
 
 
 def certainty_equivalent_fit(rows: StepRows, gamma: float, ridge: float,
-                             action: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+                             terms: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
     """Coefficients c with ``x . c ~ CE(Y | s, a)`` to second order (the four least-squares stages
     of the module's text), and each row's certainty-equivalent target (n, M): ``Y - U1 - gamma/2
     (e^2 - U2)`` less the fitted controls, whose mean given (s, a) is the certainty equivalent up
-    to a function of the state (what a further within-state stage can fit the rest of). ``action``
-    marks the terms that depend on the target, the others are the state's (they must span the
-    constant)."""
+    to a function of the state (what a further within-state stage can fit the rest of). ``terms``
+    name the design's rows (agents.features): those of the state alone must span the constant."""
+    action = np.array([bool(target_part(term)) for term in terms])
     X, (y, hedge_surprise, square_surprise, move, square_move) = rows.arrays()
     on_action, on_state = X[action], X[~action]
     n_action, n_state = len(on_action), len(on_state)

@@ -87,6 +87,15 @@ def level_basis(factor_names: tuple[str, ...] = ()) -> tuple[str, ...]:
 EXPONENTIAL_TERMS = ("abs_gap*gap",)
 
 
+def fitted_basis(basis, factor_names: tuple[str, ...], exponential: bool) -> tuple[str, ...]:
+    """A linear fit's terms: ``basis``, or the default ``polynomial_basis`` when None, and under the
+    exponential objective the ``level_basis`` terms it lacks."""
+    terms = polynomial_basis(factor_names, exponential) if basis is None else tuple(basis)
+    if exponential:
+        terms += tuple(term for term in level_basis(factor_names) if term not in terms)
+    return terms
+
+
 def polynomial_basis(factor_names: tuple[str, ...] = (), exponential: bool = False) -> tuple[str, ...]:
     """The linear agent's default basis: ``POLYNOMIAL_BASIS`` (and ``EXPONENTIAL_TERMS`` under the
     exponential objective) and ``FACTOR_TERMS`` of each observed factor."""

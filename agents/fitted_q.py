@@ -29,10 +29,8 @@ from agents.features import (
     basis,
     basis_columns,
     combination,
-    level_basis,
-    polynomial_basis,
+    fitted_basis,
     state_features,
-    target_part,
 )
 from agents.linear import NormalEquations, within_state
 from hedge_env.problem import HedgingProblem
@@ -158,12 +156,8 @@ class FittedQAgent(BackwardQAgent):
         """Terms of the linear stage (empty without one)."""
         if self.linear_basis is None or self.linear_basis == "none":
             return ()
-        factors, exponential = tuple(self.factor_names), self.problem.objective.exponential
-        polynomial = self.linear_basis == "polynomial"
-        terms = polynomial_basis(factors, exponential) if polynomial else tuple(self.linear_basis)
-        if exponential:
-            terms += tuple(term for term in level_basis(factors) if term not in terms)
-        return terms
+        basis = None if self.linear_basis == "polynomial" else self.linear_basis
+        return fitted_basis(basis, tuple(self.factor_names), self.problem.objective.exponential)
 
     def _setup(self) -> None:
         steps = self.problem.schedule.steps
@@ -245,9 +239,8 @@ class FittedQAgent(BackwardQAgent):
     def _certainty_equivalent_rows(self, k: int) -> None:
         """Under the exponential objective: the linear stage's certainty-equivalent fit, and the
         regressor's rows (design, within-state residual of each row's certainty-equivalent target)."""
-        action = np.array([bool(target_part(term)) for term in self.linear_terms])
         coef, target = certainty_equivalent_fit(self._certainty_rows, self.problem.objective.risk_aversion,
-                                                self.ridge, action)
+                                                self.ridge, self.linear_terms)
         self.linear_coef_[k] = coef
         residual = target - np.tensordot(coef, np.concatenate(self._certainty_rows.designs, axis=1), axes=1)
         m = residual.shape[1]

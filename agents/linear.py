@@ -15,7 +15,7 @@ import numpy as np
 from agents.backward import DEFAULT_BAND_WIDTHS, DEFAULT_PARTIAL_MOVES, BackwardQAgent, return_moment_sums
 from agents.certainty import StepRows, certainty_equivalent_fit
 from agents.dataset import Transitions
-from agents.features import combination, level_basis, polynomial_basis, target_part
+from agents.features import combination, fitted_basis
 from hedge_env.problem import HedgingProblem
 
 
@@ -59,9 +59,9 @@ class LinearBasisAgent(BackwardQAgent):
     """Q_k(s, a) = known cost part + theta_k . basis(s, a), theta_k by ridge least squares.
 
     Under the exponential objective theta_k comes from the certainty-equivalent recursion
-    instead (agents.certainty: least squares, then a Poisson fit of the exponentiated
-    residual), over every row rather than within states, with ``level_basis`` terms added to
-    the basis; ``smoothing`` is not used there.
+    instead (agents.certainty: mean and variance by least squares within states, with control
+    variates, and the value's level across states on the ``level_basis`` terms added to the
+    basis); ``smoothing`` is not used there.
 
     Parameters
     ----------
@@ -102,12 +102,7 @@ class LinearBasisAgent(BackwardQAgent):
 
     @property
     def terms(self) -> tuple[str, ...]:
-        factors = tuple(self.factor_names)
-        exponential = self.problem.objective.exponential
-        terms = polynomial_basis(factors, exponential) if self.basis is None else tuple(self.basis)
-        if exponential:
-            terms += tuple(term for term in level_basis(factors) if term not in terms)
-        return terms
+        return fitted_basis(self.basis, tuple(self.factor_names), self.problem.objective.exponential)
 
     def _setup(self) -> None:
         self.coef_ = np.zeros((self.problem.schedule.steps, len(self.terms)))
@@ -126,9 +121,8 @@ class LinearBasisAgent(BackwardQAgent):
     def _finish_step(self, k: int) -> None:
         statistics = self.statistics_[k]
         if isinstance(statistics, StepRows):
-            action = np.array([bool(target_part(term)) for term in self.terms])
             self.coef_[k] = certainty_equivalent_fit(statistics, self.problem.objective.risk_aversion, self.ridge,
-                                                     action)[0]
+                                                     self.terms)[0]
             self.statistics_[k] = None  # the rows are large; the coefficients are what is kept
             return
         later = k + 1 < self.problem.schedule.steps

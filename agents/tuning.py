@@ -2,9 +2,10 @@
 
 A band's risk aversion is not the reward's kappa: left at kappa, the
 Whalley-Wilmott band can be worse than plain delta. So a parameter set to
-"tune" is chosen to maximise the objective (mean summed reward) on the
-training paths: a coarse grid first, then a bounded scalar search between
-the best grid point's neighbours. The same paths serve every trial (common
+"tune" is chosen to maximise the objective (mean summed reward, or the
+certainty equivalent under exponential utility) on the training paths: a
+coarse grid first, then a bounded scalar search between the best grid
+point's neighbours. The same paths serve every trial (common
 random numbers), so the search compares like with like.
 """
 

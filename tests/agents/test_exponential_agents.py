@@ -48,11 +48,11 @@ def _synthetic(rng, n: int, m: int, gamma: float):
 
 def test_the_certainty_equivalent_fit_finds_a_known_answer_within_its_own_noise():
     rng = np.random.default_rng(4)
-    action = np.array([True, True, True, False, False, False])
+    terms = ("gap", "gap^2", "gap*moneyness", "1", "moneyness", "moneyness^2")  # names for the fit: action terms first
     estimates = []
     for _ in range(12):
         rows, truth = _synthetic(rng, 20_000, 8, gamma=2.0)
-        estimates.append(certainty_equivalent_fit(rows, 2.0, 1e-9, action)[0])
+        estimates.append(certainty_equivalent_fit(rows, 2.0, 1e-9, terms)[0])
     estimates = np.array(estimates)
     error = estimates.std(axis=0, ddof=1) / np.sqrt(len(estimates))
     np.testing.assert_array_less(np.abs(estimates.mean(axis=0) - truth), 4.0 * error + 1e-12)

@@ -19,37 +19,37 @@ def test_a_policy_against_itself_has_a_zero_width_interval_at_zero():
     assert (row["vs_reference_mean"], row["vs_reference_ci_low"], row["vs_reference_ci_high"]) == (0.0, 0.0, 0.0)
 
 
-def test_bootstrap_interval_covers_a_known_difference_at_about_the_nominal_rate():
-    # Synthetic paired case with a known answer: differences are normal with mean 0.3.
-    # Coverage over many independent samples must be near 95%; the tolerance is 3 binomial
-    # standard errors of the coverage estimate plus 1.5 points for the percentile method's
-    # small-sample undercoverage (common practice, no source).
-    rng = np.random.default_rng(11)
-    trials, n, truth = 400, 1000, 0.3
+def _assert_nominal_coverage(interval, truth: float, trials: int) -> None:
+    """``interval(t)`` (independent samples for each t) must cover ``truth`` in about 95% of trials:
+    within 3 binomial standard errors of the coverage estimate plus 1.5 points for the percentile
+    method's small-sample undercoverage (common practice, no source)."""
     covered = 0
     for t in range(trials):
-        diff = truth + rng.standard_normal(n) * 2.0
-        ci = paired_bootstrap({"p": diff}, samples=800, seed=t, batches=250)["p"]
+        ci = interval(t)
         covered += ci["ci_low"] <= truth <= ci["ci_high"]
-    rate = covered / trials
     se = np.sqrt(0.95 * 0.05 / trials)
-    assert 0.95 - 3 * se - 0.015 <= rate <= 0.95 + 3 * se
+    assert 0.95 - 3 * se - 0.015 <= covered / trials <= 0.95 + 3 * se
+
+
+def test_bootstrap_interval_covers_a_known_difference_at_about_the_nominal_rate():
+    # Synthetic paired case with a known answer: differences are normal with mean 0.3.
+    rng = np.random.default_rng(11)
+    _assert_nominal_coverage(
+        lambda t: paired_bootstrap({"p": 0.3 + rng.standard_normal(1000) * 2.0}, samples=800, seed=t, batches=250)["p"],
+        0.3, 400)
 
 
 def test_certainty_equivalent_interval_covers_a_known_difference_at_about_the_nominal_rate():
     # Normal P&L has a closed-form certainty equivalent, CE(N(mu, s^2)) = mu - gamma s^2 / 2 (the
     # normal's moment generating function, common practice, no source): N(0.3, 0.5^2) against N(0, 1)
-    # at gamma 1 differ by 0.3 + (1 - 0.25) / 2 = 0.675. Coverage tolerance as in the test above.
+    # at gamma 1 differ by 0.3 + (1 - 0.25) / 2 = 0.675.
     rng = np.random.default_rng(12)
-    trials, n, truth = 300, 2000, 0.675
-    covered = 0
-    for t in range(trials):
-        pnl = {"ref": rng.standard_normal(n), "p": 0.3 + 0.5 * rng.standard_normal(n)}
-        ci = certainty_equivalent_bootstrap(pnl, "ref", 1.0, samples=800, seed=t, batches=250)["p"]
-        covered += ci["ci_low"] <= truth <= ci["ci_high"]
-    rate = covered / trials
-    se = np.sqrt(0.95 * 0.05 / trials)
-    assert 0.95 - 3 * se - 0.015 <= rate <= 0.95 + 3 * se
+
+    def interval(t: int) -> dict:
+        pnl = {"ref": rng.standard_normal(2000), "p": 0.3 + 0.5 * rng.standard_normal(2000)}
+        return certainty_equivalent_bootstrap(pnl, "ref", 1.0, samples=800, seed=t, batches=250)["p"]
+
+    _assert_nominal_coverage(interval, 0.675, 300)
 
 
 def test_certainty_equivalent_interval_survives_exponents_a_double_cannot_hold():
