@@ -13,7 +13,8 @@ reference case gamma times one step's standard deviation is about 0.05), which
 is where discrete rehedging lives. (A Poisson pseudo-likelihood fit of
 ``E[exp(-gamma Y)]`` is exact in the limit but cannot use the control
 variates below; measured on the reference case it reached 94% of the optimum's
-gain at 50 bps and 78% at 10 bps, against 97% and 98% for this fit.)
+gain at 50 bps and 78% at 10 bps on scratch paths, against 97% and 98% for
+this fit; more training paths did not move it.)
 
 Each moment is fitted as the mean-variance fit is, within states (the M
 targets tried at a state share its market move; agents.linear.within_state)
@@ -21,7 +22,9 @@ with control variates of zero mean given the state, plus a level per state on
 the state's own terms (under exponential utility the value's level across next
 states is a risk, not a constant). With ``U1`` the hedge gain's surprise and
 ``U2`` the surprise of the gap's squared move (both from
-agents.backward.BackwardQAgent._regression_rows):
+agents.backward.BackwardQAgent._regression_rows); the return's own surprises
+``R - m1`` and ``R^2 - m2``, times each term, are regressors too (regression-
+adjusted control variates), their coefficients left out of the result:
 
 1. mean within states: least squares of ``Y - U1`` on the target's terms;
 2. variance within states: least squares of ``e^2 - U2`` on them, with
@@ -45,7 +48,7 @@ from agents.features import target_part
 @dataclass
 class StepRows:
     """The rows of one decision time's regression, kept whole: designs (terms, n, M) and targets
-    (3, n, M) (Y, U1, U2) of n states with M tried targets each, in the order they were added (the
+    (5, n, M) (Y, U1, U2, R - m1, R^2 - m2) of n states with M tried targets each, in the order they were added (the
     stages need every row, each after the one before). ``+`` appends another block's states."""
 
     designs: list[np.ndarray] = field(default_factory=list)
