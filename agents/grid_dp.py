@@ -25,6 +25,7 @@ from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
 from agents.grid_numerics import (
+    affine_pieces,
     best_targets,
     decision_indices,
     evaluate_spline,
@@ -332,33 +333,13 @@ class GridDPAgent(BaseEstimator):
         return pnl
 
     def _affine_pieces(self, k, spots, next_spots):
-        """The no-trade P&L at the ends of its affine pieces in the holding, or None.
-
-        Before the last step the no-trade P&L is affine in the holding on each
-        side of 0 (hedge gain, interest, dividends; the borrow fee bends it at
-        0). Then hedge_step runs at the ends of each piece only, plus two
-        probe holdings that must come out on the lines; if they do not, None
-        (every holding must go through hedge_step). The last step (the unwind)
-        always does. Returns ``(u, v, piece, fraction)``: ``dW0(a) = u + f v``
-        on piece ``piece[a]`` at fraction ``fraction[a]``, ``u`` and ``v`` of
-        shape (spot, piece, node).
-        """
-        actions = self.holdings_
+        """The no-trade P&L's affine pieces in the holding (agents.grid_numerics.affine_pieces), ``u``
+        and ``v`` of shape (spot, piece, node); None at the last step (the unwind) or where the
+        step is not affine."""
         if k >= self.problem.schedule.steps - 1:
             return None
-        anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
-        probes = np.array([actions.size // 3, (2 * actions.size) // 3])
-        pnl = self._no_trade_pnl(k, spots, np.concatenate([anchors, actions[probes]]), next_spots)
-        anchor_pnl, probe_pnl = pnl[:, : anchors.size], pnl[:, anchors.size :]
-        piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
-        fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
-        start, end = anchor_pnl[:, piece[probes]], anchor_pnl[:, piece[probes] + 1]
-        on_lines = start + fraction[probes][None, :, None] * (end - start)
-        scale = self.problem.notional_shares * self.problem.reference_spot
-        if not np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
-            return None
-        u = anchor_pnl[:, :-1]
-        return u, anchor_pnl[:, 1:] - u, piece, fraction
+        return affine_pieces(self.problem, lambda held: self._no_trade_pnl(k, spots, held, next_spots),
+                             self.holdings_, axis=1)
 
     def _no_trade_moments(self, k, spots, next_spots, weights) -> tuple[np.ndarray, np.ndarray]:
         """E[dW0] and E[dW0**2] per (spot, action), dW0 the P&L of hedge_step without a trade

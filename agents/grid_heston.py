@@ -41,6 +41,7 @@ from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
 from agents.grid_numerics import (
+    affine_pieces,
     best_targets,
     decision_indices,
     normal_quadrature,
@@ -284,27 +285,11 @@ class HestonGridDPAgent(BaseEstimator):
         return out
 
     def _affine_pieces(self, k, spots, next_spots, next_variances):
-        """The no-trade P&L at the ends of its affine pieces in the holding, or None. Where dW0 is affine
-        in the holding on each side of 0 (the borrow fee and a proportional unwind cost bend it there;
-        checked at two probes per state and node) hedge_step runs at the ends of each piece only.
-        Returns ``(u, v, piece, fraction)``: ``dW0(a) = u + f v`` on piece ``piece[a]`` at fraction
-        ``fraction[a]``, ``u`` and ``v`` of shape (spot, variance, nodes..., piece)."""
-        actions = self.holdings_
-        anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
-        if anchors.size < 2:
-            return None
-        probes = np.array([actions.size // 3, (2 * actions.size) // 3])
-        pnl = self._no_trade_pnl(k, spots, next_spots, next_variances, np.concatenate([anchors, actions[probes]]))
-        anchor_pnl, probe_pnl = pnl[..., : anchors.size], pnl[..., anchors.size:]
-        piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
-        fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
-        start, end = anchor_pnl[..., piece[probes]], anchor_pnl[..., piece[probes] + 1]
-        on_lines = start + fraction[probes] * (end - start)
-        scale = self.problem.notional_shares * self.problem.reference_spot
-        if not np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
-            return None
-        u = anchor_pnl[..., :-1]
-        return u, anchor_pnl[..., 1:] - u, piece, fraction
+        """The no-trade P&L's affine pieces in the holding (agents.grid_numerics.affine_pieces), ``u``
+        and ``v`` of shape (spot, variance, nodes..., piece), or None."""
+        return affine_pieces(self.problem,
+                             lambda held: self._no_trade_pnl(k, spots, next_spots, next_variances, held),
+                             self.holdings_, axis=-1)
 
     def _moments(self, k, spots, next_spots, next_variances, weights) -> tuple[np.ndarray, np.ndarray]:
         """E[dW0] and E[dW0^2] per (spot, variance, action), dW0 the no-trade step's P&L: from its

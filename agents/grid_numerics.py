@@ -69,6 +69,36 @@ def trade_charge(problem: HedgingProblem, spots, sizes):
     return paid
 
 
+def affine_pieces(problem: HedgingProblem, no_trade_pnl, actions: np.ndarray, axis: int):
+    """The no-trade P&L at the ends of its affine pieces in the holding, or None.
+
+    Without a trade a step's P&L is affine in the holding on each side of 0 (hedge gain, interest,
+    dividends; the borrow fee and a proportional unwind cost bend it at 0). So ``no_trade_pnl``
+    (a function of an array of holdings, which it lays along ``axis`` of its result) runs at the ends
+    of each piece only, plus two probe holdings that must come out on the lines; if they do not (impact,
+    a fixed cost on the unwind), None: every holding must go through hedge_step. Returns ``(u, v,
+    piece, fraction)``: ``dW0(a) = u + f v`` on piece ``piece[a]`` at fraction ``fraction[a]``, with
+    ``u`` and ``v`` laid out as ``no_trade_pnl``'s result, the pieces along ``axis``."""
+    anchors = np.unique(np.clip([actions[0], 0.0, actions[-1]], actions[0], actions[-1]))
+    if anchors.size < 2:
+        return None
+    probes = np.array([actions.size // 3, (2 * actions.size) // 3])
+    pnl = no_trade_pnl(np.concatenate([anchors, actions[probes]]))
+    axis = axis % pnl.ndim
+    before = (slice(None),) * axis
+    anchor_pnl, probe_pnl = pnl[before + (slice(None, anchors.size),)], pnl[before + (slice(anchors.size, None),)]
+    piece = np.clip(np.searchsorted(anchors, actions, side="right") - 1, 0, anchors.size - 2)
+    fraction = (actions - anchors[piece]) / (anchors[piece + 1] - anchors[piece])
+    start, end = anchor_pnl[before + (piece[probes],)], anchor_pnl[before + (piece[probes] + 1,)]
+    along = fraction[probes].reshape((-1,) + (1,) * (pnl.ndim - axis - 1))
+    on_lines = start + along * (end - start)
+    scale = problem.notional_shares * problem.reference_spot
+    if not np.allclose(on_lines, probe_pnl, rtol=1e-9, atol=1e-11 * scale):
+        return None
+    u = anchor_pnl[before + (slice(None, -1),)]
+    return u, anchor_pnl[before + (slice(1, None),)] - u, piece, fraction
+
+
 def best_targets(level, slope, charge, c2: float, targets: np.ndarray):
     """The best target and its Q from every holding: ``Q = level - charge x slope + c2 charge^2``,
     ``level`` and ``slope`` of shape (..., target), ``charge`` (..., holding, target) the charge of

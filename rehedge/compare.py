@@ -16,6 +16,7 @@ from agents.policy import Mirrored
 from hedge_env import pricing
 from hedge_env.book import Book
 from hedge_env.market import MarketPaths, PathGenerator
+from hedge_env.objective import certainty_equivalent
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import HedgeResult, PolicyOutputError, rollout_many
 from rehedge.errors import PolicyError
@@ -62,8 +63,7 @@ def resampled_certainty_equivalent(pnl: np.ndarray, gamma: float, resamples) -> 
     exponent = -gamma * pnl
     shift = exponent.max()
     sums = np.add.reduceat(np.exp(exponent - shift), starts)
-    return (-(shift + math.log(sums.sum() / pnl.size)) / gamma,
-            -(shift + np.log(sums[draws].sum(axis=1) / counts)) / gamma)
+    return certainty_equivalent(pnl, gamma), -(shift + np.log(sums[draws].sum(axis=1) / counts)) / gamma
 
 
 def resampled_objective(result: HedgeResult, resamples) -> tuple[float, np.ndarray]:
