@@ -11,12 +11,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from scipy.optimize import brentq
+from scipy.special import logsumexp
 
 from agents.policy import Mirrored
 from hedge_env import pricing
 from hedge_env.book import Book
 from hedge_env.market import MarketPaths, PathGenerator
-from hedge_env.objective import certainty_equivalent
+from hedge_env.objective import certainty_equivalent, conditional_value_at_risk
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import HedgeResult, PolicyOutputError, rollout_many
 from rehedge.errors import PolicyError
@@ -57,13 +58,15 @@ def paired_bootstrap(differences: dict[str, np.ndarray], samples: int = 2000, se
 
 def resampled_certainty_equivalent(pnl: np.ndarray, gamma: float, resamples) -> tuple[float, np.ndarray]:
     """``-1/gamma log mean exp(-gamma P&L)`` of all paths and of each resample of
-    :func:`resample_batches`. The exponentials are shifted by the largest exponent, so none
-    overflows (a log-sum-exp)."""
+    :func:`resample_batches`: a log-sum-exp within each batch (shifted by the batch's own largest
+    exponent), then one across the resample's batches, so no exponent overflows and no batch far
+    below the worst path rounds to zero (a shift by the overall largest would give log 0)."""
     starts, draws, counts = resamples
     exponent = -gamma * pnl
-    shift = exponent.max()
-    sums = np.add.reduceat(np.exp(exponent - shift), starts)
-    return certainty_equivalent(pnl, gamma), -(shift + np.log(sums[draws].sum(axis=1) / counts)) / gamma
+    peaks = np.maximum.reduceat(exponent, starts)
+    sizes = np.diff(np.append(starts, pnl.size))
+    batch_logs = peaks + np.log(np.add.reduceat(np.exp(exponent - np.repeat(peaks, sizes)), starts))
+    return certainty_equivalent(pnl, gamma), -(logsumexp(batch_logs[draws], axis=1) - np.log(counts)) / gamma
 
 
 def resampled_objective(result: HedgeResult, resamples) -> tuple[float, np.ndarray]:
@@ -208,6 +211,10 @@ def implied_book_volatility(problem: HedgingProblem, premium: float) -> float:
     return float(brentq(gap, low, high, xtol=1e-10))
 
 
+# The conservative quotes' level: mark plus the CVaR of the hedged loss at 95%.
+QUOTE_CVAR_LEVEL = 0.95
+
+
 def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation,
            state0=None) -> dict[str, dict[str, float]]:
     """Per policy, the premium the risk justifies, for the book as configured and the opposite book.
@@ -245,13 +252,13 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
     out = {}
     for name, result in evaluation.results.items():
         other = opposite.results[name]
-        mine, theirs = result.summary(), other.summary()
         row = {
             "mark": mark,
             "quote_ask": mark - discount * result.objective_value,
             "quote_bid": mark + discount * other.objective_value,
-            "cvar_ask": mark + float(mine["cvar_95"]),
-            "cvar_bid": mark - float(theirs["cvar_95"]),
+            # From the P&L, not the summary: objective.var_levels need not list 0.95.
+            "cvar_ask": mark + conditional_value_at_risk(result.pnl, QUOTE_CVAR_LEVEL),
+            "cvar_bid": mark - conditional_value_at_risk(other.pnl, QUOTE_CVAR_LEVEL),
             "vega_per_vol_point": vega_point,
         }
         for side in ("ask", "bid"):

@@ -161,3 +161,42 @@ def test_a_policy_naming_a_non_finite_target_stops_the_comparison_in_one_line(va
     assert message.startswith(f"policy 'broken' named a target of {value * problem.notional_shares} shares at "
                               "decision 3 of path ")
     assert message.endswith(": targets must be finite numbers")
+
+
+def test_certainty_equivalent_intervals_stay_finite_when_whole_batches_sit_far_below_the_worst_path():
+    # Exponents spread over thousands: shifting every batch by the overall largest exponent rounds whole
+    # batches to zero, and their log is -inf. Per-batch log-sum-exps, then one across the resample's
+    # batches, keep each resample's certainty equivalent what its own paths give (logsumexp, exact).
+    from scipy.special import logsumexp
+
+    from rehedge.compare import resample_batches, resampled_certainty_equivalent
+
+    rng = np.random.default_rng(5)
+    pnl = 300.0 * rng.standard_normal(4000)
+    pnl[17] = -4000.0  # one path far worse than the rest
+    out = certainty_equivalent_bootstrap({"ref": pnl, "p": pnl + 5.0}, "ref", 1.0, samples=300, batches=400)
+    assert all(np.isfinite(v) for v in out["p"].values())
+    assert out["p"]["ci_low"] == pytest.approx(5.0, abs=1e-9) and out["p"]["ci_high"] == pytest.approx(5.0, abs=1e-9)
+    resamples = resample_batches(pnl.size, 50, seed=2, batches=400)
+    _, resampled = resampled_certainty_equivalent(pnl, 1.0, resamples)
+    starts, draws, counts = resamples
+    bounds = np.append(starts, pnl.size)
+    for row in range(50):
+        paths = np.concatenate([pnl[bounds[b]:bounds[b + 1]] for b in draws[row]])
+        direct = -(logsumexp(-paths) - np.log(paths.size))
+        assert resampled[row] == pytest.approx(direct, rel=1e-12, abs=1e-9)
+
+
+def test_quotes_need_no_cvar_95_among_the_configured_levels():
+    # CVaR-95 quotes come from the P&L itself, whatever objective.var_levels lists.
+    from dataclasses import replace
+
+    from hedge_env.objective import Objective, conditional_value_at_risk
+    from rehedge.compare import evaluate_with_quotes
+
+    problem, market = default_problem()
+    problem = replace(problem, objective=Objective(risk_aversion=problem.objective.risk_aversion, var_levels=(0.9,)))
+    evaluation = evaluate_with_quotes(problem, {"delta": DeltaHedge(problem)}, market, 2000, seed=4)
+    q, result = evaluation.quotes["delta"], evaluation.results["delta"]
+    assert q["cvar_ask"] == pytest.approx(q["mark"] + conditional_value_at_risk(result.pnl, 0.95), rel=1e-12)
+    assert "cvar_95" not in evaluation.to_records()[0]
