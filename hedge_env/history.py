@@ -45,6 +45,10 @@ from hedge_env.market import MARK_VOLATILITY_FACTOR, GivenPaths, MarketPaths, Si
 # Plausible implied volatilities per unit: (low, high, low inclusive).
 _VOLATILITY_RANGE = {"decimal": (0.0, 5.0, False), "percent": (1.0, 500.0, True)}
 _FIRST_ROW = 2  # spreadsheet numbering: the header is row 1
+# The largest move of a close from one row to the next, as a factor either way. Real daily moves of
+# listed shares stay far inside it (the largest index fall in a day was about -20%); a factor past it
+# is a typing error, a unit change or a split the history is not adjusted for.
+MAX_DAILY_FACTOR = 10.0
 
 
 class HistoryError(ValueError):
@@ -114,14 +118,19 @@ class History:
 # ---------------------------------------------------------------------------------------------
 
 
-def _check_field_counts(path: Path, text: str) -> None:
-    """Every non-blank row has as many fields as the header (else pandas would shift columns)."""
+def _check_field_counts(path: Path, text: str) -> list[str]:
+    """Every non-blank row has as many fields as the header (else pandas would shift columns);
+    returns the header's names, stripped."""
     reader = csv.reader(io.StringIO(text))
-    header = next(reader, [])
-    for row in reader:
-        if row and len(row) != len(header):
-            raise HistoryError(f"{path}: row {reader.line_num}: {len(row)} fields, the header (row 1) has "
-                               f"{len(header)}")
+    try:
+        header = next(reader, [])
+        for row in reader:
+            if row and len(row) != len(header):
+                raise HistoryError(f"{path}: row {reader.line_num}: {len(row)} fields, the header (row 1) has "
+                                   f"{len(header)}")
+    except csv.Error as exc:
+        raise HistoryError(f"{path}: row {reader.line_num}: not a readable CSV row ({exc})") from None
+    return [name.strip() for name in header]
 
 
 def load_history(
@@ -160,8 +169,6 @@ def load_history(
         unparsable, non-finite or non-positive price, a missing or
         implausible implied volatility.
     """
-    if implied_volatility_unit not in _VOLATILITY_RANGE:
-        raise ValueError(f"implied_volatility_unit must be 'decimal' or 'percent', got {implied_volatility_unit!r}")
     path = Path(path)
     try:
         raw = path.read_bytes()
@@ -171,6 +178,24 @@ def load_history(
         raise HistoryError(f"{path}: is a directory, not a CSV file") from None
     except OSError as exc:
         raise HistoryError(f"{path}: cannot read ({exc.strerror or exc})") from None
+    return parse_history(raw, path, date_column, close_column, implied_volatility_column, implied_volatility_unit,
+                         date_format)
+
+
+def parse_history(
+    raw: bytes,
+    path: str | Path,
+    date_column: str = "date",
+    close_column: str = "close",
+    implied_volatility_column: str | None = None,
+    implied_volatility_unit: str = "decimal",
+    date_format: str | None = None,
+) -> History:
+    """Validate the bytes of a CSV of daily closes read from ``path`` (named in every error); the
+    parameters, result and rules are those of :func:`load_history`. An application that reads the
+    file itself (regular files only, a size cap) hands the bytes here."""
+    if implied_volatility_unit not in _VOLATILITY_RANGE:
+        raise ValueError(f"implied_volatility_unit must be 'decimal' or 'percent', got {implied_volatility_unit!r}")
     if not raw.strip():
         raise HistoryError(f"{path}: empty file (expected a header row and one row per trading day)")
     try:
@@ -178,7 +203,14 @@ def load_history(
     except UnicodeDecodeError as exc:
         row = raw[: exc.start].count(b"\n") + 1
         raise HistoryError(f"{path}: row {row}: not UTF-8 text (bad byte at offset {exc.start})") from None
-    _check_field_counts(path, text)
+    # Line ends: CR LF, LF or a lone CR (as text mode reads them), so row numbers are lines.
+    text = text.replace("\r\n", "\n").replace("\r", "\n")
+    header = _check_field_counts(path, text)
+    wanted = [date_column, close_column] + ([implied_volatility_column] if implied_volatility_column else [])
+    for column in wanted:
+        if header.count(column) > 1:
+            raise HistoryError(f"{path}: row 1 (header): column {column!r} appears {header.count(column)} times "
+                               "(which one holds the data is ambiguous; rename or drop the others)")
     try:
         # Every cell as text: the rules below parse it and name the row of any bad one. Blank
         # lines are kept as rows so that row numbers stay those of the file.
@@ -187,7 +219,6 @@ def load_history(
     except (pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
         raise HistoryError(f"{path}: not a readable CSV ({' '.join(str(exc).split())})") from None
     table.columns = [str(c).strip() for c in table.columns]
-    wanted = [date_column, close_column] + ([implied_volatility_column] if implied_volatility_column else [])
     for column in wanted:
         if column not in table.columns:
             hint = " (fields must be separated by ',')" if len(table.columns) == 1 and any(
@@ -204,6 +235,13 @@ def load_history(
     if bad.size:
         i = bad[0]
         raise HistoryError(f"{path}: row {rows[i]}: {close_column} must be > 0, got {close[i]:g}")
+    bad = np.flatnonzero(np.abs(np.diff(np.log(close))) > np.log(MAX_DAILY_FACTOR))
+    if bad.size:
+        i = bad[0] + 1
+        raise HistoryError(
+            f"{path}: row {rows[i]}: {close_column} {close[i]:g} after {close[i - 1]:g} on row {rows[i - 1]}: a move "
+            f"of more than a factor of {MAX_DAILY_FACTOR:g} in a day (a data error, or a split the history is not "
+            "adjusted for)")
     implied = None
     if implied_volatility_column:
         implied = _parse_numbers(path, table[implied_volatility_column], rows, implied_volatility_column)
@@ -226,7 +264,11 @@ def _parse_dates(path, text: pd.Series, rows: np.ndarray, column: str, date_form
     missing = np.flatnonzero((text == "").to_numpy())
     if missing.size:
         raise HistoryError(f"{path}: row {rows[missing[0]]}: missing {column}")
-    parsed = pd.to_datetime(text, format=date_format or "ISO8601", errors="coerce")
+    try:
+        parsed = pd.to_datetime(text, format=date_format or "ISO8601", errors="coerce")
+    except ValueError:  # pandas refuses a column of several UTC offsets (or offsets beside none)
+        _refuse_mixed_zones(path, text, rows, column, date_format)
+        raise
     bad = np.flatnonzero(parsed.isna().to_numpy())
     if bad.size:
         i = bad[0]
@@ -242,6 +284,21 @@ def _parse_dates(path, text: pd.Series, rows: np.ndarray, column: str, date_form
                 else f"is before row {rows[i - 1]}'s {days[i - 1]} (dates must increase down the file)")
         raise HistoryError(f"{path}: row {rows[i]}: {column} {days[i]} {rule}")
     return days
+
+
+def _refuse_mixed_zones(path, text: pd.Series, rows: np.ndarray, column: str, date_format: str | None) -> None:
+    """Raise a HistoryError naming the first row whose UTC offset (or lack of one) differs from the
+    first dated row's; rows that are not dates are left to the date rule."""
+    zones = []
+    for i, value in enumerate(text):
+        stamp = pd.to_datetime(value, format=date_format or "ISO8601", errors="coerce")
+        if pd.isna(stamp):
+            continue
+        zones.append((i, stamp.utcoffset()))
+        if zones[-1][1] != zones[0][1]:
+            first = zones[0][0]
+            raise HistoryError(f"{path}: row {rows[i]}: {column} {value!r} has another time zone than row "
+                               f"{rows[first]}'s {text.iloc[first]!r} (one zone, or none, for the whole column)")
 
 
 def _parse_numbers(path, text: pd.Series, rows: np.ndarray, column: str) -> np.ndarray:

@@ -17,13 +17,14 @@ from hedge_env.history import (
     History,
     HistoryError,
     StationaryBootstrap,
-    load_history,
+    parse_history,
     split_history,
 )
 from hedge_env.market import MARKET_MODELS, PathGenerator, PathSet
 from hedge_env.objective import Objective
 from hedge_env.problem import HedgingProblem, Schedule
 from rehedge.errors import ConfigError
+from rehedge.files import HISTORY_BYTES, read_regular
 from rehedge.schema import Config
 
 
@@ -132,8 +133,9 @@ def historical_parts(config: Config) -> tuple[History, History]:
     naming ``market.csv`` (and the row), split problems the split key."""
     market = config.market
     try:
-        history = load_history(market.csv, market.date_column, market.close_column,
-                               market.implied_volatility_column, market.implied_volatility_unit, market.date_format)
+        raw = read_regular(market.csv, HISTORY_BYTES, HistoryError, "CSV file")
+        history = parse_history(raw, market.csv, market.date_column, market.close_column,
+                                market.implied_volatility_column, market.implied_volatility_unit, market.date_format)
     except HistoryError as error:
         raise ConfigError(f"market.csv: {error}", key="market.csv") from None
     key = "market.split_date" if market.split_date is not None else "market.split_fraction"

@@ -25,6 +25,7 @@ from typing import Annotated, Any, Union
 from pydantic import BaseModel, ValidationError
 
 from rehedge.errors import ConfigError, one_line
+from rehedge.files import CONFIG_BYTES, read_regular
 from rehedge.schema import Config, _num, _show
 
 _BARE_KEY_RE = re.compile(r"[A-Za-z0-9_-]+")
@@ -34,25 +35,25 @@ def load_config(path: str | Path) -> Config:
     """Read a TOML config file, validate and resolve it; raises ConfigError."""
     path = Path(path)
     source = str(path)
-    try:
-        raw = path.read_bytes()
-    except FileNotFoundError:
-        raise ConfigError(f"{source}: config file not found", source=source) from None
-    except IsADirectoryError:
-        raise ConfigError(f"{source}: is a directory, not a config file", source=source) from None
-    except OSError as exc:
-        raise ConfigError(f"{source}: cannot read config file ({exc.strerror or exc})", source=source) from None
+    raw = read_regular(path, CONFIG_BYTES, lambda message: ConfigError(message, source=source), "config file")
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ConfigError(
             f"{source}: not UTF-8 text (bad byte at offset {exc.start})", source=source
         ) from None
+    data = _parse_toml(text, source)
+    return parse_config(data, source=source, base_dir=path.parent)
+
+
+def _parse_toml(text: str, source: str) -> dict:
     try:
-        data = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: {_toml_error(exc, text)}", source=source) from None
-    return parse_config(data, source=source, base_dir=path.parent)
+    except RecursionError:
+        raise ConfigError(f"{source}: arrays or tables nested too deep to read (a config needs a few levels)",
+                          source=source) from None
 
 
 def load_variants(path: str | Path) -> list[Config]:
@@ -61,7 +62,7 @@ def load_variants(path: str | Path) -> list[Config]:
     base = load_config(path)
     if not base.sweep:
         return [base]
-    data = tomllib.loads(Path(path).read_text())
+    data = _parse_toml(read_regular(path, CONFIG_BYTES, ConfigError).decode("utf-8"), str(path))
     sweep = data.pop("sweep")
     variants = []
     for values in itertools.product(*sweep.values()):

@@ -9,6 +9,7 @@ import json
 import math
 import os
 import shutil
+import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -24,12 +25,15 @@ from rehedge.tables.reader import (
     FORMAT_VERSION,
     INTERPOLATION_RULE,
     SIDECAR,
+    SIDECAR_HASH_KEY,
     STATE_AXES,
     TARGETS_FILE,
     TableError,
     _leg_dict,
     _sha256,
     band_columns,
+    is_table_folder,
+    sidecar_digest,
     target_columns,
 )
 
@@ -372,33 +376,37 @@ def export_table(
                         "columns": list(target_names if key == "targets" else band_names)}
                   for key, (name, data, rows) in files.items()},
     }
+    meta[SIDECAR_HASH_KEY] = sidecar_digest(meta)
     return _write_folder(folder, {name: data for name, data, _ in files.values()},
                          json.dumps(meta, indent=2, allow_nan=False).encode() + b"\n")
 
 
 def _write_folder(folder: Path, csvs: dict[str, bytes], sidecar: bytes) -> Path:
-    """Build the table under ``NAME.partial`` and rename it into place (replacing an older one)."""
+    """Build the table in a staging folder of its own beside ``folder`` and rename it into place.
+    An existing ``folder`` is replaced only if it is a hedge table; anything else there (a run folder,
+    a file, a folder of other things) is refused and left as it was."""
+    if folder.exists() or folder.is_symlink():
+        if not is_table_folder(folder):
+            raise TableError(f"{folder}: exists and is not a hedge table; a table is written to a new folder "
+                             "or replaces an older table, never anything else")
     folder.parent.mkdir(parents=True, exist_ok=True)
-    staging = folder.with_name(folder.name + ".partial")
-    if staging.exists():
-        shutil.rmtree(staging)
-    staging.mkdir()
+    staging = Path(tempfile.mkdtemp(prefix=f".{folder.name[:40]}.", suffix=".partial", dir=folder.parent))
+    old = None
     try:
         for name, data in csvs.items():
             (staging / name).write_bytes(data)
         (staging / SIDECAR).write_bytes(sidecar)
         if folder.exists():
-            old = folder.with_name(folder.name + ".old")
-            if old.exists():
-                shutil.rmtree(old)
+            old = Path(tempfile.mkdtemp(prefix=f".{folder.name[:40]}.", suffix=".old", dir=folder.parent))
             os.replace(folder, old)
-            os.replace(staging, folder)
-            shutil.rmtree(old)
-        else:
-            os.replace(staging, folder)
+        os.replace(staging, folder)
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
+        if old is not None and not folder.exists():
+            os.replace(old, folder)  # put the older table back
         raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
     return folder
 
 

@@ -34,12 +34,15 @@ from pathlib import Path
 
 import numpy as np
 
-from rehedge.errors import UserError
+from rehedge.errors import UserError, one_line
+from rehedge.files import CONFIG_BYTES, TABLE_BYTES, read_regular
 
 FORMAT = "rehedge-hedge-table"
 # 2: a target outside the band is moved onto its nearer edge (the reading rule's step 4).
 # 3: an optional fourth axis, the observed volatility state (``state_axis`` in the sidecar).
-FORMAT_VERSION = 3
+# 4: the sidecar carries the SHA-256 of its own content (``sidecar_sha256``), and holds no NaN or Infinity.
+FORMAT_VERSION = 4
+SIDECAR_HASH_KEY = "sidecar_sha256"
 SIDECAR = "table.json"
 TARGETS_FILE = "targets.csv"
 BAND_FILE = "band.csv"
@@ -115,16 +118,45 @@ def _sha256(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
+def sidecar_digest(meta: dict) -> str:
+    """SHA-256 of a sidecar's content without its own ``sidecar_sha256``: canonical JSON (sorted keys,
+    no spaces, no NaN), so any edit of a number, a name or a file's checksum changes it."""
+    content = {key: value for key, value in meta.items() if key != SIDECAR_HASH_KEY}
+    return _sha256(json.dumps(content, sort_keys=True, separators=(",", ":"), allow_nan=False).encode())
+
+
+def _refuse_constant(name: str):
+    raise ValueError(f"{name} is not a number a hedge table may hold")
+
+
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(f"{text} is out of a double's range")
+    return value
+
+
+def _bounded_int(text: str) -> int:
+    if len(text.lstrip("-")) > 18:
+        raise ValueError(f"integer {text[:20]}... is too large")
+    return int(text)
+
+
+def _positive(meta: dict, section: str, key: str) -> float:
+    """``meta[section][key]`` as a finite number > 0 (a scale every decision is multiplied by)."""
+    value = meta[section][key]
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not (math.isfinite(value) and value > 0):
+        raise TableError(f"{section}.{key} must be a finite number > 0, got {value!r}")
+    return float(value)
+
+
 def _read_csv(folder: Path, entry: dict, columns: tuple[str, ...], what: str) -> np.ndarray:
     """A CSV file named in the sidecar, checked against its SHA-256, header and row count."""
     name = entry.get("name")
     if not isinstance(name, str) or Path(name).name != name:
         raise TableError(f"{folder / SIDECAR}: files.{what}.name must be a file name in the table folder")
     path = folder / name
-    try:
-        data = path.read_bytes()
-    except OSError as exc:
-        raise TableError(f"{path}: cannot read ({exc.strerror or exc})") from None
+    data = read_regular(path, TABLE_BYTES, TableError, "hedge table file")
     digest = _sha256(data)
     if digest != entry.get("sha256"):
         raise TableError(f"{path}: SHA-256 {digest[:12]}... does not match the sidecar's "
@@ -193,34 +225,33 @@ class HedgeTable:
         table of another format version or whose CSVs fail their SHA-256 or shape checks."""
         sidecar = _sidecar_path(Path(path))
         folder = sidecar.parent
-        try:
-            meta = json.loads(sidecar.read_text(encoding="utf-8"))
-        except FileNotFoundError:
-            raise TableError(f"{sidecar}: no hedge table here (no {SIDECAR})") from None
-        except OSError as exc:
-            raise TableError(f"{sidecar}: cannot read ({exc.strerror or exc})") from None
-        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-            raise TableError(f"{sidecar}: not valid JSON ({exc})") from None
-        if not isinstance(meta, dict) or meta.get("format") != FORMAT:
-            raise TableError(f"{sidecar}: not a hedge table sidecar (format must be {FORMAT!r})")
+        if not sidecar.exists():
+            raise TableError(f"{sidecar}: no hedge table here (no {SIDECAR})")
+        meta = read_sidecar(sidecar)
         version = meta.get("format_version")
         if version != FORMAT_VERSION:
             raise TableError(f"{sidecar}: format_version {version!r} is not supported by this reader "
                              f"(reads version {FORMAT_VERSION}); export the table again with this version")
+        if meta.get(SIDECAR_HASH_KEY) != sidecar_digest(meta):
+            raise TableError(f"{sidecar}: its content does not match its {SIDECAR_HASH_KEY}: the sidecar was "
+                             "changed or is incomplete; export the table again")
         try:
             state = _state_name(meta)
             names = ["days_left", "moneyness"] + ([] if state is None else [state]) + ["holding_shares"]
             files, grid = meta["files"], meta["grid"]
             axes = [(name, np.asarray(grid[name], dtype=float)) for name in names]
-            for key in ("reference_spot", "notional_shares"):
-                float(meta["book"][key])
-            float(meta["marks"]["days_per_year"]), float(meta["schedule"]["horizon_days"])
+            for section, key in (("book", "reference_spot"), ("book", "notional_shares"),
+                                 ("marks", "days_per_year"), ("schedule", "horizon_days")):
+                _positive(meta, section, key)
             meta["policy"]["name"]
+        except TableError as exc:
+            raise TableError(f"{sidecar}: {exc}") from None
         except (KeyError, TypeError, ValueError) as exc:
             raise TableError(f"{sidecar}: sidecar field missing or malformed ({exc})") from None
         for name, nodes in axes:
-            if nodes.ndim != 1 or nodes.size < 1 or not np.all(np.diff(nodes) > 0):
-                raise TableError(f"{sidecar}: grid.{name} must be a list of increasing numbers")
+            if (nodes.ndim != 1 or nodes.size < 1 or not np.isfinite(nodes).all()
+                    or not np.all(np.diff(nodes) > 0)):
+                raise TableError(f"{sidecar}: grid.{name} must be a list of increasing finite numbers")
         targets = _read_csv(folder, files.get("targets", {}), target_columns(state), "targets")
         band = _read_csv(folder, files.get("band", {}), band_columns(state), "band")
         points = math.prod(n.size for _, n in axes[:-1])
@@ -231,6 +262,7 @@ class HedgeTable:
         _check_axis_columns(band, axes[:-1], b_path)
         if not np.isfinite(targets[:, -1]).all():
             raise TableError(f"{t_path}: target_shares must be finite numbers")
+        _check_band(band[:, len(axes) - 1:], b_path)
         return cls(meta, folder, targets[:, -1].copy(), band[:, len(axes) - 1:].T.copy())
 
     # --- decisions ------------------------------------------------------------------------------
@@ -307,6 +339,7 @@ class HedgeTable:
         checks = (
             ("book", legs, meta["book"]["legs"]),
             ("reference spot", float(problem.reference_spot), self.reference_spot),
+            ("notional", float(problem.notional_shares), self.notional_shares),
             ("days per year", float(problem.marks.days_per_year), self.days_per_year),
             ("horizon days", float(problem.schedule.horizon_days), self.horizon_days),
         )
@@ -314,6 +347,52 @@ class HedgeTable:
             if here != there:
                 raise TableError(f"{self.path}: the table was exported for another {what} "
                                  f"({there!r}) than this problem's ({here!r})")
+
+
+def read_sidecar(sidecar: Path) -> dict:
+    """A sidecar's JSON object: a regular file of bounded size, valid JSON without NaN or Infinity
+    and of bounded depth, whose ``format`` names a hedge table; else a one-line TableError."""
+    data = read_regular(sidecar, CONFIG_BYTES, TableError, "hedge table sidecar")
+    try:
+        meta = json.loads(data.decode("utf-8"), parse_constant=_refuse_constant, parse_float=_finite_float,
+                          parse_int=_bounded_int)
+    except RecursionError:
+        raise TableError(f"{sidecar}: not a hedge table sidecar (nested too deep)") from None
+    except (ValueError, UnicodeDecodeError) as exc:  # JSONDecodeError is a ValueError
+        raise TableError(f"{sidecar}: not valid JSON ({one_line(exc)})") from None
+    if not isinstance(meta, dict) or meta.get("format") != FORMAT:
+        raise TableError(f"{sidecar}: not a hedge table sidecar (format must be {FORMAT!r})")
+    return meta
+
+
+def _check_band(band: np.ndarray, path: Path) -> None:
+    """Band edges finite or NaN (no band) together, lower <= upper; targets beyond the holding
+    domain finite."""
+    lower, upper, below, above = band.T
+    if np.isinf(lower).any() or np.isinf(upper).any():
+        raise TableError(f"{path}: band edges must be finite numbers, or NaN where the policy has no band")
+    if (np.isnan(lower) != np.isnan(upper)).any():
+        raise TableError(f"{path}: band_lower_shares and band_upper_shares must be NaN together (no band)")
+    both = ~np.isnan(lower)
+    if (lower[both] > upper[both]).any():
+        row = int(np.flatnonzero(both & (lower > upper))[0]) + 2
+        raise TableError(f"{path}: row {row}: band_lower_shares must be <= band_upper_shares")
+    if not (np.isfinite(below).all() and np.isfinite(above).all()):
+        raise TableError(f"{path}: target_below_shares and target_above_shares must be finite numbers")
+
+
+def is_table_folder(folder: Path) -> bool:
+    """Whether ``folder`` is a hedge table folder (a sidecar of this format, and nothing but table
+    files): the only kind of folder an export may replace."""
+    if not folder.is_dir() or folder.is_symlink():
+        return False
+    if not {p.name for p in folder.iterdir()} <= {SIDECAR, TARGETS_FILE, BAND_FILE}:
+        return False
+    try:
+        read_sidecar(folder / SIDECAR)
+    except TableError:
+        return False
+    return True
 
 
 def _leg_dict(leg) -> dict:

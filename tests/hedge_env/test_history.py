@@ -9,6 +9,7 @@ and read back through the project's own loader.
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import tomllib
@@ -84,6 +85,16 @@ GOOD = "date,close,iv\n2024-01-02,10.0,0.2\n2024-01-03,10.5,0.21\n2024-01-04,10.
     ("date,close\n2024-01-02,10\n2024-01-03,1\udce90\n", {}, "row 3: not UTF-8 text"),
     ("\x00\x01\udcff\udcfe\udc89PNG\r\n\x1a\n", {}, "row 1: not UTF-8 text"),
     ("date,close\n", {}, "no rows after the header"),
+    ("date,close\n2024-01-02T16:00-05:00,10\n2024-01-03T16:00-05:00,11\n2024-01-04T16:00+01:00,12\n", {},
+     "row 4: date '2024-01-04T16:00+01:00' has another time zone than row 2's"),
+    ("date,close\n2024-01-02,10\n2024-01-03T16:00Z,11\n", {}, "row 3: date '2024-01-03T16:00Z' has another time zone"),
+    ("date,close\n2024-01-02,1e300\n2024-01-03,1e-300\n", {},
+     "row 3: close 1e-300 after 1e+300 on row 2: a move of more than a factor of 10 in a day"),
+    ("date,close\n2024-01-02,10\n2024-01-03,10.5\n2024-01-04,105.1\n", {}, "row 4: close 105.1 after 10.5"),
+    ("date,close,close\n2024-01-02,10,11\n", {}, "row 1 (header): column 'close' appears 2 times"),
+    ("date,close\n2024-01-02,10\n\"2024-01-03\"x,11\n", {}, "row 3: date '2024-01-03x' is not a date"),
+    pytest.param("date,close\n2024-01-02,10\n2024-01-03," + "1" * 200_000 + "\n", {}, "row 3: not a readable CSV row",
+                 id="a-field-past-the-csv-limit"),
 ])
 def test_malformed_csv_is_one_line_naming_the_row_and_the_rule(tmp_path, text, options, expected):
     path = tmp_path / "history.csv"
@@ -93,6 +104,31 @@ def test_malformed_csv_is_one_line_naming_the_row_and_the_rule(tmp_path, text, o
     message = str(caught.value)
     assert expected in message
     assert "\n" not in message and message.startswith(str(path))
+
+
+def test_lone_carriage_returns_end_rows_as_text_mode_reads_them(tmp_path):
+    path = tmp_path / "history.csv"
+    path.write_bytes(b"date,close\r2024-01-02,10\r2024-01-03,11\r\r2024-01-05,12\r")
+    with pytest.raises(HistoryError, match="row 4: missing date"):  # the blank line keeps its number
+        load_history(path)
+    path.write_bytes(b"date,close\r2024-01-02,10\r\n2024-01-03,11\r")
+    np.testing.assert_array_equal(load_history(path).close, [10.0, 11.0])
+
+
+def test_a_history_that_is_a_device_or_a_pipe_is_refused_before_it_is_read(tmp_path):
+    """A market.csv symlinked to /dev/zero would fill memory, a FIFO block until a writer came: the
+    application reads regular files only."""
+    text = (ROOT / "configs" / "historical.toml").read_text()
+    (tmp_path / "zero.csv").symlink_to("/dev/zero")
+    os.mkfifo(tmp_path / "pipe.csv")
+    for name in ("zero.csv", "pipe.csv"):
+        config = tmp_path / f"{name}.toml"
+        config.write_text(text.replace('csv = "data/bktp-history.csv"', f'csv = "{name}"'))
+        done = subprocess.run([sys.executable, "-c", "from rehedge.cli import main; main()", "check-config",
+                               str(config)], capture_output=True, text=True, cwd=ROOT, timeout=120)
+        assert done.returncode == 2, done.stderr
+        assert done.stderr.strip().count("\n") == 0 and "not a regular file" in done.stderr
+        assert done.stderr.startswith("error: market.csv: ")
 
 
 def test_missing_file_is_a_history_error(tmp_path):

@@ -79,7 +79,7 @@ def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
     problem, _, tables, _ = exported
     table = tables["grid_dp"]
     meta = table.meta
-    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 3
+    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 4
     assert meta["state_axis"] is None and table.state is None  # the policy reads spot, time and holding alone
     n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
     assert (n_days, n_money, n_hold) == (10, 101, 41)
@@ -161,7 +161,7 @@ def test_a_changed_csv_byte_is_refused_by_its_checksum(exported, tmp_path):
     with pytest.raises(TableError, match=r"targets.csv: SHA-256 .* does not match the sidecar"):
         HedgeTable.load(copy)
     (copy / "targets.csv").unlink()
-    with pytest.raises(TableError, match="targets.csv: cannot read"):
+    with pytest.raises(TableError, match="targets.csv: hedge table file not found"):
         HedgeTable.load(copy)
 
 
