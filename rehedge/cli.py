@@ -8,6 +8,7 @@ import sys
 from contextlib import contextmanager
 from pathlib import Path
 
+import click
 import typer
 from rich import box
 from rich.console import Console
@@ -16,7 +17,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from rich.table import Table
 from typer.core import TyperGroup
 
-from rehedge.errors import UserError
+from rehedge.errors import UserError, one_line
 from rehedge.formats import (
     CAUTION,
     format_count,
@@ -33,13 +34,23 @@ from rehedge.formats import (
 
 class _Commands(TyperGroup):
     """The command group: an error a user can cause (rehedge.errors.UserError: config, run folder,
-    hedge table, CSV) ends any command in one line on stderr and exit code 2; anything else is a bug."""
+    hedge table, CSV) ends any command in one line on stderr and exit code 2; anything else is a bug,
+    which ends in one line naming the crash log that holds its traceback, and exit code 3."""
 
     def invoke(self, ctx):
         try:
             return super().invoke(ctx)
         except UserError as error:
             fail(str(error))
+        except (click.exceptions.Exit, click.ClickException, click.Abort):
+            raise
+        except Exception as error:  # noqa: BLE001 - a bug: the user sees one line, the log holds the stack
+            from rehedge.crash import write_crash_log
+
+            log = write_crash_log(error, sys.argv)
+            what = "ran out of memory" if isinstance(error, MemoryError) else "internal error"
+            fail(f"{what} ({type(error).__name__}: {one_line(str(error))[:200]}); this is a fault in rehedge, not "
+                 f"in your input: the traceback is in {log}; please report it with the command", INTERNAL_ERROR)
 
 
 app = typer.Typer(
@@ -59,6 +70,7 @@ errors = Console(stderr=True, soft_wrap=True)
 
 
 INTERRUPTED = 130  # exit code of a command stopped by Ctrl-C (128 + SIGINT)
+INTERNAL_ERROR = 3  # exit code of a fault in rehedge itself (2 is an error in the user's input)
 
 
 def fail(message: str, code: int = 2) -> None:

@@ -9,6 +9,8 @@ adds the held-out metrics, the hedge table and the report before the rename.
 
 from __future__ import annotations
 
+import errno
+import itertools
 import json
 import platform
 from dataclasses import dataclass, replace
@@ -42,12 +44,8 @@ def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict 
     complete, so nothing half-written looks like a run. With ``finish=False`` the staging folder is
     returned for more files (held-out metrics, report); :func:`finish_run` then renames it."""
     config = training.config
-    stem = f"{config.name}-{_timestamp()}"
-    final, n = Path(runs_dir) / stem, 2
-    while final.exists() or final.with_name(final.name + PARTIAL).exists():  # two runs in one second
-        final, n = Path(runs_dir) / f"{stem}-{n}", n + 1
-    staging = final.with_name(final.name + PARTIAL)
-    (staging / "agents").mkdir(parents=True)
+    staging = _reserve(Path(runs_dir), f"{config.name}-{_timestamp()}")
+    (staging / "agents").mkdir()
     (staging / "config.toml").write_text(config_text)
     (staging / "config.json").write_text(json.dumps(config.model_dump(), indent=2, default=str) + "\n")
     for name, agent in training.agents.items():
@@ -76,11 +74,44 @@ def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict 
     return finish_run(staging) if finish else staging
 
 
+def _names(stem: str):
+    """``stem``, then ``stem-2``, ``stem-3``, ...: the names a run may take (two runs in one second)."""
+    yield stem
+    for n in itertools.count(2):
+        yield f"{stem}-{n}"
+
+
+def _reserve(runs_dir: Path, stem: str) -> Path:
+    """Create and return an empty staging folder ``NAME.partial`` whose ``NAME`` no other run holds,
+    staged or finished. The mkdir itself is the reservation (it fails if another process made the
+    folder first), so two runs starting at once never share one."""
+    runs_dir.mkdir(parents=True, exist_ok=True)
+    for name in _names(stem):
+        if (runs_dir / name).exists():
+            continue
+        staging = runs_dir / (name + PARTIAL)
+        try:
+            staging.mkdir()
+        except FileExistsError:
+            continue
+        return staging
+
+
 def finish_run(staging: Path) -> Path:
-    """Rename a complete staging folder ``NAME.partial`` to ``NAME``; returns the final path."""
-    final = staging.with_name(staging.name.removesuffix(PARTIAL))
-    staging.rename(final)
-    return final
+    """Rename a complete staging folder ``NAME.partial`` to ``NAME`` (``NAME-2``, ... if a run that
+    started in the same second finished first under ``NAME``); returns the final path. A rename never
+    replaces a folder that holds anything."""
+    for name in _names(staging.name.removesuffix(PARTIAL)):
+        final = staging.with_name(name)
+        if final.exists():
+            continue
+        try:
+            staging.rename(final)
+        except OSError as error:
+            if error.errno not in (errno.EEXIST, errno.ENOTEMPTY):
+                raise
+            continue
+        return final
 
 
 def _history_facts(training: Training) -> dict:

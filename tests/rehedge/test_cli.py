@@ -122,6 +122,32 @@ def test_usage_errors_are_one_line_with_exit_code_2(args, message):
     assert done.stderr.count("\n") == 1 and done.stderr.startswith(message)
 
 
+@pytest.mark.parametrize("fault, what", [(RuntimeError("boom\nsecond line"), "internal error (RuntimeError: boom second line)"),
+                                          (MemoryError(), "ran out of memory (MemoryError: )")])
+def test_a_fault_in_rehedge_is_one_line_naming_its_crash_log_with_exit_code_3(tmp_path, monkeypatch, capsys, fault,
+                                                                              what):
+    import rehedge.config
+    from rehedge.cli import INTERNAL_ERROR, main
+    from rehedge.crash import CRASH_DIR_ENVIRONMENT
+
+    def broken(*args, **kwargs):
+        raise fault
+    monkeypatch.setattr(rehedge.config, "load_config", broken)
+    monkeypatch.setenv(CRASH_DIR_ENVIRONMENT, str(tmp_path / "crashes"))
+    monkeypatch.setattr(sys, "argv", ["rehedge", "check-config", "configs/demo.toml"])
+    with pytest.raises(SystemExit) as caught:
+        main()
+    assert caught.value.code == INTERNAL_ERROR == 3
+    stderr = capsys.readouterr().err
+    assert stderr.count("\n") == 1 and "Traceback" not in stderr
+    assert stderr.startswith(f"error: {what}; this is a fault in rehedge")
+    (log,) = (tmp_path / "crashes").glob("crash-*.log")
+    assert str(log) in stderr
+    text = log.read_text()
+    assert "command: rehedge check-config configs/demo.toml" in text
+    assert "Traceback (most recent call last)" in text and "in broken" in text
+
+
 def test_check_config_accepts_the_shipped_configs():
     for config in ("configs/demo.toml", "configs/reference-gbm.toml"):
         done = rehedge("check-config", config)

@@ -106,3 +106,33 @@ def test_a_different_seed_gives_different_metrics(tmp_path):
     # The numbers themselves differ (not only the seeds printed beside them), for every policy.
     assert objectives[0].keys() == objectives[1].keys()
     assert all(objectives[0][name] != objectives[1][name] for name in objectives[0])
+
+
+# ---------------------------------------------------------------------------------------------
+# Two runs of one config in the same second: each folder name is taken by one run only
+# ---------------------------------------------------------------------------------------------
+
+
+def test_a_staging_name_is_reserved_by_its_mkdir_even_when_the_check_before_it_lost_the_race(tmp_path, monkeypatch):
+    from rehedge.run_folder import _reserve
+
+    runs = tmp_path / "runs"
+    (runs / "demo-20261204T000000Z.partial").mkdir(parents=True)  # another run reserved it after our check
+    monkeypatch.setattr(Path, "exists", lambda self: False)  # the check saw neither name: the race lost
+    staging = _reserve(runs, "demo-20261204T000000Z")
+    assert staging.name == "demo-20261204T000000Z-2.partial" and staging.is_dir()
+
+
+def test_a_finished_run_never_replaces_one_that_finished_first_under_the_same_name(tmp_path, monkeypatch):
+    from rehedge.run_folder import finish_run
+
+    first = tmp_path / "demo-20261204T000000Z"
+    first.mkdir()
+    (first / "metrics.json").write_text("{}")
+    second = tmp_path / "demo-20261204T000000Z.partial"
+    second.mkdir()
+    (second / "metrics.json").write_text('{"second": true}')
+    monkeypatch.setattr(Path, "exists", lambda self: False)
+    final = finish_run(second)
+    assert final.name == "demo-20261204T000000Z-2"
+    assert (first / "metrics.json").read_text() == "{}" and json.loads((final / "metrics.json").read_text())
