@@ -13,6 +13,7 @@ import errno
 import itertools
 import json
 import platform
+import shutil
 from dataclasses import dataclass, replace
 from datetime import datetime, timezone
 from pathlib import Path
@@ -45,32 +46,36 @@ def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict 
     returned for more files (held-out metrics, report); :func:`finish_run` then renames it."""
     config = training.config
     staging = _reserve(Path(runs_dir), f"{config.name}-{_timestamp()}")
-    (staging / "agents").mkdir()
-    (staging / "config.toml").write_text(config_text)
-    (staging / "config.json").write_text(json.dumps(config.model_dump(), indent=2, default=str) + "\n")
-    for name, agent in training.agents.items():
-        joblib.dump(agent, staging / "agents" / f"{name}.joblib")
-    manifest = {
-        "package": "rehedge",
-        "version": hedge_env.__version__,
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "scikit_learn": sklearn.__version__,
-        "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        "config_name": config.name,
-        "config_hash": config_hash(config),
-        "seeds": {"seed": config.seed, "train_seed": config.data.train_seed,
-                  "heldout_seed": config.data.heldout_seed},
-        "timings_s": {k: round(v, 4) for k, v in training.timings.items()},
-        "sizes": training.sizes,
-        "tuned": {name: {r.parameter: r.value, "train_objective": r.objective}
-                  for name, r in training.tuning.items()},
-        "agents": {spec.name: spec.kind for spec in config.agents},
-        **_history_facts(training),
-        **(extra or {}),
-    }
-    (staging / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
-    (staging / "training.log").write_text("\n".join(training.log) + "\n")
+    try:
+        (staging / "agents").mkdir()
+        (staging / "config.toml").write_text(config_text)
+        (staging / "config.json").write_text(json.dumps(config.model_dump(), indent=2, default=str) + "\n")
+        for name, agent in training.agents.items():
+            joblib.dump(agent, staging / "agents" / f"{name}.joblib")
+        manifest = {
+            "package": "rehedge",
+            "version": hedge_env.__version__,
+            "python": platform.python_version(),
+            "numpy": np.__version__,
+            "scikit_learn": sklearn.__version__,
+            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "config_name": config.name,
+            "config_hash": config_hash(config),
+            "seeds": {"seed": config.seed, "train_seed": config.data.train_seed,
+                      "heldout_seed": config.data.heldout_seed},
+            "timings_s": {k: round(v, 4) for k, v in training.timings.items()},
+            "sizes": training.sizes,
+            "tuned": {name: {r.parameter: r.value, "train_objective": r.objective}
+                      for name, r in training.tuning.items()},
+            "agents": {spec.name: spec.kind for spec in config.agents},
+            **_history_facts(training),
+            **(extra or {}),
+        }
+        (staging / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
+        (staging / "training.log").write_text("\n".join(training.log) + "\n")
+    except BaseException:  # nothing half-written stays behind, whatever stopped it
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
     return finish_run(staging) if finish else staging
 
 

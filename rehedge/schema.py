@@ -39,6 +39,9 @@ from hedge_env.model_pricing import HestonPricer, MertonPricer
 # ---------------------------------------------------------------------------
 
 _NAME_RE = re.compile(r"[A-Za-z0-9_.-]+")
+# A name is part of folder and file names (NAME-TIMESTAMP-2.partial, agents/NAME.joblib, a sweep
+# cell's NAME-key-value...), and a file name may have 255 bytes: 64 leaves room for the rest.
+MAX_NAME_CHARS = 64
 
 
 def _rule(rule: str, *path: str | int) -> PydanticCustomError:
@@ -73,6 +76,9 @@ def _check_name(value: str) -> str:
             "must use only letters, digits, '_', '.', '-' (it names run folders), "
             f"got {_show(value)}"
         )
+    if len(value) > MAX_NAME_CHARS:
+        raise _rule(f"must be at most {MAX_NAME_CHARS} characters (it names folders and files), got "
+                    f"{len(value)}: {_show(value[:24])}...")
     return value
 
 

@@ -128,23 +128,33 @@ def run_cell(cell: Cell, config_text: str = "", heldout_paths: int | None = None
     return CellOutcome(cell.index, cell.name, "ok", time.perf_counter() - clock, files=files)
 
 
-def _cell_record(cell: Cell, seconds: float) -> dict:
-    return {"index": cell.index, "name": cell.name, "overrides": cell.overrides,
-            "config_hash": config_hash(cell.config), "seconds": round(seconds, 3)}
+def _cell_facts(cell: Cell, heldout_paths: int | None) -> dict:
+    """What a cell's numbers depend on besides its code: its config and the held-out paths asked for
+    (``--paths``, else the config's own count)."""
+    return {"config_hash": config_hash(cell.config),
+            "heldout_paths_asked": int(heldout_paths or cell.config.data.heldout_paths)}
 
 
-def cell_complete(folder: Path, cell: Cell) -> bool:
-    """Whether ``folder`` holds a finished run of ``cell`` as configured now."""
+def _cell_record(cell: Cell, heldout_paths: int | None, seconds: float) -> dict:
+    return {"index": cell.index, "name": cell.name, "overrides": cell.overrides, **_cell_facts(cell, heldout_paths),
+            "seconds": round(seconds, 3)}
+
+
+def cell_complete(folder: Path, cell: Cell, heldout_paths: int | None = None) -> bool:
+    """Whether ``folder`` holds a finished run of ``cell`` as configured now, scored on as many
+    held-out paths as asked now (a cell recorded before the count was kept is stale)."""
     record = folder / CELL_FILE
     if not (record.is_file() and (folder / "metrics.json").is_file()):
         return False
     try:
-        return json.loads(record.read_text()).get("config_hash") == config_hash(cell.config)
+        recorded = json.loads(record.read_text())
     except (OSError, ValueError):
         return False
+    return isinstance(recorded, dict) and all(recorded.get(key) == value
+                                              for key, value in _cell_facts(cell, heldout_paths).items())
 
 
-def _store(outcome: CellOutcome, cell: Cell, cells_dir: Path) -> Path:
+def _store(outcome: CellOutcome, cell: Cell, cells_dir: Path, heldout_paths: int | None) -> Path:
     """Write a worker's files under a staging name, metrics.json last, then rename into place."""
     final = cells_dir / cell.name
     staging = cells_dir / f"{cell.name}.partial"
@@ -153,7 +163,7 @@ def _store(outcome: CellOutcome, cell: Cell, cells_dir: Path) -> Path:
         target = staging / relative
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_bytes(outcome.files[relative])
-    (staging / CELL_FILE).write_text(json.dumps(_cell_record(cell, outcome.seconds), indent=2) + "\n")
+    (staging / CELL_FILE).write_text(json.dumps(_cell_record(cell, heldout_paths, outcome.seconds), indent=2) + "\n")
     if final.exists():  # a stale run of a cell whose config changed since
         shutil.rmtree(final)
     staging.rename(final)
@@ -198,6 +208,9 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
     base, cells = sweep_cells(config_path)
     folder = Path(sweep_dir) if sweep_dir is not None else default_sweep_dir(base, Path(runs_dir))
     cells_dir = folder / "cells"
+    if folder.exists() and not (folder.is_dir() and (cells_dir.is_dir() or not any(folder.iterdir()))):
+        raise ConfigError(f"{folder}: exists and is not a sweep folder (no cells/); --sweep-dir must name a sweep "
+                          "folder, an empty folder or a new one", source=str(config_path))
     if not resume and cells_dir.is_dir() and any(cells_dir.iterdir()):
         raise ConfigError(f"{folder}: already holds a sweep; --resume finishes it, --sweep-dir names another "
                           "folder", source=str(config_path))
@@ -209,7 +222,7 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
     errors: dict[str, str] = {}
     todo = []
     for cell in cells:
-        if resume and cell_complete(cells_dir / cell.name, cell):
+        if resume and cell_complete(cells_dir / cell.name, cell, heldout_paths):
             status[cell.name] = "resumed"
             if progress is not None:
                 progress(1)
@@ -223,7 +236,7 @@ def run_sweep(config_path: str | Path, *, runs_dir: str | Path = "runs", sweep_d
             status[cell.name], errors[cell.name] = "lost", f"{type(lost).__name__}: {lost}"
             failures.append({"cell": cell.name, "overrides": cell.overrides, "error": errors[cell.name]})
         elif outcome.status == "ok":
-            _store(outcome, cell, cells_dir)
+            _store(outcome, cell, cells_dir, heldout_paths)
             status[cell.name] = "ok"
         else:
             status[cell.name], errors[cell.name] = "failed", outcome.error

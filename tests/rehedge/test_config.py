@@ -299,6 +299,16 @@ BAD_INPUTS = [
         "name: must use only letters, digits, '_', '.', '-' (it names run folders), got 'unit test'",
         id="name-unsafe-for-folders",
     ),
+    pytest.param(
+        variant('name = "unit-test"', f'name = "{"n" * 300}"'),
+        f"name: must be at most 64 characters (it names folders and files), got 300: '{'n' * 24}'...",
+        id="name-too-long-for-a-folder",
+    ),
+    pytest.param(
+        MINIMAL + f'\n[[baselines]]\nkind = "delta"\nname = "{"p" * 250}"\n',
+        f"baselines[0].name: must be at most 64 characters (it names folders and files), got 250: '{'p' * 24}'...",
+        id="policy-name-too-long-for-a-file",
+    ),
 ]
 
 

@@ -136,6 +136,35 @@ def test_resume_reruns_a_cell_whose_folder_is_incomplete_and_a_fresh_run_refuses
     assert cell_metrics(folder) == cell_metrics(serial.folder)
 
 
+def test_resume_with_another_held_out_path_count_reruns_every_cell(config_file, serial, tmp_path):
+    """A cell scored on 300 held-out paths is not a cell of a sweep asked for 200: no table mixes them."""
+    folder = tmp_path / "copy"
+    shutil.copytree(serial.folder, folder)
+    asked = serial.cells[0].config.data.heldout_paths
+    same = run_sweep(config_file, sweep_dir=folder, resume=True, heldout_paths=asked, report=False)
+    assert set(same.status.values()) == {"resumed"}
+    other = run_sweep(config_file, sweep_dir=folder, resume=True, heldout_paths=asked // 2, report=False)
+    assert set(other.status.values()) == {"ok"}
+    for cell in serial.cells:
+        record = json.loads((folder / "cells" / cell.name / "cell.json").read_text())
+        assert record["heldout_paths_asked"] == asked // 2
+
+
+def test_a_sweep_refuses_a_folder_that_is_not_a_sweep_and_leaves_it_as_it_was(config_file, tmp_path):
+    run = tmp_path / "demo-20261204T000000Z"
+    run.mkdir()
+    (run / "config.toml").write_text("name = 'mine'\n")
+    (run / "manifest.json").write_text("{}")
+    for resume in (False, True):
+        with pytest.raises(ConfigError, match="exists and is not a sweep folder"):
+            run_sweep(config_file, sweep_dir=run, resume=resume, report=False)
+    assert (run / "config.toml").read_text() == "name = 'mine'\n" and sorted(p.name for p in run.iterdir()) == [
+        "config.toml", "manifest.json"]
+    (tmp_path / "file").write_text("x")
+    with pytest.raises(ConfigError, match="exists and is not a sweep folder"):
+        run_sweep(config_file, sweep_dir=tmp_path / "file", report=False)
+
+
 def test_sweep_command_prints_the_combined_table_as_json_and_writes_each_cell_report(tmp_path):
     config = tmp_path / "two.toml"
     config.write_text(sweep_scenario(seeds=False))  # two cells
