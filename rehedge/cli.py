@@ -8,7 +8,6 @@ import sys
 from contextlib import contextmanager
 from pathlib import Path
 
-import click
 import typer
 from rich import box
 from rich.console import Console
@@ -42,7 +41,7 @@ class _Commands(TyperGroup):
             return super().invoke(ctx)
         except UserError as error:
             fail(str(error))
-        except (click.exceptions.Exit, click.ClickException, click.Abort):
+        except (typer.Exit, typer.Abort, typer.TyperException):  # exits and usage errors: main() prints them
             raise
         except Exception as error:  # noqa: BLE001 - a bug: the user sees one line, the log holds the stack
             from rehedge.crash import write_crash_log

@@ -625,6 +625,12 @@ class FittedQAgentSpec(_LearnedAgent):
             close = difflib.get_close_matches(unknown[0], list(known), n=1, cutoff=0.6)
             hint = f" (did you mean {close[0]!r}?)" if close else ""
             raise _rule(f"unknown parameter {unknown[0]!r} for {self.regressor}{hint}", "regressor_params")
+        for key, value in self.regressor_params.items():  # scikit-learn's own check, one parameter at a time
+            try:
+                REGRESSORS[self.regressor]().set_params(**{key: value})._validate_params()
+            except (TypeError, ValueError) as error:  # InvalidParameterError is a ValueError
+                rule = re.sub(r"^The '[^']*' parameter of \w+ ", "", " ".join(str(error).split()))
+                raise _rule(f"{rule} (scikit-learn's rule for {self.regressor})", "regressor_params", key) from None
         return self
 
     def model_inputs(self, market) -> dict:

@@ -394,6 +394,25 @@ def test_rules_that_training_relies_on_are_checked_when_the_config_is_loaded(cha
     assert str(error.value) == message
 
 
+@pytest.mark.parametrize("regressor, key, value, rule", [
+    ("extra_trees", "n_estimators", "lots", "must be an int in the range [1, inf). Got 'lots' instead."),
+    ("extra_trees", "n_estimators", -5, "must be an int in the range [1, inf). Got -5 instead."),
+    ("extra_trees", "max_depth", float("nan"), "must be an int in the range [1, inf) or None. Got nan instead."),
+    ("hist_gradient_boosting", "learning_rate", {"a": 1}, "must be a float in the range (0.0, inf). Got {'a': 1}"),
+    ("ridge", "alpha", -1.0, "must be a float in the range [0.0, inf)"),
+])
+def test_regressor_parameters_pass_scikit_learns_own_check_when_the_config_is_loaded(regressor, key, value, rule):
+    """A value scikit-learn would refuse mid-training is refused here, naming the parameter."""
+    data = tomllib.loads(MINIMAL)
+    data["agents"] = [{"kind": "linear"}, {"kind": "fitted_q", "regressor": regressor, "regressor_params": {key: value}}]
+    with pytest.raises(ConfigError) as error:
+        parse_config(data)
+    message = str(error.value)
+    assert message.startswith(f"agents[1].regressor_params.{key}: {rule}")
+    assert message.endswith(f"(scikit-learn's rule for {regressor})") and error.value.key == (
+        f"agents[1].regressor_params.{key}")
+
+
 def test_a_misspelt_key_is_named_with_the_closest_valid_one():
     with pytest.raises(ConfigError) as error:
         parse_config(tomllib.loads(MINIMAL.replace("cost_rate = ", "cost_rat = ")))
