@@ -52,7 +52,12 @@ class NormalEquations:
         scale = np.maximum(diagonal, 1e-12 * largest) if largest > 0 else np.ones_like(diagonal)
         lhs = self.xtx + (ridge + prior_weight) * np.diag(scale)
         rhs = self.xty if prior is None or not prior_weight else self.xty + prior_weight * scale * prior
-        return np.linalg.solve(lhs, rhs)
+        try:
+            return np.linalg.solve(lhs, rhs)
+        except np.linalg.LinAlgError:
+            # With no penalty (ridge 0) a basis whose columns coincide on the training states is
+            # singular: the least-squares fit is then not unique, and its minimum-norm one is taken.
+            return np.linalg.lstsq(lhs, rhs, rcond=None)[0]
 
 
 class LinearBasisAgent(BackwardQAgent):

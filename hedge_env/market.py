@@ -16,7 +16,7 @@ from __future__ import annotations
 import math
 from abc import ABC, abstractmethod
 from collections.abc import Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 from scipy.special import ndtr
@@ -100,6 +100,11 @@ class PathGenerator(ABC):
             yield self.generate(min(chunk_paths, n_paths - start), n_steps, dt_years, seed, start)
 
 
+class ModelRangeError(ValueError):
+    """A simulated model's prices left the floating-point range (beyond 1e308, or down to 0); the
+    message is one line naming the model's parameters (their names are the config's market keys)."""
+
+
 class SimulatedMarket(PathGenerator):
     """A model simulated block by block; subclasses implement ``_simulate``."""
 
@@ -111,7 +116,22 @@ class SimulatedMarket(PathGenerator):
 
     def _block(self, block: int, n_steps: int, dt_years: float, seed: int) -> MarketPaths:
         rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
-        return self._simulate(rng, BLOCK_PATHS, n_steps, dt_years)
+        paths = self._simulate(rng, BLOCK_PATHS, n_steps, dt_years)
+        self._check_range(paths.spot, block, n_steps, dt_years)
+        return paths
+
+    def _check_range(self, spot: np.ndarray, block: int, n_steps: int, dt_years: float) -> None:
+        """Refuse paths with a price that is not a finite positive number: every later number (marks,
+        P&L, utilities) would be NaN or infinite."""
+        bad = ~(np.isfinite(spot) & (spot > 0))
+        if not bad.any():
+            return
+        path, step = (int(i) for i in np.argwhere(bad)[0])
+        keys = ", ".join(f"market.{f.name}" for f in fields(self))
+        raise ModelRangeError(
+            f"market: a simulated price leaves the floating-point range (path {block * BLOCK_PATHS + path}, step "
+            f"{step} of {n_steps}, {n_steps * dt_years:g} years): the model's parameters ({keys}) with this "
+            "horizon make prices beyond 1e308 or down to 0; make the horizon shorter or the parameters milder")
 
     def generate(self, n_paths: int, n_steps: int, dt_years: float, seed: int, start: int = 0) -> MarketPaths:
         if n_paths < 1 or n_steps < 1 or start < 0:

@@ -70,6 +70,15 @@ def _gauss_legendre(n: int) -> tuple[np.ndarray, np.ndarray]:
     return np.polynomial.legendre.leggauss(n)
 
 
+def _log1p_ratio(y: np.ndarray) -> np.ndarray:
+    """``log(1 + y) / y`` for complex ``y``, 1 at 0: its series below ``|y| = 1e-3`` (the first
+    dropped term is under 2e-13), the logarithm above (rounding under 1e-13 relative there)."""
+    y = np.asarray(y, dtype=complex)
+    small = np.abs(y) < 1e-3
+    safe = np.where(small, 1.0, y)
+    return np.where(small, 1.0 - y / 2.0 + y * y / 3.0 - y * y * y / 4.0, np.log(1.0 + safe) / safe)
+
+
 @dataclass(frozen=True)
 class HestonPricer:
     """Heston (1993) prices, deltas and variance sensitivities, risk-neutral, per path.
@@ -93,15 +102,26 @@ class HestonPricer:
             raise ValueError("Heston marks need vol_of_vol, mean_reversion and long_run_variance > 0")
 
     def exponents(self, u: np.ndarray, tau: float) -> tuple[np.ndarray, np.ndarray]:
-        """``C(u), D(u)`` of ``psi(u) = exp(C + D v)`` for ``X = log(S_T / F)`` (complex ``u``)."""
+        """``C(u), D(u)`` of ``psi(u) = exp(C + D v)`` for ``X = log(S_T / F)`` (complex ``u``).
+
+        Albrecher et al.'s form (``g = (b - d) / (b + d)``, ``exp(-d tau)``), with ``b - d`` taken as
+        ``-xi^2 q / (b + d)``, ``q = i u + u^2``, so that nothing is divided by ``xi^2``: as the vol of
+        vol goes to 0 the exponents go smoothly to those of the deterministic variance (Black-Scholes
+        at the mean variance) instead of cancelling to noise or dividing by zero."""
         kappa, theta, xi, rho = self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation
         iu = 1j * u
+        q = iu + u * u
         b = kappa - rho * xi * iu
-        d = np.sqrt(b * b + xi * xi * (iu + u * u))
-        g = (b - d) / (b + d)
+        d = np.sqrt(b * b + xi * xi * q)
+        s = b + d
+        g = -xi * xi * q / (s * s)  # (b - d) / (b + d)
         decay = np.exp(-d * tau)
-        c = kappa * theta / (xi * xi) * ((b - d) * tau - 2.0 * np.log((1.0 - g * decay) / (1.0 - g)))
-        dd = (b - d) / (xi * xi) * (1.0 - decay) / (1.0 - g * decay)
+        rise = -np.expm1(-d * tau)  # 1 - exp(-d tau)
+        dd = -(q / s) * rise / (1.0 - g * decay)
+        # log((1 - g e) / (1 - g)) / xi^2 = log(1 + y) / xi^2 with y = g (1 - e) / (1 - g), as
+        # (y / xi^2) * log1p(y) / y: finite at xi = 0.
+        y_over = -(q / (s * s)) * rise / (1.0 - g)
+        c = kappa * theta * (-(q / s) * tau - 2.0 * y_over * _log1p_ratio(xi * xi * y_over))
         return c, dd
 
     def mean_variance(self, v, tau: float):
@@ -283,7 +303,7 @@ def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -
     on it converges geometrically; steps of ``t = u sqrt(w tau)`` resolve the oscillation of
     ``e^{i u x} = e^{i t z}`` over the table's z range."""
     w = float(pricer.mean_variance(v, tau))
-    scale = math.sqrt(w * tau)
+    scale = math.sqrt(max(w, 1e-12) * tau)  # as _nodes: a variance that stays near 0 (kappa near 0 at v = 0)
     x_high = float(np.abs(x).max())
     step = _T_STEP / scale  # in u
     blocks = []

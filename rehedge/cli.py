@@ -44,12 +44,21 @@ class _Commands(TyperGroup):
         except (typer.Exit, typer.Abort, typer.TyperException):  # exits and usage errors: main() prints them
             raise
         except Exception as error:  # noqa: BLE001 - a bug: the user sees one line, the log holds the stack
+            if _model_range_error(error):  # the input's fault, raised where the paths are simulated
+                fail(str(error))
             from rehedge.crash import write_crash_log
 
             log = write_crash_log(error, sys.argv)
             what = "ran out of memory" if isinstance(error, MemoryError) else "internal error"
             fail(f"{what} ({type(error).__name__}: {one_line(str(error))[:200]}); this is a fault in rehedge, not "
                  f"in your input: the traceback is in {log}; please report it with the command", INTERNAL_ERROR)
+
+
+def _model_range_error(error: Exception) -> bool:
+    """Whether ``error`` is hedge_env.market.ModelRangeError (looked up only once the module is loaded,
+    so that commands that never simulate do not import it)."""
+    market = sys.modules.get("hedge_env.market")
+    return market is not None and isinstance(error, market.ModelRangeError)
 
 
 app = typer.Typer(

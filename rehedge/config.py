@@ -15,6 +15,7 @@ import difflib
 import hashlib
 import itertools
 import json
+import math
 import re
 import tomllib
 import types
@@ -24,6 +25,7 @@ from typing import Annotated, Any, Union
 
 from pydantic import BaseModel, ValidationError
 
+from rehedge.budget import check_memory
 from rehedge.errors import ConfigError, one_line
 from rehedge.files import CONFIG_BYTES, read_regular
 from rehedge.schema import Config, _num, _show
@@ -56,6 +58,9 @@ def _parse_toml(text: str, source: str) -> dict:
                           source=source) from None
 
 
+SWEEP_CELLS_MAX = 10_000  # each cell is a run of its own: 10,000 small runs already take days
+
+
 def load_variants(path: str | Path) -> list[Config]:
     """The config of ``path`` and, when it has a ``sweep``, one config per combination of the
     swept values (each named ``NAME-key-value``, validated like a config of its own)."""
@@ -64,6 +69,11 @@ def load_variants(path: str | Path) -> list[Config]:
         return [base]
     data = _parse_toml(read_regular(path, CONFIG_BYTES, ConfigError).decode("utf-8"), str(path))
     sweep = data.pop("sweep")
+    cells = math.prod(len(values) for values in sweep.values())
+    if cells > SWEEP_CELLS_MAX:
+        raise ConfigError(f"sweep: {cells:,} cells (the product of the lists' lengths), more than the "
+                          f"{SWEEP_CELLS_MAX:,} a sweep may have; split it or sweep fewer values", source=str(path),
+                          key="sweep")
     variants = []
     for values in itertools.product(*sweep.values()):
         variant = copy.deepcopy(data)
@@ -95,7 +105,7 @@ def parse_config(data: dict, source: str = "<config>", base_dir: str | Path | No
             f"config must be a table of settings, got {_show(data)}", source=source
         )
     try:
-        return Config.model_validate(data, context={"base_dir": base_dir})
+        config = Config.model_validate(data, context={"base_dir": base_dir})
     except ValidationError as exc:
         problems = _ordered(tuple(_format_error(err) for err in exc.errors()))
         key, _, _ = problems[0].partition(": ")
@@ -104,6 +114,8 @@ def parse_config(data: dict, source: str = "<config>", base_dir: str | Path | No
             more = len(problems) - 1
             message += f" (and {more} more error{'s' if more > 1 else ''})"
         raise ConfigError(message, source=source, key=key, problems=problems) from None
+    check_memory(config, source)
+    return config
 
 
 def _ordered(problems: tuple[str, ...]) -> tuple[str, ...]:

@@ -43,6 +43,26 @@ _NAME_RE = re.compile(r"[A-Za-z0-9_.-]+")
 # cell's NAME-key-value...), and a file name may have 255 bytes: 64 leaves room for the rest.
 MAX_NAME_CHARS = 64
 
+# Plausible ranges of the numeric keys (docs/config-ranges.md lists every key's, with the reasons).
+# A value outside one is far from any market or book a desk hedges, and past it the numbers lose
+# their meaning (overflow, a grid that cannot fit in memory) before they lose their finiteness.
+SPOT_RANGE = (1e-4, 1e9)  # currency per share: a dear share in a currency of small units is below 1e9
+VOLATILITY_RANGE = (1e-4, 5.0)  # annual: 500%, the history loader's bound on implied volatilities too
+VARIANCE_MAX = 25.0  # a variance of 25 is a volatility of 500%
+RATE_RANGE = (-0.2, 2.0)  # annual: policy rates have gone from -0.75% to above 100%
+EXPIRY_DAYS_MAX = 3660.0  # ten years of calendar days
+QUANTITY_MAX = 1e7  # contracts in one position
+SHARES_MAX = 1e12  # shares: more than any company has issued
+MONEY_MAX = 1e9  # currency, per trade
+RISK_AVERSION_MAX = 1e6  # per currency unit
+HALF_WIDTH_MAX = 10.0  # a band half-width, in shares per share of notional
+STEPS_MAX = 20_000  # rehedges in one horizon (ten years of hourly rehedges is about 20,000)
+PATHS_MAX = 50_000_000
+SEED_MAX = 2**63 - 1
+ROWS_MAX = 100_000  # trading days: four centuries of rows
+GRID_POINTS_MAX = 2001
+TABLE_POINTS_MAX = 10_001
+
 
 def _rule(rule: str, *path: str | int) -> PydanticCustomError:
     """A validation error with a short rule; ``path`` is appended to the error location."""
@@ -106,8 +126,8 @@ def _inf_means_no_limit(value: Any) -> Any:
     return value
 
 
-def _tunable(strictly_positive: bool):
-    """Validator for 'a number (> 0 or >= 0) or the string "tune"'."""
+def _tunable(strictly_positive: bool, high: float):
+    """Validator for 'a number (> 0 or >= 0, at most ``high``) or the string "tune"'."""
     bound = "> 0" if strictly_positive else ">= 0"
 
     def check(value: Any) -> Any:
@@ -119,6 +139,8 @@ def _tunable(strictly_positive: bool):
             raise _rule(f"must be a finite number {bound} or 'tune', got {_show(value)}")
         if value < 0 or (strictly_positive and value == 0):
             raise _rule(f"must be {bound} or 'tune', got {_show(value)}")
+        if value > high:
+            raise _rule(f"must be <= {_show(_num(high))} or 'tune', got {_show(value)}")
         return float(value)
 
     return BeforeValidator(check)
@@ -142,18 +164,21 @@ class _Spec(BaseModel):
 class _SimulatedMarketSpec(_Spec):
     """What every simulated model has: the start, the real-world growth of the price, rate and dividends."""
 
-    spot: float = Field(gt=0, description="Spot price of the underlying at the start, currency per share.")
-    drift: float = Field(0.0, description="Real-world expected growth of the price (jumps included), annual "
+    spot: float = Field(ge=SPOT_RANGE[0], le=SPOT_RANGE[1],
+                        description="Spot price of the underlying at the start, currency per share.")
+    drift: float = Field(0.0, ge=-2, le=2, description="Real-world expected growth of the price (jumps included), annual "
                                           "decimal: E[S_t] = S_0 exp(drift t); dividends are paid on top.")
-    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
-    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+    rate: float = Field(0.0, ge=RATE_RANGE[0], le=RATE_RANGE[1],
+                        description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, le=0.5, description="Continuous dividend yield, annual decimal.")
 
 
 class GBMMarket(_SimulatedMarketSpec):
     """Geometric Brownian motion for the underlying."""
 
     model: Literal["gbm"] = Field(description="Price model of the underlying.")
-    volatility: float = Field(gt=0, description="Real-world volatility of the underlying, annual decimal.")
+    volatility: float = Field(ge=VOLATILITY_RANGE[0], le=VOLATILITY_RANGE[1],
+                              description="Real-world volatility of the underlying, annual decimal.")
 
     def pricing_volatility(self, horizon_years: float) -> float:
         """Default mark volatility (pricing.volatility when not given): the model's volatility."""
@@ -173,10 +198,10 @@ class HestonMarket(_SimulatedMarketSpec):
     """Heston stochastic volatility for the underlying (simulated with Andersen's QE scheme)."""
 
     model: Literal["heston"] = Field(description="Price model of the underlying.")
-    initial_variance: float = Field(ge=0, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
-    mean_reversion: float = Field(ge=0, description="Mean-reversion speed kappa of the variance, per year.")
-    long_run_variance: float = Field(ge=0, description="Long-run variance theta, annual decimal^2.")
-    vol_of_vol: float = Field(ge=0, description="Volatility xi of the variance, per sqrt(year).")
+    initial_variance: float = Field(ge=0, le=VARIANCE_MAX, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
+    mean_reversion: float = Field(ge=0, le=100, description="Mean-reversion speed kappa of the variance, per year.")
+    long_run_variance: float = Field(ge=0, le=VARIANCE_MAX, description="Long-run variance theta, annual decimal^2.")
+    vol_of_vol: float = Field(ge=0, le=5, description="Volatility xi of the variance, per sqrt(year).")
     correlation: float = Field(ge=-1, le=1, description="Correlation rho of price and variance shocks, in [-1, 1].")
     variance_observed: bool = Field(
         False, description="Whether the hedger observes the current variance (appended to its observation).")
@@ -206,10 +231,11 @@ class MertonMarket(_SimulatedMarketSpec):
     """Merton jump diffusion for the underlying: GBM plus lognormal jumps at Poisson times."""
 
     model: Literal["merton"] = Field(description="Price model of the underlying.")
-    volatility: float = Field(gt=0, description="Volatility of the diffusion part, annual decimal.")
-    jump_intensity: float = Field(ge=0, description="Expected number of jumps per year.")
-    jump_mean: float = Field(description="Mean of the log jump size (-0.05: a typical jump of about -5%).")
-    jump_std: float = Field(ge=0, description="Standard deviation of the log jump size.")
+    volatility: float = Field(ge=VOLATILITY_RANGE[0], le=VOLATILITY_RANGE[1],
+                              description="Volatility of the diffusion part, annual decimal.")
+    jump_intensity: float = Field(ge=0, le=100, description="Expected number of jumps per year.")
+    jump_mean: float = Field(ge=-2, le=2, description="Mean of the log jump size (-0.05: a typical jump of about -5%).")
+    jump_std: float = Field(ge=0, le=2, description="Standard deviation of the log jump size.")
 
     def pricing_volatility(self, horizon_years: float) -> float:
         """Default mark volatility: the total volatility of log returns, diffusion and jumps,
@@ -258,24 +284,26 @@ class HistoricalMarket(_Spec):
         None, description="Mark and premium volatility: 'implied' (the column, per path and date), 'realised' "
                           "(of the training period) or 'configured' (pricing.volatility); default 'implied' "
                           "with an implied-volatility column, else 'realised'.")
-    spot: float = Field(gt=0, description="Spot every path is rescaled to start at, currency per share.")
-    rate: float = Field(0.0, description="Risk-free rate for pricing and interest on cash, annual decimal.")
-    dividend_yield: float = Field(0.0, ge=0, description="Continuous dividend yield, annual decimal.")
+    spot: float = Field(ge=SPOT_RANGE[0], le=SPOT_RANGE[1],
+                        description="Spot every path is rescaled to start at, currency per share.")
+    rate: float = Field(0.0, ge=RATE_RANGE[0], le=RATE_RANGE[1],
+                        description="Risk-free rate for pricing and interest on cash, annual decimal.")
+    dividend_yield: float = Field(0.0, ge=0, le=0.5, description="Continuous dividend yield, annual decimal.")
     split_date: Annotated[datetime.date | None, BeforeValidator(_to_date)] = Field(
         None, description="First date of the held-out part (training: the dates before it).")
     split_fraction: Annotated[float | None, AfterValidator(lambda v: v if v is None else _check_open_unit(v))] = Field(
         None, description="Share of the rows in the training part, if no split_date; default 0.7.")
-    gap_days: int | None = Field(None, ge=0, description="Trading days (rows) skipped between the training and "
+    gap_days: int | None = Field(None, ge=0, le=ROWS_MAX, description="Trading days (rows) skipped between the training and "
                                                          "the held-out part; default one horizon.")
     training: Literal["windows", "bootstrap"] = Field(
         "windows", description="Training paths: rolling windows of the training part, or its stationary "
                                "block bootstrap (data.train_paths paths).")
-    stride_days: int = Field(1, ge=1, description="Trading days between the starts of training windows.")
+    stride_days: int = Field(1, ge=1, le=ROWS_MAX, description="Trading days between the starts of training windows.")
     heldout_stride_days: int | None = Field(
-        None, ge=1, description="Trading days between the starts of held-out windows; default one horizon "
+        None, ge=1, le=ROWS_MAX, description="Trading days between the starts of held-out windows; default one horizon "
                                 "(windows that do not overlap, so confidence intervals over paths hold).")
     bootstrap_mean_block_days: float = Field(
-        10.0, ge=1, description="Mean block length of the stationary bootstrap, trading days.")
+        10.0, ge=1, le=ROWS_MAX, description="Mean block length of the stationary bootstrap, trading days.")
 
     @field_validator("csv")
     @classmethod
@@ -319,12 +347,12 @@ class OptionSpec(_Spec):
     """One European option position in the book."""
 
     kind: Literal["call", "put"] = Field(description="Option type: 'call' or 'put'.")
-    strike: float = Field(gt=0, description="Strike price, currency per share.")
-    expiry_days: float = Field(gt=0, description="Time to expiry from the start, days.")
+    strike: float = Field(ge=SPOT_RANGE[0], le=SPOT_RANGE[1], description="Strike price, currency per share.")
+    expiry_days: float = Field(gt=0, le=EXPIRY_DAYS_MAX, description="Time to expiry from the start, days.")
     quantity: Annotated[float, AfterValidator(_check_nonzero)] = Field(
-        description="Contracts held: positive long, negative short."
+        ge=-QUANTITY_MAX, le=QUANTITY_MAX, description="Contracts held: positive long, negative short."
     )
-    multiplier: float = Field(1.0, gt=0, description="Shares per contract.")
+    multiplier: float = Field(1.0, gt=0, le=1e5, description="Shares per contract.")
 
 
 class BookSpec(_Spec):
@@ -352,19 +380,20 @@ class PricingSpec(_Spec):
 
     volatility: float | None = Field(
         None,
-        gt=0,
+        ge=VOLATILITY_RANGE[0],
+        le=VOLATILITY_RANGE[1],
         description="Mark and Greeks volatility, annual decimal; defaults to the market model's "
                     "(market.volatility for gbm, the expected mean variance's root for heston, the total "
                     "volatility for merton).",
     )
-    days_per_year: float = Field(365.0, gt=0, description="Days per year for converting days to years.")
+    days_per_year: float = Field(365.0, ge=200, le=366, description="Days per year for converting days to years (252 trading days, 360 or 365 calendar days).")
 
 
 class ScheduleSpec(_Spec):
     """When the hedge is rebalanced and how it ends."""
 
-    step_days: float = Field(1.0, gt=0, description="Rehedge interval, days.")
-    steps: int = Field(ge=1, description="Number of rehedges; the horizon is steps * step_days days.")
+    step_days: float = Field(1.0, ge=1e-3, le=EXPIRY_DAYS_MAX, description="Rehedge interval, days.")
+    steps: int = Field(ge=1, le=STEPS_MAX, description="Number of rehedges; the horizon is steps * step_days days.")
     settlement: Literal["liquidate", "physical"] = Field(
         "liquidate",
         description=(
@@ -382,21 +411,21 @@ class ScheduleSpec(_Spec):
 class FrictionsSpec(_Spec):
     """Trading costs, market impact and financing."""
 
-    cost_rate: float = Field(ge=0, description="Proportional cost, fraction of traded notional (half-spread + fees).")
-    fixed_cost: float = Field(0.0, ge=0, description="Fixed cost per trade, currency.")
+    cost_rate: float = Field(ge=0, le=1, description="Proportional cost, fraction of traded notional (half-spread + fees).")
+    fixed_cost: float = Field(0.0, ge=0, le=MONEY_MAX, description="Fixed cost per trade, currency.")
     impact_coefficient: float = Field(
-        0.0, ge=0, description="Temporary impact eta: cost eta * S * |trade|^(1+beta) / adv^beta, currency."
+        0.0, ge=0, le=100, description="Temporary impact eta: cost eta * S * |trade|^(1+beta) / adv^beta, currency."
     )
     impact_exponent: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
         0.5, description="Impact exponent beta in [0, 1]: 1 linear impact, 0.5 square-root law."
     )
     permanent_impact: float = Field(
-        0.0, ge=0, description="Permanent impact gamma: later prices scale by exp(gamma * trade / adv)."
+        0.0, ge=0, le=100, description="Permanent impact gamma: later prices scale by exp(gamma * trade / adv)."
     )
-    adv_shares: float = Field(1_000_000.0, gt=0, description="Average daily volume of the underlying, shares.")
-    borrow_fee: float = Field(0.0, ge=0, description="Fee on the value of a short stock holding, annual decimal.")
+    adv_shares: float = Field(1_000_000.0, ge=1, le=SHARES_MAX, description="Average daily volume of the underlying, shares.")
+    borrow_fee: float = Field(0.0, ge=0, le=5, description="Fee on the value of a short stock holding, annual decimal.")
     position_limit_shares: Annotated[float | None, BeforeValidator(_inf_means_no_limit)] = Field(
-        None, gt=0, description="Hedge targets are clipped to +/- this many shares; absent or inf = no limit."
+        None, gt=0, le=SHARES_MAX, description="Hedge targets are clipped to +/- this many shares; absent or inf = no limit."
     )
 
 
@@ -409,7 +438,7 @@ class ObjectiveSpec(_Spec):
                      "the certainty equivalent -1/gamma log E[exp(-gamma P&L)] of the total P&L."),
     )
     risk_aversion: float = Field(
-        ge=0, description=("kappa per currency unit: reward r = dW - kappa/2 * dW^2 per step; under kind = "
+        ge=0, le=RISK_AVERSION_MAX, description=("kappa per currency unit: reward r = dW - kappa/2 * dW^2 per step; under kind = "
                            "'exponential', gamma, the absolute risk aversion per currency unit (> 0).")
     )
     var_levels: list[Annotated[float, AfterValidator(_check_open_unit)]] = Field(
@@ -418,6 +447,7 @@ class ObjectiveSpec(_Spec):
     entropic_risk_aversion: float | None = Field(
         None,
         gt=0,
+        le=RISK_AVERSION_MAX,
         description=(
             "Entropic risk aversion per currency unit; defaults to risk_aversion, "
             "None (skipped) when that is 0."
@@ -444,13 +474,13 @@ class ObjectiveSpec(_Spec):
 class DataSpec(_Spec):
     """Simulated paths for training and held-out testing."""
 
-    train_paths: int = Field(20_000, gt=0, description="Number of training paths.")
-    heldout_paths: int = Field(50_000, gt=0, description="Number of held-out test paths.")
-    train_seed: int | None = Field(None, ge=0, description="Seed for training paths; defaults to 2 * seed + 1.")
+    train_paths: int = Field(20_000, gt=0, le=PATHS_MAX, description="Number of training paths.")
+    heldout_paths: int = Field(50_000, gt=0, le=PATHS_MAX, description="Number of held-out test paths.")
+    train_seed: int | None = Field(None, ge=0, le=SEED_MAX, description="Seed for training paths; defaults to 2 * seed + 1.")
     heldout_seed: int | None = Field(
-        None, ge=0, description="Seed for held-out paths; defaults to 2 * seed + 2, always != train_seed."
+        None, ge=0, le=SEED_MAX, description="Seed for held-out paths; defaults to 2 * seed + 2, always != train_seed."
     )
-    chunk_paths: int = Field(16_384, gt=0, description="Paths simulated per chunk (bounds memory).")
+    chunk_paths: int = Field(16_384, gt=0, le=PATHS_MAX, description="Paths simulated per chunk (bounds memory).")
 
 
 # ---------------------------------------------------------------------------
@@ -482,7 +512,7 @@ class DeltaBaseline(_NamedPolicy):
     kind: Literal["delta"] = Field(description="Baseline type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
     volatility: float | None = Field(
-        None, gt=0, description="Volatility for its deltas, annual decimal; defaults to pricing.volatility."
+        None, ge=VOLATILITY_RANGE[0], le=VOLATILITY_RANGE[1], description="Volatility for its deltas, annual decimal; defaults to pricing.volatility."
     )
 
 
@@ -492,10 +522,10 @@ class LelandBaseline(_NamedPolicy):
     kind: Literal["leland"] = Field(description="Baseline type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
     cost_rate: float | None = Field(
-        None, ge=0, description="Proportional cost in Leland's adjustment; defaults to frictions.cost_rate."
+        None, ge=0, le=1, description="Proportional cost in Leland's adjustment; defaults to frictions.cost_rate."
     )
     volatility: float | None = Field(
-        None, gt=0, description="Base volatility, annual decimal; defaults to pricing.volatility."
+        None, ge=VOLATILITY_RANGE[0], le=VOLATILITY_RANGE[1], description="Base volatility, annual decimal; defaults to pricing.volatility."
     )
 
 
@@ -504,7 +534,7 @@ class WhalleyWilmottBaseline(_NamedPolicy):
 
     kind: Literal["whalley_wilmott"] = Field(description="Baseline type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    risk_aversion: Annotated[float | Literal["tune"], _tunable(strictly_positive=True)] = Field(
+    risk_aversion: Annotated[float | Literal["tune"], _tunable(strictly_positive=True, high=RISK_AVERSION_MAX)] = Field(
         "tune", description="Risk aversion in the band formula, per currency unit, or 'tune' to fit it."
     )
     center: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
@@ -517,7 +547,7 @@ class FixedBandBaseline(_NamedPolicy):
 
     kind: Literal["fixed_band"] = Field(description="Baseline type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    half_width: Annotated[float | Literal["tune"], _tunable(strictly_positive=False)] = Field(
+    half_width: Annotated[float | Literal["tune"], _tunable(strictly_positive=False, high=HALF_WIDTH_MAX)] = Field(
         "tune", description="Band half-width in shares per share of book notional, or 'tune' to fit it."
     )
     center: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
@@ -566,9 +596,9 @@ class ExplorationSpec(_Spec):
         0.3, description="Probability of keeping the holding.")
     delta: Annotated[float, AfterValidator(_check_closed_unit)] = Field(
         0.2, description="Probability of trading to the hedge (the agent's anchor).")
-    spread: float = Field(1.1, ge=0, description="Std of other targets around the hedge or the holding, "
+    spread: float = Field(1.1, ge=0, le=100, description="Std of other targets around the hedge or the holding, "
                                                  "in hedge moves (typical one-step change of the hedge).")
-    actions_per_state: int = Field(8, ge=2, description="Targets replayed on each state's market move.")
+    actions_per_state: int = Field(8, ge=2, le=256, description="Targets replayed on each state's market move.")
 
     @model_validator(mode="after")
     def _probabilities(self):
@@ -591,7 +621,7 @@ class _LearnedAgent(_NamedPolicy):
 
     exploration: ExplorationSpec = Field(default_factory=ExplorationSpec,
                                          description="Behaviour policy of the training transitions.")
-    band_widths: list[Annotated[float, Field(gt=0)]] | None = Field(
+    band_widths: list[Annotated[float, Field(gt=0, le=HALF_WIDTH_MAX)]] | None = Field(
         None, description="Band edges around the hedge among the candidate targets, in hedge moves; "
                           "default the agent's own.")
     drift: float | None = Field(None, description="Annual drift for the control variate; default estimated "
@@ -614,7 +644,7 @@ class FittedQAgentSpec(_LearnedAgent):
     linear_basis: BasisTerms | Literal["polynomial", "none"] = Field(
         "polynomial", description="Terms of the linear stage fitted before the regressor, which then fits what "
                                   "it leaves: the linear agent's default basis, a list of terms, or none.")
-    max_rows_per_step: int = Field(2_000_000, ge=1000, description="Regression rows kept per decision time "
+    max_rows_per_step: int = Field(2_000_000, ge=1000, le=PATHS_MAX, description="Regression rows kept per decision time "
                                    "(every r-th training state beyond it): bounds memory at any path count.")
 
     @model_validator(mode="after")
@@ -645,8 +675,8 @@ class LinearAgentSpec(_LearnedAgent):
     kind: Literal["linear"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
     basis: BasisTerms | None = Field(None, description="Basis terms (agents.features); default the polynomial set.")
-    ridge: float = Field(1e-6, ge=0, description="Ridge penalty relative to each column's sum of squares.")
-    smoothing: float = Field(0.0, ge=0, description="Shrinkage toward the next decision time's coefficients.")
+    ridge: float = Field(1e-6, ge=0, le=1e6, description="Ridge penalty relative to each column's sum of squares.")
+    smoothing: float = Field(0.0, ge=0, le=1e6, description="Shrinkage toward the next decision time's coefficients.")
 
 
 class GridDPAgentSpec(_NamedPolicy):
@@ -654,9 +684,9 @@ class GridDPAgentSpec(_NamedPolicy):
 
     kind: Literal["grid_dp"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    spot_points: int = Field(151, ge=11, description="Log-spot grid points.")
-    holding_points: int = Field(201, ge=11, description="Holding grid points (also the candidate targets).")
-    quadrature_nodes: int = Field(16, ge=4, description="Gauss-Hermite nodes of the next-spot expectation.")
+    spot_points: int = Field(151, ge=11, le=GRID_POINTS_MAX, description="Log-spot grid points.")
+    holding_points: int = Field(201, ge=11, le=GRID_POINTS_MAX, description="Holding grid points (also the candidate targets).")
+    quadrature_nodes: int = Field(16, ge=4, le=128, description="Gauss-Hermite nodes of the next-spot expectation.")
 
     def model_inputs(self, market) -> dict:
         """Constructor arguments that the agent takes from the market it solves: drift and volatility."""
@@ -669,14 +699,14 @@ class HestonGridDPAgentSpec(_NamedPolicy):
 
     kind: Literal["heston_grid_dp"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    spot_points: int = Field(HESTON_GRID_DEFAULTS["spot_points"], ge=11, description="Log-spot grid points.")
-    variance_points: int = Field(HESTON_GRID_DEFAULTS["variance_points"], ge=5,
+    spot_points: int = Field(HESTON_GRID_DEFAULTS["spot_points"], ge=11, le=GRID_POINTS_MAX, description="Log-spot grid points.")
+    variance_points: int = Field(HESTON_GRID_DEFAULTS["variance_points"], ge=5, le=GRID_POINTS_MAX,
                                  description="Variance grid points (equally spaced in volatility from 0).")
-    holding_points: int = Field(HESTON_GRID_DEFAULTS["holding_points"], ge=11,
+    holding_points: int = Field(HESTON_GRID_DEFAULTS["holding_points"], ge=11, le=GRID_POINTS_MAX,
                                 description="Holding grid points (also the candidate targets).")
-    variance_nodes: int = Field(HESTON_GRID_DEFAULTS["variance_nodes"], ge=3,
+    variance_nodes: int = Field(HESTON_GRID_DEFAULTS["variance_nodes"], ge=3, le=128,
                                 description="Quadrature nodes of the next variance.")
-    spot_nodes: int = Field(HESTON_GRID_DEFAULTS["spot_nodes"], ge=3,
+    spot_nodes: int = Field(HESTON_GRID_DEFAULTS["spot_nodes"], ge=3, le=128,
                             description="Gauss-Hermite nodes of the next spot given the variance.")
 
     def model_inputs(self, market) -> dict:
@@ -694,7 +724,7 @@ AgentSpec = Annotated[
 class ComputeSpec(_Spec):
     """How much of the machine a run uses."""
 
-    threads: int = Field(1, ge=1, description="BLAS and OpenMP threads of training and scoring: 1 keeps a busy "
+    threads: int = Field(1, ge=1, le=1024, description="BLAS and OpenMP threads of training and scoring: 1 keeps a busy "
                                               "machine from oversubscribing; results are the same at any count.")
 
 
@@ -702,19 +732,19 @@ class ReportSpec(_Spec):
     """Held-out report settings."""
 
     reference_policy: PolicyName = Field("delta", description="Policy the others are compared against.")
-    bootstrap_samples: int = Field(2000, ge=100, description="Bootstrap resamples for confidence intervals.")
+    bootstrap_samples: int = Field(2000, ge=100, le=1_000_000, description="Bootstrap resamples for confidence intervals.")
 
 
 class ExportSpec(_Spec):
     """Policy export settings."""
 
     policy: PolicyName | None = Field(None, description="Name of the policy to export; None = none chosen.")
-    moneyness_points: int = Field(101, ge=2, description="Hedge table nodes in moneyness (spot / reference spot).")
-    holding_points: int = Field(41, ge=2, description="Hedge table nodes in the current holding, shares.")
+    moneyness_points: int = Field(101, ge=2, le=TABLE_POINTS_MAX, description="Hedge table nodes in moneyness (spot / reference spot).")
+    holding_points: int = Field(41, ge=2, le=TABLE_POINTS_MAX, description="Hedge table nodes in the current holding, shares.")
     moneyness_width: float = Field(
-        4.0, gt=0, description="Half-width of the table's moneyness domain, in standard deviations of log spot "
+        4.0, gt=0, le=20, description="Half-width of the table's moneyness domain, in standard deviations of log spot "
                                "over the horizon (pricing volatility).")
-    state_points: int = Field(13, ge=2, description="Hedge table nodes in the observed variance or implied "
+    state_points: int = Field(13, ge=2, le=TABLE_POINTS_MAX, description="Hedge table nodes in the observed variance or implied "
                                                     "volatility, for a policy that reads it (equally spaced in "
                                                     "volatility).")
     currency: str | None = Field(None, description="Currency label written into the hedge table's sidecar.")
@@ -729,7 +759,7 @@ class Config(_Spec):
     """A desk's scenario: book, market, frictions, risk appetite, data and policies."""
 
     name: PolicyName = Field(description="Scenario name, used in run folder names.")
-    seed: int = Field(ge=0, description="Master seed; data seeds derive from it unless given.")
+    seed: int = Field(ge=0, le=SEED_MAX, description="Master seed; data seeds derive from it unless given.")
     description: str = Field("", description="Free text about the scenario.")
     market: MarketSpec = Field(description="Model of the underlying.")
     book: BookSpec = Field(description="Options to hedge.")
@@ -817,11 +847,11 @@ class Config(_Spec):
                 heldout = train + 1
         data.train_seed, data.heldout_seed = train, heldout
 
-        last_expiry = max(option.expiry_days for option in self.book.options)
+        last, last_expiry = max(enumerate(option.expiry_days for option in self.book.options), key=lambda o: o[1])
         if self.horizon_days > last_expiry * (1 + 1e-9):
             raise _rule(
-                f"the horizon (steps x step_days = {self.horizon_days:g} days) must not run past the last "
-                f"option expiry ({last_expiry:g} days)", "schedule", "steps"
+                f"the horizon (schedule.steps x schedule.step_days = {self.horizon_days:g} days) must not run past the last "
+                f"option expiry (book.options[{last}].expiry_days = {last_expiry:g})", "schedule", "steps"
             )
 
         # A trade of the whole book's notional moves the price by at most a factor e: beyond that the

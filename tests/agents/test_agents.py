@@ -453,3 +453,17 @@ def test_an_unfitted_agent_refuses_to_act_with_scikit_learns_not_fitted_error(ki
     problem, _ = default_problem()
     with pytest.raises(NotFittedError):
         AGENT_KINDS[kind](problem).act(np.array([[1.0, problem.horizon_years, 0.0]]))
+
+
+def test_an_unpenalised_fit_on_a_singular_basis_is_the_minimum_norm_least_squares_one():
+    # ridge = 0 is a valid config; two identical columns make X X^T singular. The fit must be the
+    # minimum-norm least-squares solution (numpy's lstsq on the design itself), not a LinAlgError.
+    from agents.linear import NormalEquations
+
+    rng = np.random.default_rng(4)
+    column = rng.normal(size=200)
+    X = np.vstack([column, column, rng.normal(size=200)])
+    y = 2.0 * column + 0.5 * X[2] + rng.normal(scale=0.1, size=200)
+    coef = NormalEquations.of(X, y).solve(ridge=0.0)
+    expected = np.linalg.lstsq(X.T, y, rcond=None)[0]
+    np.testing.assert_allclose(coef, expected, rtol=1e-8, atol=1e-10)

@@ -276,7 +276,7 @@ def test_bad_heston_settings_are_one_line_errors_naming_the_key(key, value, mess
 @pytest.mark.parametrize("key, value, message", [
     ("jump_intensity", -1.0, "market.jump_intensity: must be >= 0, got -1.0"),
     ("jump_std", -0.1, "market.jump_std: must be >= 0, got -0.1"),
-    ("volatility", 0.0, "market.volatility: must be > 0, got 0.0"),
+    ("volatility", 0.0, "market.volatility: must be >= 0.0001, got 0.0"),
     ("jump_mean", None, "market.jump_mean: required key missing"),
 ])
 def test_bad_merton_settings_are_one_line_errors_naming_the_key(key, value, message):
@@ -439,3 +439,18 @@ def test_the_gymnasium_env_on_heston_paths_shows_the_variance_and_passes_the_env
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         check_env(env)  # reference library: gymnasium.utils.env_checker (warnings allowed, errors not)
+
+
+def test_a_model_whose_prices_leave_the_floating_point_range_is_refused_naming_its_keys():
+    # 100 jumps a year of mean log size 2 (each within its config range) over 10 years: the log price
+    # moves by hundreds a year and exp overflows (or reaches 0). Before the check the paths carried inf
+    # and 0 into the marks, and a run ended in NaN numbers or a traceback.
+    from hedge_env.market import ModelRangeError
+
+    market = MertonMarket(spot=100.0, drift=0.0, volatility=0.2, jump_intensity=100.0, jump_mean=2.0, jump_std=2.0)
+    with pytest.raises(ModelRangeError) as info:
+        market.generate(10, 3650, 1 / 365, seed=1)
+    message = str(info.value)
+    assert "\n" not in message and message.startswith("market: ")
+    assert all(f"market.{key}" in message for key in ("jump_intensity", "jump_mean", "jump_std", "volatility"))
+    assert np.isfinite(market.generate(10, 10, 1 / 365, seed=1).spot).all()  # the same model, a short horizon

@@ -123,3 +123,26 @@ def test_merton_delta_is_the_derivative_of_its_price():
         up = pricer.value_delta_vega(spot + h, 100.0, 0.1, None, is_call)[0]
         down = pricer.value_delta_vega(spot - h, 100.0, 0.1, None, is_call)[0]
         np.testing.assert_allclose(delta, (up - down) / (2 * h), rtol=0, atol=1e-7)
+
+
+@pytest.mark.parametrize("xi", [1e-300, 1e-9])
+def test_heston_marks_go_to_black_scholes_at_the_mean_variance_as_the_vol_of_vol_goes_to_0(xi):
+    # With no vol of vol the variance is deterministic, v(t) = theta + (v0 - theta) exp(-kappa t), and
+    # the price is Black-Scholes at the mean variance over the life (from memory; Gatheral 2006, ch. 2).
+    # The difference from that limit is of order xi (the vanna term), far below the marks' 1e-6 at these.
+    # Before the exponents were taken without dividing by xi^2, 1e-300 divided by zero and 1e-9 lost
+    # every digit to cancellation.
+    from hedge_env.pricing import price_and_delta
+
+    pricer = HestonPricer(2.0, 0.04, xi, -0.7, 0.03, 0.01)
+    spot = np.array([80.0, 95.0, 100.0, 105.0, 130.0])
+    for days in (1, 10, 90, 730):
+        tau = days / 365.0
+        for v in (0.0004, 0.04, 0.2):
+            vol = math.sqrt(float(pricer.mean_variance(v, tau)))
+            for is_call in (True, False):
+                reference, reference_delta = price_and_delta(spot, 100.0, tau, vol, 0.03, 0.01, is_call)
+                for exact in (True, False):
+                    mine, delta, _ = pricer.value_delta_vega(spot, 100.0, tau, np.full(5, v), is_call, exact=exact)
+                    np.testing.assert_allclose(mine, reference, rtol=0, atol=1e-6 * 100.0)
+                    np.testing.assert_allclose(delta, reference_delta, rtol=0, atol=1e-4)

@@ -11,6 +11,7 @@ from pathlib import Path
 import joblib
 import numpy as np
 import pytest
+import tomli_w
 
 from rehedge.run_folder import load_run
 
@@ -96,7 +97,7 @@ def test_bad_config_is_one_line_with_key_and_rule_and_exit_code_2(tmp_path):
     bad.write_text(SMALL.replace("strike = 100.0", "strike = -5.0"))
     done = rehedge("run", str(bad), "--runs-dir", str(tmp_path / "runs"))
     assert done.returncode == 2
-    assert done.stderr.strip() == "error: book.options[0].strike: must be > 0, got -5.0"
+    assert done.stderr.strip() == "error: book.options[0].strike: must be >= 0.0001, got -5.0"
     assert not (tmp_path / "runs").exists()  # nothing half-written
 
 
@@ -283,3 +284,18 @@ def test_an_exponential_run_ranks_by_certainty_equivalent_and_quotes_indifferenc
     quoted = rehedge("quote", str(config), "--quiet")
     assert quoted.returncode == 0, quoted.stderr
     assert "exponential utility (a utility-indifference price)" in " ".join(quoted.stdout.split())
+
+
+def test_a_model_out_of_the_floating_point_range_ends_a_run_in_one_line_exit_2_and_writes_nothing(tmp_path):
+    config = tomllib.loads((ROOT / "configs" / "merton.toml").read_text())
+    config["market"].update(jump_intensity=100.0, jump_mean=2.0, jump_std=2.0)
+    config["book"]["options"][0]["expiry_days"] = 3650
+    config["schedule"].update(step_days=1.0, steps=3650)
+    config["data"].update(train_paths=50, heldout_paths=50)
+    path = tmp_path / "wild.toml"
+    path.write_text(tomli_w.dumps(config))
+    done = rehedge("run", str(path), "--runs-dir", str(tmp_path / "runs"), "--quiet")
+    assert done.returncode == 2, done.stderr
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: market: ") and "market.jump_mean" in lines[0], done.stderr
+    assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from pathlib import Path
 
@@ -175,7 +176,7 @@ def test_config_hash_ignores_formatting_and_spelt_out_defaults(tmp_path):
 BAD_INPUTS = [
     pytest.param(
         variant("strike = 95.0", "strike = -5"),
-        "book.options[1].strike: must be > 0, got -5",
+        "book.options[1].strike: must be >= 0.0001, got -5",
         id="negative-strike",
     ),
     pytest.param(
@@ -326,10 +327,10 @@ def test_each_reported_problem_is_one_line_and_the_count_of_others_is_given(tmp_
     text = variant("spot = 100.0", "spot = -1").replace("volatility = 0.2", "volatility = -1")
     with pytest.raises(ConfigError) as info:
         load_config(write(tmp_path, text))
-    assert str(info.value) == "market.spot: must be > 0, got -1 (and 1 more error)"
+    assert str(info.value) == "market.spot: must be >= 0.0001, got -1 (and 1 more error)"
     assert info.value.problems == (
-        "market.spot: must be > 0, got -1",
-        "market.volatility: must be > 0, got -1",
+        "market.spot: must be >= 0.0001, got -1",
+        "market.volatility: must be >= 0.0001, got -1",
     )
     assert all("\n" not in p for p in info.value.problems)
 
@@ -490,3 +491,60 @@ def test_the_heston_grid_optimum_needs_a_heston_market_with_model_marks_and_the_
     demo["agents"] = [{"kind": "heston_grid_dp"}]
     with pytest.raises(ConfigError, match=r"^agents\[0\]\.kind: heston_grid_dp solves a Heston market only"):
         parse_config(demo)
+
+
+# --- the memory estimate and the sweep's size, before any work -------------------------------
+
+
+def test_a_run_too_large_for_the_machine_is_refused_when_the_config_loads_naming_its_keys():
+    data = tomllib.loads(MINIMAL)
+    data["market"] = {"model": "heston", "spot": 100.0, "initial_variance": 0.04, "mean_reversion": 2.0,
+                      "long_run_variance": 0.04, "vol_of_vol": 0.5, "correlation": -0.7, "variance_observed": True}
+    data["agents"] = [{"kind": "heston_grid_dp", "spot_points": 2001, "variance_points": 2001,
+                       "holding_points": 2001}]  # each within its range; together 8e9 nodes a step
+    with pytest.raises(ConfigError) as error:
+        parse_config(data)
+    message = str(error.value)
+    assert message.startswith("agents[0].spot_points: the run would need about ")
+    assert "for agents[0]'s value and policy grids (set by agents[0].spot_points, agents[0].variance_points, " \
+           "agents[0].holding_points, schedule.steps)" in message and "\n" not in message
+
+
+@pytest.mark.parametrize("changes, key", [
+    ({"data": {"heldout_paths": 10_000_000}}, "data.heldout_paths"),
+    ({"data": {"chunk_paths": 10_000_000}}, "data.chunk_paths"),
+    ({"report": {"bootstrap_samples": 1_000_000}}, "report.bootstrap_samples"),
+    ({"data": {"train_paths": 2_000_000}, "agents": [{"kind": "linear"}]}, "data.train_paths"),
+])
+def test_the_memory_estimate_names_the_keys_of_its_largest_part(changes, key):
+    """On a machine of 4 GB (given, so the test does not depend on this one's memory)."""
+    from rehedge.budget import check_memory, memory_parts
+
+    data = tomllib.loads(MINIMAL)
+    data.update(changes)
+    config = parse_config(data) if key != "report.bootstrap_samples" else None
+    if config is None:  # a million resamples of 2,000 batches is 32 GB: refused here on any machine below 43 GB
+        config = Config.model_validate(data)
+    with pytest.raises(ConfigError, match=rf"^{re.escape(key)}: the run would need about .* of this machine's "
+                                          r"4\.0 GB\); make them smaller$"):
+        check_memory(config, memory=4 * 2**30)
+    check_memory(config, memory=sum(part.bytes for part in memory_parts(config)) / 0.75 + 1)  # fits: no error
+
+
+def test_a_hedge_table_larger_than_a_reader_accepts_is_refused_before_training():
+    data = tomllib.loads(MINIMAL)
+    data["export"] = {"policy": "delta", "moneyness_points": 1001, "holding_points": 1001}
+    with pytest.raises(ConfigError, match=r"^export.moneyness_points: the hedge table would have 30,060,030 rows, "
+                                          r"about 917 MB, more than the 512 MB a table may have"):
+        parse_config(data)
+
+
+def test_a_sweep_of_too_many_cells_is_refused_before_one_is_built(tmp_path):
+    text = MINIMAL + "\n[sweep]\n" + "\n".join(
+        f'"frictions.{key}" = [{", ".join(str(0.001 * i) for i in range(1, 101))}]'
+        for key in ("cost_rate", "fixed_cost", "borrow_fee"))
+    from rehedge.config import load_variants
+
+    with pytest.raises(ConfigError, match=r"^sweep: 1,000,000 cells \(the product of the lists' lengths\), more than "
+                                          r"the 10,000 a sweep may have"):
+        load_variants(write(tmp_path, text))
