@@ -34,6 +34,12 @@ adjusted control variates), their coefficients left out of the result:
 4. variance level: least squares of ``(e - fit 3)^2 - fit 2 - U2`` on them.
 
 ``CE = x . (mean coefficients - gamma/2 variance coefficients)``.
+
+The expansion holds only while gamma times the spread of a step's outcome given (s, a) is small:
+on configs/reference-exponential.toml that product is 0.13 to 0.45 over the decision times. Above
+``MAX_STEP_RISK = 1`` the dropped cumulants are as large as the kept ones and the fitted value
+runs away over the backward steps (a 1,000-share book at gamma 1 reached 5e5 by the third step,
+and its coefficients overflowed): the fit then refuses, with :class:`ExpansionRangeError`.
 """
 
 from __future__ import annotations
@@ -43,6 +49,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from agents.features import target_part
+
+MAX_STEP_RISK = 1.0
+
+
+class ExpansionRangeError(ValueError):
+    """gamma times one step's within-state spread is beyond what the cumulant expansion can carry; the
+    message is one line naming objective.risk_aversion."""
 
 
 @dataclass
@@ -106,6 +119,7 @@ def certainty_equivalent_fit(rows: StepRows, gamma: float, ridge: float,
     states = _controlled(on_state[:, :, 0], (move[:, 0], square_move[:, 0]))
     level = _ridge_solve(states, (residual - hedge_surprise).mean(axis=1), ridge)[:n_state]
     centred = residual - (level @ on_state[:, :, 0])[:, None]
+    _check_step_risk(gamma, centred)
     spread = centred * centred - np.tensordot(variance[:n_action], on_action, axes=1) - square_surprise
     level_variance = _ridge_solve(states, spread.mean(axis=1), ridge)[:n_state]
     coef = np.empty(len(X))
@@ -115,3 +129,16 @@ def certainty_equivalent_fit(rows: StepRows, gamma: float, ridge: float,
     target = (y - hedge_surprise - 0.5 * gamma * (residual * residual - square_surprise)
               - np.tensordot(controls, with_controls[n_action:], axes=1))
     return coef, target
+
+
+def _check_step_risk(gamma: float, residual: np.ndarray) -> None:
+    """Refuse when gamma times the root mean square of the residuals of the mean fit (within states
+    and level: Y less its fitted mean given (s, a)) is above MAX_STEP_RISK, or not a number."""
+    spread = float(np.sqrt(np.mean(residual * residual)))
+    risk = gamma * spread
+    if not risk <= MAX_STEP_RISK:
+        raise ExpansionRangeError(
+            f"objective.risk_aversion: gamma {gamma:g} times one step's spread of outcomes ({spread:,.4g} in "
+            f"currency) is {risk:.3g}, above the {MAX_STEP_RISK:g} the exponential agents' certainty-equivalent "
+            "fit can carry (its expansion in cumulants would run away); lower objective.risk_aversion (it is "
+            "per currency unit: a larger book needs a smaller one) or hedge a smaller book")

@@ -44,7 +44,7 @@ class _Commands(TyperGroup):
         except (typer.Exit, typer.Abort, typer.TyperException):  # exits and usage errors: main() prints them
             raise
         except Exception as error:  # noqa: BLE001 - a bug: the user sees one line, the log holds the stack
-            if _model_range_error(error):  # the input's fault, raised where the paths are simulated
+            if _input_range_error(error):  # the input's fault, found where the work is done
                 fail(str(error))
             from rehedge.crash import write_crash_log
 
@@ -54,11 +54,15 @@ class _Commands(TyperGroup):
                  f"in your input: the traceback is in {log}; please report it with the command", INTERNAL_ERROR)
 
 
-def _model_range_error(error: Exception) -> bool:
-    """Whether ``error`` is hedge_env.market.ModelRangeError (looked up only once the module is loaded,
-    so that commands that never simulate do not import it)."""
-    market = sys.modules.get("hedge_env.market")
-    return market is not None and isinstance(error, market.ModelRangeError)
+# Errors of the lower layers that say the input is out of a method's range, in one line naming its keys:
+# (module, class), looked up only once the module is loaded, so that commands that never simulate or
+# train do not import them.
+_INPUT_RANGE_ERRORS = (("hedge_env.market", "ModelRangeError"), ("agents.certainty", "ExpansionRangeError"))
+
+
+def _input_range_error(error: Exception) -> bool:
+    return any(isinstance(error, getattr(sys.modules[module], name)) for module, name in _INPUT_RANGE_ERRORS
+               if module in sys.modules)
 
 
 app = typer.Typer(

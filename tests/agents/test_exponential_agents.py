@@ -97,3 +97,27 @@ def test_no_learned_agent_beats_the_grid_optimum_beyond_the_noise(ten_days):
     versus_grid = certainty_equivalent_bootstrap(ten_days, "grid", 1.0, 1000, seed=9)
     for name in ("linear", "fitted_q", "linear_mv"):
         assert versus_grid[name]["ci_low"] < 0, name
+
+
+@pytest.mark.parametrize("agent", ["linear", "fitted_q"])
+def test_a_risk_aversion_beyond_the_expansion_is_refused_naming_the_key_not_fitted_to_overflow(agent):
+    # 1,000 shares of sold calls at gamma 1 per currency unit: one step's outcome spreads by about 200
+    # (gamma times it 200, against 0.13-0.45 on configs/reference-exponential.toml). The cumulant
+    # expansion cannot carry it; before the check the fit overflowed and the linear agent scored a
+    # certainty equivalent of -23,134 against delta's -2,300 on the same paths.
+    from agents.certainty import ExpansionRangeError
+
+    problem, market = default_problem()
+    problem = replace(problem, book=Book((OptionLeg("call", 100.0, 10, -10.0, 100.0),)),
+                      frictions=Frictions(cost_rate=0.001), schedule=Schedule(10, 1.0),
+                      objective=Objective(risk_aversion=1.0, kind="exponential"))
+    chunks = list(collect_chunks(problem, market, 2_000, 3, Exploration(), 2_000))
+    learner = (LinearBasisAgent(problem) if agent == "linear"
+               else FittedQAgent(problem, regressor=default_regressor().set_params(max_iter=5)))
+    with pytest.raises(ExpansionRangeError) as info:
+        learner.fit(lambda: chunks)
+    message = str(info.value)
+    assert message.startswith("objective.risk_aversion: ") and "\n" not in message
+    # The same book at a risk aversion a thousand times smaller is within the expansion and fits.
+    calm = replace(problem, objective=Objective(risk_aversion=1e-3, kind="exponential"))
+    LinearBasisAgent(calm).fit(lambda: list(collect_chunks(calm, market, 2_000, 3, Exploration(), 2_000)))
