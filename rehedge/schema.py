@@ -53,15 +53,15 @@ RATE_RANGE = (-0.2, 2.0)  # annual: policy rates have gone from -0.75% to above 
 EXPIRY_DAYS_MAX = 3660.0  # ten years of calendar days
 QUANTITY_MAX = 1e7  # contracts in one position
 SHARES_MAX = 1e12  # shares: more than any company has issued
-MONEY_MAX = 1e9  # currency, per trade
-RISK_AVERSION_MAX = 1e6  # per currency unit
+MONEY_MAX = 1e9  # currency, a fixed cost per trade: beyond any ticket charge
+RISK_AVERSION_MAX = 1e6  # per currency unit: a million times a desk's usual 1 per currency unit
 HALF_WIDTH_MAX = 10.0  # a band half-width, in shares per share of notional
 STEPS_MAX = 20_000  # rehedges in one horizon (ten years of hourly rehedges is about 20,000)
-PATHS_MAX = 50_000_000
-SEED_MAX = 2**63 - 1
+PATHS_MAX = 50_000_000  # paths in one set: the memory estimate refuses far fewer on most machines
+SEED_MAX = 2**63 - 1  # the largest integer TOML holds
 ROWS_MAX = 100_000  # trading days: four centuries of rows
-GRID_POINTS_MAX = 2001
-TABLE_POINTS_MAX = 10_001
+GRID_POINTS_MAX = 2001  # per axis of a grid optimum: its error is far below the noise at a few hundred
+TABLE_POINTS_MAX = 10_001  # per axis of an exported hedge table (its rows are capped too: rehedge/budget.py)
 
 
 def _rule(rule: str, *path: str | int) -> PydanticCustomError:
@@ -120,6 +120,14 @@ def _check_closed_unit(value: float) -> float:
     return value
 
 
+def _open_unit_or_none(value: float | None) -> float | None:
+    return value if value is None else _check_open_unit(value)
+
+
+_check_open_unit.range = _open_unit_or_none.range = ("> 0", "< 1")  # read by rehedge.config_ranges
+_check_closed_unit.range = (">= 0", "<= 1")
+
+
 def _inf_means_no_limit(value: Any) -> Any:
     if isinstance(value, float) and value == math.inf:
         return None
@@ -143,6 +151,7 @@ def _tunable(strictly_positive: bool, high: float):
             raise _rule(f"must be <= {_show(_num(high))} or 'tune', got {_show(value)}")
         return float(value)
 
+    check.range = (bound, f"<= {high:g}", "or 'tune'")  # read by rehedge.config_ranges
     return BeforeValidator(check)
 
 
@@ -291,7 +300,7 @@ class HistoricalMarket(_Spec):
     dividend_yield: float = Field(0.0, ge=0, le=0.5, description="Continuous dividend yield, annual decimal.")
     split_date: Annotated[datetime.date | None, BeforeValidator(_to_date)] = Field(
         None, description="First date of the held-out part (training: the dates before it).")
-    split_fraction: Annotated[float | None, AfterValidator(lambda v: v if v is None else _check_open_unit(v))] = Field(
+    split_fraction: Annotated[float | None, AfterValidator(_open_unit_or_none)] = Field(
         None, description="Share of the rows in the training part, if no split_date; default 0.7.")
     gap_days: int | None = Field(None, ge=0, le=ROWS_MAX, description="Trading days (rows) skipped between the training and "
                                                          "the held-out part; default one horizon.")
@@ -624,7 +633,7 @@ class _LearnedAgent(_NamedPolicy):
     band_widths: list[Annotated[float, Field(gt=0, le=HALF_WIDTH_MAX)]] | None = Field(
         None, description="Band edges around the hedge among the candidate targets, in hedge moves; "
                           "default the agent's own.")
-    drift: float | None = Field(None, description="Annual drift for the control variate; default estimated "
+    drift: float | None = Field(None, ge=-2, le=2, description="Annual drift for the control variate; default estimated "
                                                   "from the training paths.")
     anchor: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
         "delta", description="The hedge the agent measures its targets from: the Black-Scholes delta (the "

@@ -548,3 +548,13 @@ def test_a_sweep_of_too_many_cells_is_refused_before_one_is_built(tmp_path):
     with pytest.raises(ConfigError, match=r"^sweep: 1,000,000 cells \(the product of the lists' lengths\), more than "
                                           r"the 10,000 a sweep may have"):
         load_variants(write(tmp_path, text))
+
+
+def test_the_config_ranges_page_is_what_the_schema_checks():
+    # docs/config-ranges.md is generated from the schema (python -m rehedge.config_ranges): a range
+    # changed in one and not the other fails here.
+    from rehedge.config_ranges import ranges_markdown
+
+    page = (Path(__file__).resolve().parents[2] / "docs" / "config-ranges.md").read_text()
+    assert page == ranges_markdown(), "regenerate: python -m rehedge.config_ranges > docs/config-ranges.md"
+    assert "| any |" not in page  # every numeric key has a documented range
