@@ -104,3 +104,86 @@ def test_transitions_concat_of_the_chunks_holds_every_path_once(setting):
     chunks = list(collect_training_chunks(problem, paths, Exploration(), SEED, CHUNK))
     whole = Transitions.concat(chunks)
     assert whole.n_states == PATHS and [c.n_states for c in chunks] == [CHUNK] * (PATHS // CHUNK)
+
+
+PARENT_SCRIPT = """
+import os, sys, threading
+from pathlib import Path
+from rehedge.workers import run_each
+
+folder = Path(sys.argv[1])
+
+def hold(index):
+    (folder / f"worker-{index}-{os.getpid()}").write_text("")
+    threading.Event().wait()  # a cell that runs until something ends it
+
+for _ in run_each(hold, range(2), workers=2):
+    pass
+"""
+
+
+def _alive(pid: int) -> bool:
+    import os
+
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    try:  # a zombie is gone for our purposes (its parent, killed, cannot reap it)
+        return "State:\tZ" not in open(f"/proc/{pid}/status").read()
+    except OSError:
+        return False
+
+
+def _children(pid: int) -> list[int]:
+    """Processes whose parent is ``pid`` (from /proc)."""
+    from pathlib import Path
+
+    found = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == pid:
+            found.append(int(stat.parent.name))
+    return found
+
+
+def test_local_workers_end_when_the_process_that_started_them_is_killed(tmp_path):
+    # The moment acted on is controlled: the parent is killed only once both workers have started
+    # their task (each writes a file). Then every worker, and every helper the parent started (loky's
+    # resource trackers), must be gone; the deadline is only a bound
+    # on a busy machine, the watch itself polls every rehedge.workers.PARENT_POLL_SECONDS. Before the
+    # watch the two workers (blocked in their task) outlived the parent for good.
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    parent = subprocess.Popen([sys.executable, "-c", PARENT_SCRIPT, str(tmp_path)])
+    try:
+        deadline = time.monotonic() + 180
+        while len(list(tmp_path.glob("worker-*"))) < 2:
+            assert parent.poll() is None, "the parent ended before its workers started"
+            assert time.monotonic() < deadline, "the workers never started"
+            time.sleep(0.05)
+        workers = [int(path.name.split("-")[2]) for path in tmp_path.glob("worker-*")]
+        assert all(_alive(pid) for pid in workers)
+        workers = sorted(set(workers) | set(_children(parent.pid)))
+        assert len(workers) >= 3  # two workers and at least one helper
+        os.kill(parent.pid, signal.SIGKILL)
+        parent.wait()
+        deadline = time.monotonic() + 60
+        while any(_alive(pid) for pid in workers) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert not any(_alive(pid) for pid in workers), workers
+    finally:
+        if parent.poll() is None:
+            parent.kill()
+        for path in tmp_path.glob("worker-*"):
+            try:
+                os.kill(int(path.name.split("-")[2]), signal.SIGKILL)
+            except ProcessLookupError:
+                pass
