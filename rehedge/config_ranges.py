@@ -43,7 +43,7 @@ def _reasons() -> str:
     lines = []
     for line in inspect.getsource(schema).splitlines():
         match = re.match(r"^([A-Z][A-Z_]+) = (.+?)(?:\s+#\s*(.*))?$", line)
-        if match and re.search(r"_(RANGE|MAX)$", match.group(1)):
+        if match and re.search(r"_(RANGE|MAX|MIN)$", match.group(1)):
             name, value, reason = match.groups()
             lines.append(f"- `{name}` = {value}" + (f": {reason}" if reason else ""))
     return "\n".join(lines) + "\n"
