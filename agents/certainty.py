@@ -54,8 +54,8 @@ MAX_STEP_RISK = 1.0
 
 
 class ExpansionRangeError(ValueError):
-    """gamma times one step's within-state spread is beyond what the cumulant expansion can carry; the
-    message is one line naming objective.risk_aversion."""
+    """gamma times the spread of a step's outcome given (s, a) is beyond what the cumulant expansion
+    can carry; the message is one line naming objective.risk_aversion."""
 
 
 @dataclass

@@ -70,6 +70,11 @@ def _gauss_legendre(n: int) -> tuple[np.ndarray, np.ndarray]:
     return np.polynomial.legendre.leggauss(n)
 
 
+# The least mean variance the integration's step in u is scaled to: a variance that stays near 0
+# (at v = 0 with kappa near 0) would otherwise make the step infinite.
+_MEAN_VARIANCE_FLOOR = 1e-12
+
+
 def _log1p_ratio(y: np.ndarray) -> np.ndarray:
     """``log(1 + y) / y`` for complex ``y``, 1 at 0: its series below ``|y| = 1e-3`` (the first
     dropped term is under 2e-13), the logarithm above (rounding under 1e-13 relative there)."""
@@ -131,7 +136,7 @@ class HestonPricer:
 
     def _nodes(self, tau: float, v_low: float, x_high: float) -> tuple[np.ndarray, np.ndarray]:
         """Quadrature nodes and weights in u good for every path with ``v >= v_low``, ``|x| <= x_high``."""
-        scale = math.sqrt(max(float(self.mean_variance(v_low, tau)), 1e-12) * tau)
+        scale = math.sqrt(max(float(self.mean_variance(v_low, tau)), _MEAN_VARIANCE_FLOOR) * tau)
         trial = np.geomspace(0.5, 1e4, 300) / scale
         c, d = self.exponents(trial - 0.5j, tau)
         size = np.exp(np.real(c + d * v_low) + 0.5 * x_high) / (trial * trial + 0.25)
@@ -303,7 +308,7 @@ def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -
     on it converges geometrically; steps of ``t = u sqrt(w tau)`` resolve the oscillation of
     ``e^{i u x} = e^{i t z}`` over the table's z range."""
     w = float(pricer.mean_variance(v, tau))
-    scale = math.sqrt(max(w, 1e-12) * tau)  # as _nodes: a variance that stays near 0 (kappa near 0 at v = 0)
+    scale = math.sqrt(max(w, _MEAN_VARIANCE_FLOOR) * tau)
     x_high = float(np.abs(x).max())
     step = _T_STEP / scale  # in u
     blocks = []

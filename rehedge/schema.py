@@ -134,13 +134,13 @@ _check_closed_unit.range = (">= 0", "<= 1")
 VOL_OF_VOL_MIN = 1e-6  # a vol of vol below it is 0 to rounding, and the simulation overflows; 0 itself is exact
 
 
-def _zero_or_tiny_free(value: float) -> float:
+def _check_vol_of_vol(value: float) -> float:
     if 0 < value < VOL_OF_VOL_MIN:
         raise _rule(f"must be 0 (a deterministic variance) or >= {VOL_OF_VOL_MIN:g}, got {_show(_num(value))}")
     return value
 
 
-_zero_or_tiny_free.range = (f"not in (0, {VOL_OF_VOL_MIN:g})",)
+_check_vol_of_vol.range = (f"not in (0, {VOL_OF_VOL_MIN:g})",)
 
 
 def _inf_means_no_limit(value: Any) -> Any:
@@ -225,7 +225,7 @@ class HestonMarket(_SimulatedMarketSpec):
     initial_variance: float = Field(ge=0, le=VARIANCE_MAX, description="Variance v0 at the start, annual decimal^2 (0.04 = 20% vol).")
     mean_reversion: float = Field(ge=0, le=100, description="Mean-reversion speed kappa of the variance, per year.")
     long_run_variance: float = Field(ge=0, le=VARIANCE_MAX, description="Long-run variance theta, annual decimal^2.")
-    vol_of_vol: Annotated[float, AfterValidator(_zero_or_tiny_free)] = Field(
+    vol_of_vol: Annotated[float, AfterValidator(_check_vol_of_vol)] = Field(
         ge=0, le=5, description="Volatility xi of the variance, per sqrt(year).")
     correlation: float = Field(ge=-1, le=1, description="Correlation rho of price and variance shocks, in [-1, 1].")
     variance_observed: bool = Field(

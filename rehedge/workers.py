@@ -55,9 +55,7 @@ def limited(threads: int, function: Callable, *args) -> Any:
 def _alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:  # a process of another user holds the pid: ours is gone
+    except (ProcessLookupError, PermissionError):  # gone, or its pid now another user's process
         return False
     return True
 

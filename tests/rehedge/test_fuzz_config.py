@@ -168,17 +168,16 @@ def key_path(path: tuple) -> str:
 
 
 def _bounds(path: tuple) -> list[tuple[str, float]]:
-    field = _model_of(path[:-1]).model_fields[path[-1]]
+    return _bounds_in(_model_of(path[:-1]), path[-1])
+
+
+def _bounds_in(model_class, name: str) -> list[tuple[str, float]]:
+    """(kind, bound) of each of a field's pydantic bounds: gt, ge, lt, le."""
     found = []
-    for item in field.metadata:
-        if isinstance(item, Gt):
-            found.append(("gt", float(item.gt)))
-        elif isinstance(item, Ge):
-            found.append(("ge", float(item.ge)))
-        elif isinstance(item, Lt):
-            found.append(("lt", float(item.lt)))
-        elif isinstance(item, Le):
-            found.append(("le", float(item.le)))
+    for item in model_class.model_fields[name].metadata:
+        for kind, cls in (("gt", Gt), ("ge", Ge), ("lt", Lt), ("le", Le)):
+            if isinstance(item, cls):
+                found.append((kind, float(getattr(item, kind))))
     return found
 
 
@@ -342,15 +341,6 @@ def _model_base(model: str) -> dict:
 
 MODEL_CASES = [(model, ("market", key)) for model, market in MODEL_MARKETS.items() for key in market
                if key not in _model_of(("market",)).model_fields and key != "model"]
-
-
-def _bounds_in(model_class, name: str) -> list[tuple[str, float]]:
-    found = []
-    for item in model_class.model_fields[name].metadata:
-        for kind, cls in (("gt", Gt), ("ge", Ge), ("lt", Lt), ("le", Le)):
-            if isinstance(item, cls):
-                found.append((kind, float(getattr(item, kind))))
-    return found
 
 
 def _extremes(path: tuple, model: str | None = None) -> list:
