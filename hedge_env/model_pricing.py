@@ -59,10 +59,16 @@ _GROUP = 256
 _CUTOFF = 1e-18
 _POLE_NODES = 48
 _POLE_RANGE = 2.0
-_MAX_PANELS = 2_000
+_MAX_PANELS = 200_000  # 3.2 million nodes: beyond, the integral raises rather than stop short
 _PANEL_NODES = 16
+_NODE_BLOCK = 4096
 _TRAPEZOID_MAX = 64 * 256  # nodes: 126 MB of e^{i t z} at most
 _TRAPEZOID_BLOCK = 256
+
+
+class MarkAccuracyError(ValueError):
+    """The model's marks cannot be computed to their stated accuracy for these parameters and paths;
+    the message is one line naming the model's parameters (the config's market keys)."""
 
 
 @lru_cache(maxsize=64)
@@ -135,21 +141,32 @@ class HestonPricer:
         return theta + (np.asarray(v, dtype=float) - theta) * (-math.expm1(-kappa * tau)) / (kappa * tau)
 
     def _nodes(self, tau: float, v_low: float, x_high: float) -> tuple[np.ndarray, np.ndarray]:
-        """Quadrature nodes and weights in u good for every path with ``v >= v_low``, ``|x| <= x_high``."""
+        """Quadrature nodes and weights in u good for every path with ``v >= v_low``, ``|x| <= x_high``.
+
+        Raises :class:`MarkAccuracyError` rather than cut the integral short: when the integrand has
+        not fallen below the cutoff by ``1e4`` of its own scale, or the panels would exceed
+        ``_MAX_PANELS`` (a path tens of thousands of standard deviations from the strike)."""
         scale = math.sqrt(max(float(self.mean_variance(v_low, tau)), _MEAN_VARIANCE_FLOOR) * tau)
         trial = np.geomspace(0.5, 1e4, 300) / scale
         c, d = self.exponents(trial - 0.5j, tau)
-        size = np.exp(np.real(c + d * v_low) + 0.5 * x_high) / (trial * trial + 0.25)
-        below = np.nonzero(size * trial < _CUTOFF)[0]
-        u_max = max(float(trial[below[0]]) if below.size else float(trial[-1]), 2.0 * _POLE_RANGE)
+        log_size = np.real(c + d * v_low) + 0.5 * x_high - np.log(trial * trial + 0.25) + np.log(trial)
+        below = np.nonzero(log_size < math.log(_CUTOFF))[0]
+        if not below.size:
+            raise MarkAccuracyError(self._describe(tau, "the Fourier integrand does not decay below 1e-18 "
+                                                        f"by u = {trial[-1]:.3g}"))
+        u_max = max(float(trial[below[0]]), 2.0 * _POLE_RANGE)
         # Panels of a 16-node Gauss-Legendre rule: doubling in width from the pole region (where
         # 1 / (u^2 + 1/4) changes by its own size), up to a width that keeps the oscillation
         # e^{i u x} under 1.5 radians and the decay under one scale per panel.
         widest = min(1.5 / max(x_high, 1e-12), 1.0 / scale)
         edges = [_POLE_RANGE]
-        while edges[-1] < u_max and len(edges) <= _MAX_PANELS:
-            edges.append(edges[-1] + min(edges[-1], widest))
-        edges = np.asarray(edges)
+        while edges[-1] < u_max and edges[-1] < widest:
+            edges.append(2.0 * edges[-1])
+        wide = math.ceil(max(u_max - edges[-1], 0.0) / widest)
+        if len(edges) + wide > _MAX_PANELS:
+            raise MarkAccuracyError(self._describe(tau, f"a path at log-moneyness {x_high:.3g} needs "
+                                                        f"{len(edges) + wide:,} panels (at most {_MAX_PANELS:,})"))
+        edges = np.concatenate([edges, edges[-1] + widest * np.arange(1, wide + 1)])
         a, wa = _gauss_legendre(_POLE_NODES)
         b, wb = _gauss_legendre(_PANEL_NODES)
         half = 0.5 * np.diff(edges)[:, None]
@@ -157,30 +174,51 @@ class HestonPricer:
         weights = np.concatenate([0.5 * _POLE_RANGE * wa, (half * wb).ravel()])
         return u, weights
 
+    def _describe(self, tau: float, problem: str) -> str:
+        return (f"Heston marks for an expiry {tau * 365.0:.4g} d away (mean_reversion {self.mean_reversion:g}, "
+                f"long_run_variance {self.long_run_variance:g}, vol_of_vol {self.vol_of_vol:g}, correlation "
+                f"{self.correlation:g}): {problem}")
+
     def normalized_call(self, x, v, tau: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """``c, c_x, c_v`` at log forward-moneyness ``x`` and variance ``v`` (arrays alike) by the integral.
 
-        Paths are taken in groups of similar variance, each with the nodes its lowest variance and
-        largest ``|x|`` need (the decay of the integrand is set by the variance)."""
+        Paths are taken in groups, each on the nodes its lowest variance and largest ``|x|`` need (the
+        decay of the integrand is set by the variance, the width of its panels by ``|x|``): groups of
+        similar variance, split by ``|x|`` where the pair would need far more panels than any of its
+        paths alone (a far-from-the-money path beside one at a variance near 0). Every path is
+        integrated to its own cutoff or beyond, so its price does not depend on its company."""
         x = np.atleast_1d(np.asarray(x, dtype=float))
         v = np.maximum(np.broadcast_to(np.atleast_1d(np.asarray(v, dtype=float)), x.shape), 0.0)
         out = np.empty((3, x.size))
+        # Panels a path needs, up to a factor: its |x| over the scale of its decay (at least 1).
+        scale = np.sqrt(np.maximum(self.mean_variance(v, tau), _MEAN_VARIANCE_FLOOR) * tau)
+        need = np.maximum(np.abs(x) / scale, 1.0)
         order = np.argsort(v, kind="stable")
-        for start in range(0, x.size, _GROUP):
-            rows = order[start:start + _GROUP]
+        pending = [order[start:start + _GROUP] for start in range(0, x.size, _GROUP)]
+        while pending:
+            rows = pending.pop()
+            together = max(float(np.abs(x[rows]).max()) / float(scale[rows].min()), 1.0)
+            if rows.size > 1 and together > 4.0 * float(need[rows].max()) + 64.0:
+                by_size = rows[np.argsort(np.abs(x[rows]), kind="stable")]
+                pending += [by_size[: rows.size // 2], by_size[rows.size // 2:]]
+                continue
             out[:, rows] = self._integrals(x[rows], v[rows], tau)
         return out[0], out[1], out[2]
 
     def _integrals(self, x: np.ndarray, v: np.ndarray, tau: float) -> np.ndarray:
         u, weights = self._nodes(tau, float(v.min()), float(np.abs(x).max()))
-        c_u, d_u = self.exponents(u - 0.5j, tau)
-        scaled = weights / (u * u + 0.25)
-        terms = np.exp(1j * np.multiply.outer(x, u) + c_u + np.multiply.outer(v, d_u))
-        integral = np.real(terms) @ scaled
-        integral_x = np.real(terms * (1j * u)) @ scaled
-        integral_v = np.real(terms * d_u) @ scaled
+        integral = np.zeros((3, x.size))
+        for start in range(0, u.size, _NODE_BLOCK):  # blocks of nodes: the matrix stays small
+            part = slice(start, start + _NODE_BLOCK)
+            c_u, d_u = self.exponents(u[part] - 0.5j, tau)
+            scaled = weights[part] / (u[part] * u[part] + 0.25)
+            terms = np.exp(1j * np.multiply.outer(x, u[part]) + c_u + np.multiply.outer(v, d_u))
+            integral[0] += np.real(terms) @ scaled
+            integral[1] += np.real(terms * (1j * u[part])) @ scaled
+            integral[2] += np.real(terms * d_u) @ scaled
         half, whole = np.exp(0.5 * x) / math.pi, np.exp(x)
-        return np.stack([whole - half * integral, whole - half * (0.5 * integral + integral_x), -half * integral_v])
+        return np.stack([whole - half * integral[0], whole - half * (0.5 * integral[0] + integral[1]),
+                         -half * integral[2]])
 
     def value_delta_vega(self, spot, strike: float, tau: float, variance, is_call: bool, scale: float = 1.0,
                          exact: bool = False):
