@@ -184,8 +184,9 @@ class HestonPricer:
 
         Paths are taken in groups, each on the nodes its lowest variance and largest ``|x|`` need (the
         decay of the integrand is set by the variance, the width of its panels by ``|x|``): groups of
-        similar variance, split by ``|x|`` where the pair would need far more panels than any of its
-        paths alone (a far-from-the-money path beside one at a variance near 0). Every path is
+        similar variance, halved by ``|x|`` or by variance while the group's work (paths x panels) is
+        over twice what its paths would need alone (a far-from-the-money path beside one at a
+        variance near 0 would make every path of the group integrate as far and as finely as both). Every path is
         integrated to its own cutoff or beyond, so its price does not depend on its company."""
         x = np.atleast_1d(np.asarray(x, dtype=float))
         v = np.maximum(np.broadcast_to(np.atleast_1d(np.asarray(v, dtype=float)), x.shape), 0.0)
@@ -195,12 +196,18 @@ class HestonPricer:
         need = np.maximum(np.abs(x) / scale, 1.0)
         order = np.argsort(v, kind="stable")
         pending = [order[start:start + _GROUP] for start in range(0, x.size, _GROUP)]
+        def together(rows: np.ndarray) -> float:  # panels of the group's nodes, up to the same factor
+            return max(float(np.abs(x[rows]).max()) / float(scale[rows].min()), 1.0)
+
         while pending:
             rows = pending.pop()
-            together = max(float(np.abs(x[rows]).max()) / float(scale[rows].min()), 1.0)
-            if rows.size > 1 and together > 4.0 * float(need[rows].max()) + 64.0:
-                by_size = rows[np.argsort(np.abs(x[rows]), kind="stable")]
-                pending += [by_size[: rows.size // 2], by_size[rows.size // 2:]]
+            if rows.size > 1 and rows.size * (together(rows) + 64.0) > 2.0 * float((need[rows] + 64.0).sum()):
+                # Halve by |x| or by the scale, whichever leaves less work (paths x panels).
+                halves = []
+                for key in (np.abs(x[rows]), scale[rows]):
+                    ranked = rows[np.argsort(key, kind="stable")]
+                    halves.append((ranked[: rows.size // 2], ranked[rows.size // 2:]))
+                pending += min(halves, key=lambda pair: sum(part.size * together(part) for part in pair))
                 continue
             out[:, rows] = self._integrals(x[rows], v[rows], tau)
         return out[0], out[1], out[2]
