@@ -26,7 +26,10 @@ Many paths at one time share ``tau``: :func:`heston_table` tabulates ``c, c_x, c
 ``tau``, less the Black-Scholes ``c`` at the expected mean variance ``w(v)`` (the difference is
 small and smooth), on a grid of standardised log-moneyness ``z = x / sqrt(w(v) tau)`` and
 ``y = v^(1/4)``; paths are read off it by cubic convolution and the Black-Scholes part added back
-in closed form. Paths beyond its variance range are priced by the integral itself.
+in closed form. The table checks itself when it is built, against rows computed between its nodes:
+a path is read off it only in a cell that met the marks' tolerances there (1e-6 of spot, 1e-4 of a
+share per share), and beyond its z range only where the tails are provably within them; every
+other path is priced by the integral.
 
 Merton. The series of Black-Scholes prices conditional on the number of jumps (Merton 1976): with
 ``k = E[J] - 1``, ``lambda' = lambda (1 + k)``, ``n`` jumps weigh ``e^{-lambda' tau} (lambda'
@@ -39,19 +42,20 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from functools import cached_property, lru_cache
+from functools import lru_cache
 
 import numpy as np
+from scipy.signal import CZT
 from scipy.special import ndtr
 
 from hedge_env import pricing
 
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 
-# The table: standardised log-moneyness z in [-Z, Z] at Z_POINTS nodes, y = v^(1/4) in
-# [0, y_max] at Y_POINTS nodes (y_max from the parameters, see heston_table).
+# The table: standardised log-moneyness z in [-Z, Z] at Z_POINTS nodes (steps of 0.05 standard
+# deviations), y = v^(1/4) in [0, y_max] at Y_POINTS nodes (y_max from the parameters, see heston_table).
 TABLE_Z = 24.0
-TABLE_Z_POINTS = 481
+TABLE_Z_POINTS = 961
 TABLE_Y_POINTS = 61
 # Paths priced by the integral in one group (of similar variance: they share the nodes).
 _GROUP = 256
@@ -62,7 +66,7 @@ _POLE_RANGE = 2.0
 _MAX_PANELS = 200_000  # 3.2 million nodes: beyond, the integral raises rather than stop short
 _PANEL_NODES = 16
 _NODE_BLOCK = 4096
-_TRAPEZOID_MAX = 64 * 256  # nodes: 126 MB of e^{i t z} at most
+_TRAPEZOID_MAX = 64 * 256  # t nodes at most: beyond, a row is not trusted
 _TRAPEZOID_BLOCK = 256
 
 
@@ -275,88 +279,106 @@ def _keys_weights(t: np.ndarray) -> np.ndarray:
                      -1.5 * t3 + 2.0 * t2 + 0.5 * t, 0.5 * t3 - 0.5 * t2])
 
 
+def _interpolate(stacked: np.ndarray, zi: np.ndarray, si: np.ndarray) -> np.ndarray:
+    """(3, n) cubic convolution of the (y node x z node, part) values at grid coordinates ``zi, si``
+    (each with its 4-node stencil inside the grid)."""
+    z0, s0 = np.floor(zi).astype(np.intp), np.floor(si).astype(np.intp)
+    wz, ws = _keys_weights(zi - z0), _keys_weights(si - s0)
+    corner = (s0 - 1) * TABLE_Z_POINTS + (z0 - 1)
+    total = np.zeros((zi.size, 3))
+    for a in range(4):  # one gather of the three parts per stencil node
+        for b in range(4):
+            total += (ws[a] * wz[b])[:, None] * stacked.take(corner + (a * TABLE_Z_POINTS + b), axis=0)
+    return total.T
+
+
 @dataclass(frozen=True)
 class HestonTable:
-    """``c, c_x, c_v`` of one ``tau`` on the (z, s) grid; see the module docstring."""
+    """``c, c_x, c_v`` of one ``tau`` on the (z, y) grid, with the cells it may be read in; see
+    :func:`heston_table`."""
 
     pricer: HestonPricer
     tau: float
     y_step: float
-    values: np.ndarray  # (3, Y_POINTS + 3, Z_POINTS), Heston less Black-Scholes: y from -y_step to y_max + 2 steps
-
-    @cached_property
-    def stacked(self) -> np.ndarray:
-        """The values as (y node x z node, part): the three parts of a node side by side."""
-        return np.ascontiguousarray(self.values.reshape(3, -1).T)
+    stacked: np.ndarray  # (y node x z node, part): Heston less Black-Scholes, y from -y_step to y_max + 2 steps
+    trusted: np.ndarray  # (y nodes, z nodes) bool: cell [s0, z0] (by its lower-left node) within tolerance
+    tails: np.ndarray  # (2, y nodes) bool: beyond the z range below / above, Black-Scholes is within tolerance
 
     @property
     def z_step(self) -> float:
         return 2.0 * TABLE_Z / (TABLE_Z_POINTS - 1)
 
+    def coordinates(self, x: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Grid coordinates (fractional z and y node indices, y counted from the row below 0)."""
+        z = x / np.sqrt(self.pricer.mean_variance(v, self.tau) * self.tau)
+        return (z + TABLE_Z) / self.z_step, np.sqrt(np.sqrt(v)) / self.y_step + 1.0
+
     def lookup(self, x: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         shape = np.shape(x)
         x, v = np.ravel(x), np.maximum(np.ravel(v), 0.0)
-        y = np.sqrt(np.sqrt(v))
-        z = x / np.sqrt(self.pricer.mean_variance(v, self.tau) * self.tau)
-        # Grid coordinates: the 4-node stencil must lie inside (y rows start one step below 0).
-        zi = (z + TABLE_Z) / self.z_step
-        si = y / self.y_step + 1.0
-        in_variance = si < self.values.shape[1] - 2.0
-        inside = in_variance & (zi >= 1.0) & (zi < TABLE_Z_POINTS - 2.0)
-        # Beyond the z range (deep in or out of the money, over 24 standard deviations) the difference
-        # from Black-Scholes is left out: at the table's edges it is 2e-12 of the discounted strike up
-        # to 30 days and 1.4e-7 at a year for configs/heston.toml's model (docs/references.md).
-        # Beyond its variance range a path is priced by the integral.
+        zi, si = self.coordinates(x, v)
+        # The 4-node stencil must lie inside the grid and the cell must have passed its check;
+        # beyond the z range (deep in or out of the money) the difference from Black-Scholes is left
+        # out where the tails' check allows it. Everything else is priced by the integral.
+        in_variance = si < self.trusted.shape[0] - 2.0
+        in_z = (zi >= 1.0) & (zi < TABLE_Z_POINTS - 2.0)
+        s0 = np.where(in_variance, np.floor(si), 0).astype(np.intp)
+        z0 = np.clip(np.floor(zi), 0, TABLE_Z_POINTS - 1).astype(np.intp)
+        inside = in_variance & in_z & self.trusted[s0, z0]
+        tail = in_variance & ~in_z & self.tails[(zi >= 1.0).astype(np.intp), s0]
         out = _black_normalized(x, v, self.pricer, self.tau)
         if inside.any():
-            zi_in, si_in = zi[inside], si[inside]
-            z0, s0 = np.floor(zi_in).astype(np.intp), np.floor(si_in).astype(np.intp)
-            wz, ws = _keys_weights(zi_in - z0), _keys_weights(si_in - s0)
-            # One gather of the three parts per stencil node, from the (node, part) layout.
-            nodes = self.stacked
-            corner = (s0 - 1) * TABLE_Z_POINTS + (z0 - 1)
-            total = np.zeros((zi_in.size, 3))
-            for a in range(4):
-                for b in range(4):
-                    total += (ws[a] * wz[b])[:, None] * nodes.take(corner + (a * TABLE_Z_POINTS + b), axis=0)
-            out[:, inside] += total.T
-        if not in_variance.all():
-            outside = ~in_variance
-            out[:, outside] = np.stack(self.pricer.normalized_call(x[outside], v[outside], self.tau))
+            out[:, inside] += _interpolate(self.stacked, zi[inside], si[inside])
+        exact = ~(inside | tail)
+        if exact.any():
+            out[:, exact] = np.stack(self.pricer.normalized_call(x[exact], v[exact], self.tau))
         return out[0].reshape(shape), out[1].reshape(shape), out[2].reshape(shape)
 
 
 # The table's trapezoid step in t = u sqrt(w tau): resolves e^{i t z} over |z| <= TABLE_Z.
 _T_STEP = min(0.2, 2.0 / TABLE_Z)
+# The points each row is computed at: the z nodes, then a quarter of a step above each node but the
+# last (one check point per cell).
+_Z_NODES = np.linspace(-TABLE_Z, TABLE_Z, TABLE_Z_POINTS)
+_Z_STEP = _Z_NODES[1] - _Z_NODES[0]
+_CHECK_AT = 0.25
 
 
-_FOURIER: list[np.ndarray] = []  # the largest e^{i t z} matrix made so far
+# What the table must meet wherever it is read (else the integral prices the path): a mark within
+# PRICE_TOLERANCE of spot, a delta within DELTA_TOLERANCE of a share per share, and dV/dv within
+# DELTA_TOLERANCE / xi (its weight in the minimum-variance delta, rho xi / S dV/dv, is at most xi / S).
+# The check reads errors where cubic interpolation errs most and allows them a quarter of the
+# tolerance (_CHECK_SHARE).
+PRICE_TOLERANCE = 1e-6
+DELTA_TOLERANCE = 1e-4
+_CHECK_SHARE = 0.25
+
+@lru_cache(maxsize=16)
+def _chirp_transforms(columns: int) -> tuple[CZT, CZT]:
+    """Sums ``sum_k f_k e^{i t_k z}`` over ``columns`` t nodes (``t_k = k _T_STEP``) at the z nodes
+    and at the check points: both grids are uniform, so each is a chirp z-transform (Bluestein's
+    FFT, O(n log n) against the n^2 of the direct sum), the same for every row of every table as
+    both grids are in standardised units."""
+    spin = np.exp(1j * _T_STEP * _Z_STEP)
+    return (CZT(columns, TABLE_Z_POINTS, w=spin, a=np.exp(-1j * _T_STEP * _Z_NODES[0])),
+            CZT(columns, TABLE_Z_POINTS - 1, w=spin, a=np.exp(-1j * _T_STEP * (_Z_NODES[0] + _CHECK_AT * _Z_STEP))))
 
 
-def _fourier_matrix(blocks: int) -> np.ndarray:
-    """``e^{i t z}`` at the table's z nodes (rows) and the first ``blocks`` blocks of t nodes: the
-    same for every row of every table, as both grids are in standardised units (made once, grown
-    when a slower-decaying transform needs more columns)."""
-    columns = blocks * _TRAPEZOID_BLOCK
-    if not _FOURIER or _FOURIER[0].shape[1] < columns:
-        z_nodes = np.linspace(-TABLE_Z, TABLE_Z, TABLE_Z_POINTS)
-        _FOURIER[:] = [np.exp(1j * np.multiply.outer(z_nodes, _T_STEP * np.arange(columns)))]
-    return _FOURIER[0][:, :columns]
-
-
-def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -> np.ndarray:
+def _difference_row(pricer: HestonPricer, v: float, tau: float) -> tuple[np.ndarray, bool]:
     """Heston less Black-Scholes ``c, c_x, c_v`` at the variance ``v`` and ``x = z sqrt(w(v) tau)``
-    over the table's z nodes.
+    over the z nodes then the check points, and whether both transforms died out (else the row is not
+    trusted).
 
     Both transforms have the poles of 1 / (u^2 + 1/4) at ``u = +-i/2`` with the same residue
     (``psi(0) = psi(-i) = 1`` for both), so their difference is smooth there and the trapezoid rule
     on it converges geometrically; steps of ``t = u sqrt(w tau)`` resolve the oscillation of
     ``e^{i u x} = e^{i t z}`` over the table's z range."""
     w = float(pricer.mean_variance(v, tau))
+    x = np.concatenate([_Z_NODES, _Z_NODES[:-1] + _CHECK_AT * _Z_STEP]) * math.sqrt(w * tau)
     scale = math.sqrt(max(w, _MEAN_VARIANCE_FLOOR) * tau)
-    x_high = float(np.abs(x).max())
+    x_high = TABLE_Z * math.sqrt(w * tau)
     step = _T_STEP / scale  # in u
-    blocks = []
+    blocks, converged = [], False
     for start in range(0, _TRAPEZOID_MAX, _TRAPEZOID_BLOCK):  # until both transforms have died out
         u = step * np.arange(start, start + _TRAPEZOID_BLOCK)
         shifted = u - 0.5j
@@ -367,39 +389,111 @@ def _difference_row(pricer: HestonPricer, x: np.ndarray, v: float, tau: float) -
         blocks.append((u, heston, black, d, exponent))
         size = (np.abs(heston) + np.abs(black)) * math.exp(0.5 * x_high) / (u * u + 0.25)
         if size[-1] * step < _CUTOFF:
+            converged = True
             break
     u, heston, black, d, exponent = (np.concatenate(parts) for parts in zip(*blocks))
     slope = -math.expm1(-pricer.mean_reversion * tau) / (pricer.mean_reversion * tau)  # dw/dv
     weights = np.full(u.size, step) / (u * u + 0.25)
     weights[0] *= 0.5
-    terms = _fourier_matrix(len(blocks))
     difference = (heston - black) * weights
-    integral = np.real(terms @ difference)
-    integral_x = np.real(terms @ (difference * 1j * u))
-    integral_v = np.real(terms @ ((heston * d - black * exponent * slope) * weights))
+    transforms = np.stack([difference, difference * 1j * u, (heston * d - black * exponent * slope) * weights])
+    on_nodes, on_checks = _chirp_transforms(u.size)
+    integral, integral_x, integral_v = np.concatenate([on_nodes(transforms), on_checks(transforms)], axis=1).real
     half = np.exp(0.5 * x) / math.pi
-    return np.stack([-half * integral, -half * (0.5 * integral + integral_x), -half * integral_v])
+    return np.stack([-half * integral, -half * (0.5 * integral + integral_x), -half * integral_v]), converged
+
+
+def _budgets(pricer: HestonPricer, x: np.ndarray, tau: float) -> np.ndarray:
+    """(3, n) the tolerances of ``c, c_x, c_v`` at ``x``: in the call's units (the discounted strike,
+    ``K e^{-r tau} = S e^{-x - q tau}``), the marks' tolerances in units of spot."""
+    to_spot = np.exp(x + pricer.dividend_yield * tau)
+    return np.stack([PRICE_TOLERANCE * to_spot, DELTA_TOLERANCE * to_spot, DELTA_TOLERANCE / pricer.vol_of_vol * to_spot])
+
+
+def _over(error: np.ndarray, budget: np.ndarray) -> np.ndarray:
+    """Per point, whether any part's error is over its share of the budget (NaN counts as over)."""
+    return ~np.all(np.abs(error) <= _CHECK_SHARE * budget, axis=0)
 
 
 @lru_cache(maxsize=256)
 def heston_table(pricer: HestonPricer, tau: float) -> HestonTable:
-    """The (z, y) table of ``pricer`` at ``tau`` (built once, then cached).
+    """The (z, y) table of ``pricer`` at ``tau`` (built once, then cached), checked where it is read.
 
     ``y = v^(1/4)`` (uniform nodes, so the variance nodes crowd near 0, where the price changes
     fastest in v at short expiries) runs up to ``y_max`` with ``y_max^2 = 4 sqrt(theta) + 3 xi
     sqrt(tau)``, a volatility generous for the paths of a few months; ``c`` depends on ``v = y^4``,
     so it is even in ``y`` and the row below 0 is the mirror of the first row above it.
+
+    The check: each node row is also computed a quarter of a step above each z node, and a row a
+    quarter of a step above each node row, at the z nodes and those points; a cell (the square
+    between four nodes) is read only if the table's values at its check points are within a quarter
+    of the tolerances (:data:`PRICE_TOLERANCE`, :data:`DELTA_TOLERANCE`) of the computed ones, and
+    every row of its stencil converged. Beyond the z range, Black-Scholes alone is used where both it
+    and the Heston price at the edge node are within tolerance in units of spot: out-of-the-money
+    calls (below) and puts (above) and their deltas fall monotonically further out, so their
+    difference stays within it (dV/dv is only checked at the edge).
     """
     y_max = math.sqrt(4.0 * math.sqrt(pricer.long_run_variance) + 3.0 * pricer.vol_of_vol * math.sqrt(tau))
     y_step = y_max / (TABLE_Y_POINTS - 1)
     y_nodes = y_step * np.arange(-1, TABLE_Y_POINTS + 2)
-    z_nodes = np.linspace(-TABLE_Z, TABLE_Z, TABLE_Z_POINTS)
-    values = np.empty((3, y_nodes.size, z_nodes.size))
-    for row, y in enumerate(y_nodes):
-        v = y**4
-        x = z_nodes * math.sqrt(float(pricer.mean_variance(v, tau)) * tau)
-        values[:, row] = _difference_row(pricer, x, v, tau)
-    return HestonTable(pricer, tau, y_step, values)
+    bands = np.arange(1, TABLE_Y_POINTS + 1)  # cells [s0, z0] by their lower-left node
+    cells_z = np.arange(1, TABLE_Z_POINTS - 2)
+    # Rows at the y nodes, and at a quarter of a step above the lower node of every band of cells.
+    rows = [_difference_row(pricer, v, tau) for v in np.concatenate([y_nodes, y_step * (bands - 0.75)]) ** 4]
+    fine = np.stack([row for row, _ in rows], axis=1)  # (3, rows, z nodes then check points)
+    converged = np.array([ok for _, ok in rows])
+    on_nodes, on_quarters = fine[:, :y_nodes.size], fine[:, y_nodes.size:]
+    values = np.ascontiguousarray(on_nodes[:, :, :TABLE_Z_POINTS])
+
+    # Keys' interpolation reproduces quadratics: its error is ~ h^3 f''' t (1 - t) (1 - 2 t) in each
+    # direction, zero at a cell's nodes and midpoint and largest (and, to leading order, of one size)
+    # near its quarter points: it is read at a quarter of a step above a node, in z and in y. All
+    # check points share those fractions, so the table's values there are fixed 4-node filters.
+    weights = _keys_weights(np.array(_CHECK_AT))
+
+    def along(array: np.ndarray, axis: int, lower: np.ndarray) -> np.ndarray:
+        """Keys' interpolation at ``lower + _CHECK_AT`` along ``axis`` (stencils lower - 1 .. lower + 2)."""
+        return sum(w * np.take(array, lower - 1 + b, axis=axis) for b, w in enumerate(weights))
+
+    def over(table: np.ndarray, exact: np.ndarray, v: np.ndarray, zi: np.ndarray) -> np.ndarray:
+        """Per point, whether the table's ``table`` misses ``exact`` (both (3, y, z)) by over the share."""
+        x = (zi[None, :] * _Z_STEP - TABLE_Z) * np.sqrt(pricer.mean_variance(v, tau) * tau)[:, None]
+        return _over((table - exact).reshape(3, -1), _budgets(pricer, x.ravel(), tau)).reshape(x.shape)
+
+    z_nodes = np.arange(1, TABLE_Z_POINTS - 1)
+    node_rows = np.arange(1, TABLE_Y_POINTS + 2)
+    quarter_v = (y_step * (bands - 1 + _CHECK_AT)) ** 4
+    # Node rows 1 .. Y + 1 at the z check points: the cells below and above each.
+    bad_z = over(along(values[:, node_rows], 2, cells_z), on_nodes[:, node_rows][:, :, TABLE_Z_POINTS + cells_z],
+                 y_nodes[node_rows] ** 4, cells_z + _CHECK_AT)
+    # The quarter rows at the z nodes (each checks the cells either side) and at the check points.
+    at_node = over(along(values[:, :, z_nodes], 1, bands), on_quarters[:, :, z_nodes], quarter_v, z_nodes)
+    at_quarter = over(along(along(values, 2, cells_z), 1, bands), on_quarters[:, :, TABLE_Z_POINTS + cells_z],
+                      quarter_v, cells_z + _CHECK_AT)
+    bad = (bad_z[:-1] | bad_z[1:] | at_quarter | at_node[:, :-1] | at_node[:, 1:]
+           | ~converged[y_nodes.size:, None])
+    # A row that did not converge spoils every stencil it is in (rows s0 - 1 .. s0 + 2).
+    node_ok = converged[:y_nodes.size]
+    stencil_ok = np.array([node_ok[s0 - 1:s0 + 3].all() for s0 in bands])
+    trusted = np.zeros((y_nodes.size, TABLE_Z_POINTS), dtype=bool)
+    trusted[1:TABLE_Y_POINTS + 1, 1:TABLE_Z_POINTS - 2] = ~bad & stencil_ok[:, None]
+
+    # The tails: the out-of-the-money call below the z range (at node 1), the put above it (node
+    # Z - 2), per row; Heston and Black-Scholes each within the budget, for every row of the stencil.
+    row_ok = np.zeros((2, y_nodes.size), dtype=bool)
+    v = y_nodes**4
+    for side, node in ((0, 1), (1, TABLE_Z_POINTS - 2)):
+        x = _Z_NODES[node] * np.sqrt(pricer.mean_variance(v, tau) * tau)
+        black = _black_normalized(x, v, pricer, tau)
+        heston = black + values[:, :, node]
+        if side == 1:  # to the put: p = c - e^x + 1, p_x = c_x - e^x
+            shift = np.stack([np.exp(x) - 1.0, np.exp(x), np.zeros_like(x)])
+            black, heston = black - shift, heston - shift
+        budget = _budgets(pricer, x, tau)
+        row_ok[side] = node_ok & ~_over(black, budget) & ~_over(heston, budget)
+    tails = np.zeros_like(row_ok)
+    tails[:, bands] = np.stack([row_ok[:, s0 - 1:s0 + 3].all(axis=1) for s0 in bands], axis=1)
+    return HestonTable(pricer, tau, y_step, np.ascontiguousarray(values.reshape(3, -1).T), trusted, tails)
 
 
 @dataclass(frozen=True)
