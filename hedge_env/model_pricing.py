@@ -34,8 +34,8 @@ other path is priced by the integral.
 Merton. The series of Black-Scholes prices conditional on the number of jumps (Merton 1976): with
 ``k = E[J] - 1``, ``lambda' = lambda (1 + k)``, ``n`` jumps weigh ``e^{-lambda' tau} (lambda'
 tau)^n / n!`` and price at volatility ``sqrt(sigma^2 + n delta^2 / tau)`` and rate
-``r - lambda k + n log(1 + k) / tau``; the series stops when the Poisson weights left sum to less
-than 1e-15.
+``r - lambda k + n log(1 + k) / tau``; the series is summed outward from the Poisson mode until a
+bound on the weights left is below 1e-15.
 """
 
 from __future__ import annotations
@@ -496,6 +496,9 @@ def heston_table(pricer: HestonPricer, tau: float) -> HestonTable:
     return HestonTable(pricer, tau, y_step, np.ascontiguousarray(values.reshape(3, -1).T), trusted, tails)
 
 
+_MAX_JUMP_TERMS = 100_000
+
+
 @dataclass(frozen=True)
 class MertonPricer:
     """Merton (1976) jump-diffusion prices and deltas, risk-neutral, by the series over jump counts."""
@@ -510,19 +513,41 @@ class MertonPricer:
     state_factor = None  # no state: the marks depend on spot and time only
 
     def terms(self, tau: float) -> list[tuple[float, float, float]]:
-        """(weight, volatility, rate) of each jump count until the weights left are below 1e-15."""
+        """(weight, volatility, rate) of each jump count that matters: summed outward from the Poisson
+        mode, each side until a bound on the weights left beyond it is below 5e-16 (past the mode the
+        weights fall at least geometrically, by ``m / (n + 1)`` upward and ``n / m`` downward, with
+        ``m`` the mean count). Raises :class:`MarkAccuracyError` beyond ``_MAX_JUMP_TERMS`` terms."""
         k = math.exp(self.jump_mean + 0.5 * self.jump_std**2) - 1.0
         mean_jumps = self.jump_intensity * (1.0 + k) * tau
-        out, weight, total, n = [], math.exp(-mean_jumps), 0.0, 0
-        while True:
+        weights = {0: 1.0}
+        if mean_jumps > 0.0:
+            # Weights relative to the mode's by the recurrence w(n + 1) = w(n) m / (n + 1), normalised
+            # at the end: the weights left out are below 1e-15, and each weight's rounding is a few
+            # units in the last place instead of that of exp(lgamma) of a large count.
+            mode = math.floor(mean_jumps)
+            at_mode = math.exp(-mean_jumps + mode * math.log(mean_jumps) - math.lgamma(mode + 1))
+            weights = {mode: 1.0}
+            for direction in (1, -1):
+                n, relative = mode, 1.0
+                while n > 0 or direction > 0:
+                    ratio = mean_jumps / (n + 1) if direction > 0 else n / mean_jumps
+                    if ratio < 1.0 and at_mode * relative * ratio / (1.0 - ratio) < 5e-16:
+                        break
+                    relative *= ratio
+                    n += direction
+                    weights[n] = relative
+                    if len(weights) > _MAX_JUMP_TERMS:
+                        raise MarkAccuracyError(
+                            f"Merton marks for an expiry {tau * 365.0:.4g} d away (jump_intensity "
+                            f"{self.jump_intensity:g}, jump_mean {self.jump_mean:g}, jump_std {self.jump_std:g}): "
+                            f"{mean_jumps:.3g} jumps expected, the series needs over {_MAX_JUMP_TERMS:,} terms")
+        total = math.fsum(weights.values())
+        out = []
+        for n in sorted(weights):
             vol = math.sqrt(self.volatility**2 + n * self.jump_std**2 / tau)
             rate = self.rate - self.jump_intensity * k + n * math.log1p(k) / tau
-            out.append((weight, vol, rate))
-            total += weight
-            if 1.0 - total < 1e-15 or n > 200:
-                return out
-            n += 1
-            weight *= mean_jumps / n
+            out.append((weights[n] / total, vol, rate))
+        return out
 
     def value_delta_vega(self, spot, strike: float, tau: float, variance, is_call: bool, scale: float = 1.0,
                          exact: bool = False):

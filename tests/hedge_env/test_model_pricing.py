@@ -226,3 +226,25 @@ def test_heston_integral_raises_rather_than_cut_short():
     for x in (3e3, 3e5):  # log-moneyness: too many panels; an integrand too large to fall to the cutoff
         with pytest.raises(MarkAccuracyError, match="Heston marks for an expiry 1 d away .*vol_of_vol 0.5"):
             pricer.normalized_call(np.array([0.0, x]), np.array([0.04, 0.04]), 1 / 365)
+
+
+def test_merton_series_sums_from_the_mode_at_large_jump_counts():
+    # At jump intensity x expiry = 300 the series must reach the Poisson mode (about 300 jumps): cut at
+    # 200 jumps it priced 0.0000 against about 15.85. QuantLib's BatesEngine (as above) and the
+    # textbook series over 1,000 terms are the references.
+    market = MertonMarket(spot=100.0, volatility=0.2, jump_intensity=100.0, jump_mean=-0.01, jump_std=0.03)
+    pricer = MertonPricer(0.2, 100.0, -0.01, 0.03, RATE, DIVIDEND)
+    days = 1095
+    for strike in (70.0, 100.0, 140.0):
+        mine = float(pricer.value_delta_vega(100.0, strike, days / 365.0, None, True)[0])
+        assert mine == pytest.approx(merton_series_call(100.0, strike, days / 365.0, market, terms=1000), rel=1e-12)
+        assert abs(mine - quantlib_merton_call(strike, days, 100.0, market)) <= RELATIVE * mine + 1e-8 * 100.0
+    weights = [weight for weight, _, _ in pricer.terms(days / 365.0)]
+    assert abs(1.0 - math.fsum(weights)) < 1e-14
+
+
+def test_merton_series_raises_rather_than_stop_short():
+    from hedge_env.model_pricing import MarkAccuracyError
+
+    with pytest.raises(MarkAccuracyError, match="jump_intensity"):
+        MertonPricer(0.2, 1e12, -0.01, 0.03).terms(1.0)
