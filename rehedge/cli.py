@@ -57,7 +57,8 @@ class _Commands(TyperGroup):
 # Errors of the lower layers that say the input is out of a method's range, in one line naming its keys:
 # (module, class), looked up only once the module is loaded, so that commands that never simulate or
 # train do not import them.
-_INPUT_RANGE_ERRORS = (("hedge_env.market", "ModelRangeError"), ("agents.certainty", "ExpansionRangeError"))
+_INPUT_RANGE_ERRORS = (("hedge_env.market", "ModelRangeError"), ("hedge_env.model_pricing", "MarkAccuracyError"),
+                        ("agents.certainty", "ExpansionRangeError"))
 
 
 def _input_range_error(error: Exception) -> bool:

@@ -299,3 +299,13 @@ def test_a_model_out_of_the_floating_point_range_ends_a_run_in_one_line_exit_2_a
     lines = done.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("error: market: ") and "market.jump_mean" in lines[0], done.stderr
     assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())
+
+
+def test_marks_that_cannot_meet_their_accuracy_are_an_input_error():
+    # A model whose marks cannot be computed to their tolerance (hedge_env.model_pricing) is a fact
+    # of the config's market keys: one line and exit 2, like a path out of the floating-point range.
+    from hedge_env.model_pricing import MarkAccuracyError
+    from rehedge.cli import _input_range_error
+
+    assert _input_range_error(MarkAccuracyError("Heston marks ...: vol_of_vol 2"))
+    assert not _input_range_error(ValueError("a defect"))
