@@ -12,7 +12,7 @@ import typer
 from rich import box
 from rich.console import Console
 from rich.measure import Measurement
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 from rich.table import Table
 from typer.core import TyperGroup
 
@@ -98,16 +98,22 @@ def _progress(quiet: bool):
     if quiet:
         yield lambda label, total: (lambda n: None)
         return
-    with Progress(
-        TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
-        console=errors, transient=True,
-    ) as progress:
+    # Started at the first stage, so that an error before any (a missing file) prints no blank line.
+    shown: list[Progress] = []
 
-        def start(label: str, total: int):
-            task = progress.add_task(label, total=total)
-            return lambda n: progress.advance(task, n)
+    def start(label: str, total: int):
+        if not shown:
+            shown.append(Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                                  TimeElapsedColumn(), TimeRemainingColumn(), console=errors, transient=True))
+            shown[0].start()
+        task = shown[0].add_task(label, total=total)
+        return lambda n: shown[0].advance(task, n)
 
+    try:
         yield start
+    finally:
+        if shown:
+            shown[0].stop()
 
 
 def _print_table(title: str, records: list[dict], wide: bool = False) -> None:
@@ -227,21 +233,35 @@ def _heldout(cfg, market, paths: int | None, seed: int | None) -> tuple[int, int
 
 @app.command()
 def evaluate(
-    source: Path = typer.Argument(..., help="TOML config file, or a run folder written by `rehedge run`/`train`."),
+    source: Path = typer.Argument(..., help="TOML config file, or a run folder written by `rehedge run`/`train` "
+                                  "(`last`: the newest under runs/)."),
     paths: int = typer.Option(None, "--paths", min=1, help="Held-out paths (default: data.heldout_paths)."),
     seed: int = typer.Option(None, "--seed", min=0, help="Held-out seed (default: data.heldout_seed)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a table."),
     wide: bool = typer.Option(False, "--wide", help="Every measure (VaR, entropic risk, turnover, quotes), "
                                                      "in as many tables as the width needs."),
     quiet: bool = typer.Option(False, "--quiet", help="No progress bars."),
+    save: bool = typer.Option(False, "--save", help="Save the scores into the run folder (metrics and per-path "
+                              "results, as `rehedge run` writes them), ready for `rehedge report`."),
     threads: int = typer.Option(None, "--threads", min=1, help="BLAS and OpenMP threads (default: compute.threads, 1)."),
     tables: list[Path] = typer.Option(
         None, "--table", metavar="TABLE", help="Also score this hedge table (folder or table.json; repeatable); it must be "
                               "exported for the same book, reference spot and schedule."),
 ) -> None:
     """Score every baseline of a config (or every policy of a run folder) on held-out paths, ranked by objective."""
+    from rehedge.run_folder import resolve_run, save_scores
+
+    source = resolve_run(source)
+    if not source.exists():
+        fail(f"{source}: no such config file or run folder")
+    if save and not source.is_dir():
+        fail(f"--save: {source} is not a run folder (the scores are saved into the run folder they score)")
     cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet, tables or (), threads)
     _records_out(cfg, n_paths, seed, evaluation, tuning, as_json, wide=wide)
+    if save:
+        written = save_scores(evaluation, source)
+        errors.print(f"saved {', '.join(written)} into {source}; `rehedge report {source}` draws its report",
+                     markup=False, highlight=False)
 
 
 def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=(), threads: int | None = None):
@@ -384,40 +404,38 @@ def quote(
 
 
 @app.command()
-def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run`.")) -> None:
+def report(run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run` (`last`: the newest "
+                                         "under runs/).")) -> None:
     """Rebuild report.html of a run folder from its saved results."""
     from rehedge.report import build_report
     from rehedge.report.scored import recorded_siblings
+    from rehedge.run_folder import resolve_run
 
+    run_dir = resolve_run(run_dir)
     path = build_report(run_dir, recorded_siblings(run_dir))
     console.print(f"report: {path} ({path.stat().st_size / 1e6:.2f} MB)", highlight=False)
 
 
-def _export(cfg, problem, policies, name: str, folder: Path, market) -> Path:
-    from rehedge.tables.export import export_policy
-
-    folder = export_policy(cfg, problem, policies, name, folder, market)
-    size = sum(f.stat().st_size for f in folder.iterdir())
-    errors.print(f"hedge table of {name}: {folder} ({size / 1e6:.2f} MB)", markup=False, highlight=False)
-    return folder
-
-
 @app.command()
 def export(
-    run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run` or `rehedge train`."),
+    run_dir: Path = typer.Argument(..., help="Run folder written by `rehedge run` or `rehedge train` (`last`: the "
+                                   "newest under runs/)."),
     policy: str = typer.Option(None, "--policy", help="Policy to export (default: export.policy of the config)."),
     out: Path = typer.Option(None, "--out", help="Table folder to write (default: RUN_DIR/tables/POLICY)."),
 ) -> None:
     """Write a policy of a run as a hedge table: targets.csv, band.csv and table.json (see README)."""
-    from rehedge.run_folder import load_run
+    from rehedge.run_folder import load_run, resolve_run
+    from rehedge.tables.export import export_policy
 
+    run_dir = resolve_run(run_dir)
     run = load_run(run_dir)
     policies = {**run.baselines, **run.agents}
     name = policy or run.config.export.policy
     if name is None:
         fail(f"no policy chosen: give --policy NAME or set export.policy; policies: {', '.join(policies)}")
-    folder = _export(run.config, run.problem, policies, name, out or run_dir / "tables" / name, run.market)
-    console.print(f"hedge table: {folder}", highlight=False)
+    folder = export_policy(run.config, run.problem, policies, name, out or run_dir / "tables" / name, run.market)
+    size = sum(f.stat().st_size for f in folder.iterdir())
+    console.print(f"hedge table of {name}: {folder} ({size / 1e6:.2f} MB)", highlight=False)
 
 
 @app.command()

@@ -37,6 +37,48 @@ def _timestamp() -> str:
 
 
 PARTIAL = ".partial"
+LAST = "last"  # the newest finished run folder under the runs folder, wherever a run folder is asked for
+
+
+def resolve_run(path: str | Path, runs_dir: str | Path = "runs") -> Path:
+    """``last``: the newest finished run folder under ``runs_dir`` (by its manifest's creation time,
+    then its name); any other path as given."""
+    path = Path(path)
+    if str(path) != LAST or path.exists():
+        return path
+    runs_dir = Path(runs_dir)
+    found = []
+    for folder in runs_dir.iterdir() if runs_dir.is_dir() else ():
+        manifest = folder / "manifest.json"
+        if folder.name.endswith(PARTIAL) or not manifest.is_file():
+            continue
+        try:
+            created = json.loads(manifest.read_text()).get("created", "")
+        except (OSError, ValueError):
+            continue
+        found.append((str(created), folder.name, folder))
+    if not found:
+        raise RunFolderError(f"last: no finished run folder under {runs_dir}")
+    return max(found)[2]
+
+
+def save_scores(evaluation, run_dir: Path) -> list[str]:
+    """Write an evaluation's metrics.csv, metrics.json and heldout.npz into a finished run folder:
+    staged in a hidden folder inside it, then each moved into place (a reader sees the old files or
+    the new ones, never half of one). Returns the names written."""
+    from rehedge.compare import write_metrics
+
+    staging = run_dir / f".scores{PARTIAL}"
+    shutil.rmtree(staging, ignore_errors=True)
+    staging.mkdir()
+    try:
+        write_metrics(evaluation, staging)
+        names = sorted(f.name for f in staging.iterdir())
+        for name in names:
+            (staging / name).replace(run_dir / name)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+    return names
 
 
 def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict | None = None,

@@ -38,7 +38,8 @@ def policy_label(name: str, kind: str = "") -> str:
 def read_metrics(run_dir: Path) -> dict:
     path = run_dir / "metrics.json"
     if not path.is_file():
-        raise RunFolderError(f"{run_dir}: no metrics.json (a run folder is scored by `rehedge run`)")
+        raise RunFolderError(f"{run_dir}: no held-out scores (metrics.json) to report; a folder of `rehedge train` "
+                             f"is scored by `rehedge evaluate {run_dir} --save`")
     return json.loads(path.read_text())
 
 

@@ -309,3 +309,31 @@ def test_marks_that_cannot_meet_their_accuracy_are_an_input_error():
 
     assert _input_range_error(MarkAccuracyError("Heston marks ...: vol_of_vol 2"))
     assert not _input_range_error(ValueError("a defect"))
+
+
+def test_the_tour_from_train_to_report_through_evaluate_save_and_last(tmp_path):
+    # `train` then `report` named no way forward; `evaluate RUN` saved nothing; a run folder had to be
+    # typed out; a missing folder printed a blank line first; `export` printed its message twice.
+    config = tmp_path / "tiny.toml"
+    config.write_text(SMALL.replace("train_paths = 600", "train_paths = 300"))
+    trained = rehedge("train", str(config), "--runs-dir", "runs", "--quiet", cwd=tmp_path)
+    assert trained.returncode == 0, trained.stderr
+    run_dir = next((tmp_path / "runs").iterdir())
+    early = rehedge("report", "last", cwd=tmp_path)
+    assert early.returncode == 2 and early.stderr.count("\n") == 1
+    assert f"rehedge evaluate {Path('runs') / run_dir.name} --save" in early.stderr, early.stderr
+    missing = rehedge("evaluate", "runs/nope", "--quiet", cwd=tmp_path)
+    assert missing.returncode == 2 and missing.stderr == "error: runs/nope: no such config file or run folder\n"
+    refused = rehedge("evaluate", str(config), "--save", "--quiet", cwd=tmp_path)  # saved into a run folder only
+    assert refused.returncode == 2 and refused.stderr.startswith("error: --save: ")
+    saved = rehedge("evaluate", "last", "--save", "--paths", "400", "--json", "--quiet", cwd=tmp_path)
+    assert saved.returncode == 0, saved.stderr
+    assert {f.name for f in run_dir.iterdir()} >= {"metrics.json", "metrics.csv", "heldout.npz"}
+    assert not any(f.name.startswith(".") for f in run_dir.iterdir())
+    recorded = json.loads((run_dir / "metrics.json").read_text())["policies"]
+    assert [p["objective"] for p in recorded] == [p["objective"] for p in json.loads(saved.stdout)["policies"]]
+    reported = rehedge("report", "last", cwd=tmp_path)
+    assert reported.returncode == 0 and (run_dir / "report.html").is_file(), reported.stderr
+    exported = rehedge("export", "last", "--policy", "delta", cwd=tmp_path)
+    assert exported.returncode == 0, exported.stderr
+    assert exported.stderr == "" and exported.stdout.count("hedge table") == 1, exported
