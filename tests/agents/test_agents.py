@@ -422,13 +422,45 @@ def test_under_permanent_impact_every_replayed_target_gets_the_next_spot_hedge_s
     assert largest_gap > 0.01  # the targets really do move the market apart
 
 
-def test_a_learned_agent_fits_and_acts_under_permanent_impact():
-    problem, market = reference(0.001)
-    notional = problem.notional_shares
-    problem = replace(problem, frictions=Frictions(cost_rate=0.001, permanent_impact=0.1, adv_shares=notional))
-    agent = LinearBasisAgent(problem).fit(small_data(problem, market))
-    result = rollout(problem, agent, market, 2000, HELD_OUT_SEED)
-    assert np.isfinite(agent.coef_).all() and np.isfinite(result.reward).all()
+@lru_cache(maxsize=None)
+def _material_impact_scores():
+    """The 5-day one-share book of tests/agents/test_grid_dp.py, where a trade of the whole book moves
+    every later price by about 10.5%: the linear agent's and not hedging's held-out rewards, and the
+    grid optimum's V_0 (41 x 61 points; its grid error is measured there at 3.4e-3)."""
+    from agents.baselines import NoHedge
+    from agents.grid_dp import GridDPAgent
+    from hedge_env.book import Book, OptionLeg
+    from hedge_env.objective import Objective
+    from hedge_env.problem import HedgingProblem, Schedule
+
+    problem = HedgingProblem(book=Book((OptionLeg("call", 100.0, 5.0, -1.0),)),
+                             frictions=Frictions(cost_rate=0.001, permanent_impact=0.1, adv_shares=1.0),
+                             objective=Objective(risk_aversion=1.0), schedule=Schedule(steps=5, step_days=1.0))
+    _, market = default_problem()
+    data = Transitions.concat(list(collect_chunks(problem, market, 4000, TRAINING_SEED, Exploration(), 2000)))
+    agent = LinearBasisAgent(problem).fit(data)
+    optimum = GridDPAgent(problem, volatility=market.volatility, spot_points=41, holding_points=61,
+                          quadrature_nodes=8).fit()
+    value = float(optimum.value(np.array([[1.0, problem.years_to_horizon(0), 0.0]]))[0])
+    results = rollout_many(problem, {"linear": agent, "none": NoHedge(problem)}, market, HELD_OUT_PATHS, HELD_OUT_SEED)
+    return results["linear"].reward, results["none"].reward, value
+
+
+def test_under_permanent_impact_a_learned_agent_is_bounded_by_the_optimum():
+    # No policy's expected objective exceeds the optimum, which the grid DP's V_0 gives within its
+    # grid error (1e-2 allowed, three times the measured 3.4e-3): the agent's held-out mean is at
+    # most V_0 + 1e-2 + 3 standard errors. Before, this case checked only that numbers were finite.
+    reward, _, value = _material_impact_scores()
+    assert reward.mean() <= value + 1e-2 + 3 * reward.std(ddof=1) / math.sqrt(reward.size)
+
+
+@pytest.mark.xfail(strict=True, reason="a known defect that issue 26 (trades that move the price) takes up: under "
+                   "material permanent impact the learned agents lose to not hedging (held out: linear -3.71, "
+                   "fitted Q -1.31, no hedge -0.985, grid optimum -0.416; delta -29.7)")
+def test_under_permanent_impact_a_learned_agent_improves_on_not_hedging():
+    reward, none, _ = _material_impact_scores()
+    difference = reward - none
+    assert difference.mean() - 1.96 * difference.std(ddof=1) / math.sqrt(difference.size) > 0
 
 
 def test_delta_only_exploration_rewards_sum_to_the_delta_rollout_rewards_path_by_path():
