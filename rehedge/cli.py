@@ -6,6 +6,7 @@ import json
 import subprocess
 import sys
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
 import typer
@@ -84,6 +85,11 @@ errors = Console(stderr=True, soft_wrap=True)
 
 INTERRUPTED = 130  # exit code of a command stopped by Ctrl-C (128 + SIGINT)
 INTERNAL_ERROR = 3  # exit code of a fault in rehedge itself (2 is an error in the user's input)
+
+
+# `advise` on a state outside the training range of the table's policy: the advice is printed, and the
+# exit code tells an automated caller not to act on it unseen.
+OFF_MAP = 4
 
 
 def fail(message: str, code: int = 2) -> None:
@@ -256,12 +262,41 @@ def evaluate(
         fail(f"{source}: no such config file or run folder")
     if save and not source.is_dir():
         fail(f"--save: {source} is not a run folder (the scores are saved into the run folder they score)")
-    cfg, evaluation, tuning, n_paths, seed = _score(source, paths, seed, quiet, tables or (), threads)
-    _records_out(cfg, n_paths, seed, evaluation, tuning, as_json, wide=wide)
+    scored = _score(source, paths, seed, quiet, tables or (), threads)
+    _records_out(scored.cfg, scored.n_paths, scored.seed, scored.evaluation, scored.tuning, as_json, wide=wide)
+    _print_off_map(scored)
     if save:
-        written = save_scores(evaluation, source)
+        written = save_scores(scored.evaluation, source)
         errors.print(f"saved {', '.join(written)} into {source}; `rehedge report {source}` draws its report",
                      markup=False, highlight=False)
+
+
+OFF_MAP_PATHS = 2_000  # held-out paths on which a table's decisions off its training range are counted
+
+
+def _print_off_map(scored) -> None:
+    """For each table scored, the share of its decisions on the first held-out paths that lie outside
+    the training range it records (on stderr: the scores on stdout stay one table or one JSON object)."""
+    from rehedge.tables.export import off_map_share
+
+    n_paths = min(OFF_MAP_PATHS, scored.n_paths)
+    for name, table in scored.tables.items():
+        share = off_map_share(table, scored.problem, scored.market, n_paths, scored.seed)
+        what = ("records no training range" if share != share else
+                f"decides {share:.1%} of the time outside its training range")
+        errors.print(f"{name}: on the first {n_paths:,} held-out paths, {what}", markup=False, highlight=False)
+
+
+@dataclass(frozen=True)
+class _Scored:
+    cfg: object
+    evaluation: object
+    tuning: dict
+    n_paths: int
+    seed: int
+    problem: object
+    market: object
+    tables: dict
 
 
 def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, tables=(), threads: int | None = None):
@@ -284,7 +319,7 @@ def _score(source: Path, paths: int | None, seed: int | None, quiet: bool, table
                 progress=start("hedging held-out paths (both sides of the book)", n_paths),
                 reference=_reference(cfg, policies), bootstrap_samples=cfg.report.bootstrap_samples,
             )
-    return cfg, evaluation, tuning, n_paths, seed
+    return _Scored(cfg, evaluation, tuning, n_paths, seed, problem, market, loaded)
 
 
 def _reference(cfg, policies) -> str | None:
@@ -363,7 +398,8 @@ def quote(
 ) -> None:
     """Bid and ask per policy: the premium the kept risk justifies (indifference under the objective, and CVaR 95)."""
 
-    cfg, evaluation, _, n_paths, seed = _score(source, paths, None, quiet, tables or (), threads)
+    scored = _score(source, paths, None, quiet, tables or (), threads)
+    cfg, evaluation, n_paths, seed = scored.cfg, scored.evaluation, scored.n_paths, scored.seed
 
     rows = evaluation.to_records()
     if as_json:
@@ -466,6 +502,8 @@ def advise(
     record = advice(loaded, spot, days_left, holding, state)
     if as_json:
         sys.stdout.write(json.dumps({**record, "caution": CAUTION}, indent=2) + "\n")
+        if record["off_map"]:
+            raise typer.Exit(OFF_MAP)
         return
     trade = record["trade_shares"]
     action = "no trade" if trade == 0 else f"{'buy' if trade > 0 else 'sell'} {abs(trade):,.6g} shares"
@@ -485,8 +523,16 @@ def advise(
                      f"shares; the holding is {where} it")
     for note in record["clamping"]:
         lines.append(f"  CLAMPED: {note}")
+    for note in record["off_map"]:
+        lines.append(f"  OFF THE MAP: {note}")
+    if not record["training_range_known"]:
+        lines.append("  this table records no training range: whether its policy met such a state is unknown")
     console.print("\n".join(lines), highlight=False, markup=False)
     console.print(CAUTION, style="dim", highlight=False)
+    if record["off_map"]:
+        errors.print(f"error: off the map: the advice above is for a state the policy never met in training "
+                     f"(exit {OFF_MAP})", markup=False, highlight=False)
+        raise typer.Exit(OFF_MAP)
 
 
 @app.command("sweep")

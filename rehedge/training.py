@@ -35,7 +35,8 @@ def no_progress(label: str, total: int) -> Callable[[int], None]:
     return lambda n: None
 
 
-def _exploration(spec) -> Exploration:
+def exploration_of(spec) -> Exploration:
+    """The behaviour policy of an agent spec's training data."""
     e = spec.exploration
     return Exploration(no_trade=e.no_trade, delta=e.delta, spread=e.spread, actions_per_state=e.actions_per_state,
                        center=spec.anchor)
@@ -106,7 +107,7 @@ def _train(config: Config, start: ProgressStart) -> Training:
         if spec.kind not in LEARNED_FROM_TRANSITIONS:
             agent.fit()
         else:
-            exploration = _exploration(spec)
+            exploration = exploration_of(spec)
             if exploration not in transitions:
                 advance = start(f"collecting transitions ({spec.name})", n_train)
                 transitions[exploration] = store = TransitionStore()

@@ -17,7 +17,9 @@ from pathlib import Path
 import numpy as np
 
 from agents.band import NO_TRADE_TOLERANCE, no_trade_band
+from agents.dataset import Exploration, collect_chunks
 from hedge_env.market import MARK_VOLATILITY_FACTOR
+from hedge_env.rollout import rollout
 from hedge_env.step import observation_rows
 from rehedge.tables.reader import (
     BAND_FILE,
@@ -284,6 +286,7 @@ def export_table(
     currency: str | None = None,
     volatility: float | None = None,
     state_range: tuple[float, float] | None = None,
+    training_range: dict | None = None,
 ) -> Path:
     """Write ``policy`` on ``problem`` as a hedge table folder; returns the folder.
 
@@ -306,6 +309,9 @@ def export_table(
         Domain of the state axis (:func:`table_state`: a policy that reads the
         variance, or marks at an observed implied volatility), unless
         ``grid.state_range`` gives it; required for such a table.
+    training_range : dict, optional
+        Per decision time, the range of each axis the policy met on its training paths
+        (:func:`training_range`); null in the sidecar without it.
     """
     folder = Path(folder)
     notional, marks = problem.notional_shares, problem.marks
@@ -371,6 +377,7 @@ def export_table(
                 nodes.state: [float(nodes.state_nodes[0]), float(nodes.state_nodes[-1])]}),
             "holding_shares": [float(holds[0]), float(holds[-1])],
         },
+        "training_range": training_range,
         "interpolation": INTERPOLATION_RULE,
         "files": {key: {"name": name, "sha256": _sha256(data), "rows": rows,
                         "columns": list(target_names if key == "targets" else band_names)}
@@ -441,11 +448,71 @@ def state_range(source, problem, axis: str, seed: int = 0) -> tuple[float, float
     return float(max(low - pad, 0.5 * low)), float(high + pad)
 
 
+class RowRecorder:
+    """A policy that passes its observation rows through to ``policy`` and keeps a copy of each."""
+
+    def __init__(self, policy) -> None:
+        self.policy, self.rows, self.name = policy, [], getattr(policy, "name", "policy")
+
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        self.rows.append(np.array(obs, dtype=float))
+        return self.policy.act(obs)
+
+
+# The margins a training range is widened by: a one-step standard move of spot at the mark volatility
+# (relative), 5% of the notional in holding, a tenth of the range in the state.
+RANGE_HOLDING_MARGIN = 0.05
+RANGE_STATE_MARGIN = 0.1
+
+
+def training_range(policy, problem, source, state: str | None, seed: int = 0,
+                   exploration: Exploration = Exploration()) -> dict:
+    """Per decision time, the range of each table axis over ``STATE_RANGE_PATHS`` paths of the training
+    market ``source`` (a history's windows: as many as it has), both as the learned agents' training
+    data visits them (``exploration``, the behaviour policy) and as the policy itself hedges them,
+    widened by the margins above: the states a learned policy was fitted on and every policy was
+    scored on. A state outside it is advice off the map (``rehedge advise`` says so)."""
+    n_paths = STATE_RANGE_PATHS if source.max_paths is None else min(STATE_RANGE_PATHS, source.max_paths)
+    recorder = RowRecorder(policy)
+    rollout(problem, recorder, source, n_paths, seed)
+    schedule, notional = problem.schedule, problem.notional_shares
+    explored = [data.obs for data in collect_chunks(problem, source, n_paths, seed, exploration)]
+    step_move = problem.marks.volatility * math.sqrt(problem.dt_years)
+    out = {"days_left": [], "moneyness": [], "holding_shares": [], **({} if state is None else {state: []})}
+    for k in range(schedule.steps):
+        # The policy's rows of a chunk arrive one decision time after another.
+        rows = np.concatenate(recorder.rows[k::schedule.steps] + [obs[k] for obs in explored])
+        out["days_left"].append(float(schedule.horizon_days - schedule.time_days(k)))
+        money = rows[:, 0]
+        out["moneyness"].append([float(money.min() * math.exp(-step_move)), float(money.max() * math.exp(step_move))])
+        held = rows[:, 2] * notional
+        margin = RANGE_HOLDING_MARGIN * notional
+        out["holding_shares"].append([float(held.min() - margin), float(held.max() + margin)])
+        if state is not None:
+            values = rows[:, 3]
+            pad = RANGE_STATE_MARGIN * float(values.max() - values.min())
+            low = values.min() - pad
+            out[state].append([float(max(low, 0.0) if values.min() >= 0 else low), float(values.max() + pad)])
+    return out
+
+
+def off_map_share(table, problem, source, n_paths: int, seed: int) -> float:
+    """The share of a loaded table's decisions, hedging ``n_paths`` paths of ``source``, at states
+    outside the training range its sidecar records (NaN for a table that records none)."""
+    if table.training_range is None:
+        return math.nan
+    recorder = RowRecorder(table)
+    rollout(problem, recorder, source, n_paths, seed)
+    rows = np.concatenate(recorder.rows)
+    return float(table.off_map_rows(rows).mean())
+
+
 def export_policy(config, problem, policies: dict, name: str, folder: str | Path, market=None) -> Path:
     """Export the policy called ``name`` among ``policies`` (of ``config``) with the grid of
     ``config.export``; an unknown name is a TableError that lists the known ones. ``market`` (the
     training path generator) gives the state axis's range when the policy's table has one."""
     from rehedge.config import config_hash
+    from rehedge.training import exploration_of
 
     if name not in policies:
         known = ", ".join(repr(n) for n in policies) or "none"
@@ -453,6 +520,11 @@ def export_policy(config, problem, policies: dict, name: str, folder: str | Path
     kinds = {spec.name: spec.kind for spec in [*config.baselines, *config.agents]}
     axis = table_state(policies[name], problem)
     bounds = None if axis is None or market is None else state_range(market, problem, axis, config.data.train_seed)
+    agent = next((spec for spec in config.agents if spec.name == name), None)
+    exploration = Exploration() if agent is None else exploration_of(agent)
+    seen = (None if market is None else
+            training_range(policies[name], problem, market, axis, config.data.train_seed, exploration))
     return export_table(policies[name], problem, folder, grid=grid_of(config.export), kind=kinds.get(name, ""),
                         config_name=config.name, config_hash=config_hash(config),
-                        currency=config.export.currency, volatility=config.pricing.volatility, state_range=bounds)
+                        currency=config.export.currency, volatility=config.pricing.volatility, state_range=bounds,
+                        training_range=seen)

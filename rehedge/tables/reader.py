@@ -41,7 +41,8 @@ FORMAT = "rehedge-hedge-table"
 # 2: a target outside the band is moved onto its nearer edge (the reading rule's step 4).
 # 3: an optional fourth axis, the observed volatility state (``state_axis`` in the sidecar).
 # 4: the sidecar carries the SHA-256 of its own content (``sidecar_sha256``), and holds no NaN or Infinity.
-FORMAT_VERSION = 4
+# 5: ``training_range``: per decision time, the range of each axis on the policy's own training paths.
+FORMAT_VERSION = 5
 SIDECAR_HASH_KEY = "sidecar_sha256"
 SIDECAR = "table.json"
 TARGETS_FILE = "targets.csv"
@@ -213,6 +214,38 @@ class HedgeTable:
         self.horizon_days = float(meta["schedule"]["horizon_days"])
         self.policy_name = str(meta["policy"]["name"])
         self.name = f"{self.policy_name}.table"
+        seen = meta.get("training_range")
+        self.training_days = None if seen is None else np.asarray(seen["days_left"], dtype=float)
+        self.training_range = None if seen is None else {
+            axis: np.asarray(seen[axis], dtype=float) for axis in self.range_axes}
+
+    @property
+    def range_axes(self) -> list[str]:
+        """The axes a training range is recorded for: moneyness, the state axis if any, holding."""
+        return ["moneyness"] + ([] if self.state is None else [self.state]) + ["holding_shares"]
+
+    def off_map(self, spot, days_left, holding, state=None) -> list[np.ndarray]:
+        """Per axis of :attr:`range_axes`, which points lie outside the range the policy's training
+        paths covered at the decision time nearest ``days_left`` (all False without a recorded range)."""
+        spot, days, held = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (spot, days_left, holding)))
+        values = {"moneyness": spot / self.reference_spot, "holding_shares": held}
+        if self.state is not None:
+            values[self.state] = np.broadcast_to(np.asarray(state, dtype=float), spot.shape)
+        if self.training_range is None:
+            return [np.zeros(spot.shape, dtype=bool) for _ in self.range_axes]
+        nearest = np.abs(days[..., None] - self.training_days).argmin(axis=-1)
+        out = []
+        for axis in self.range_axes:
+            low, high = self.training_range[axis][nearest, 0], self.training_range[axis][nearest, 1]
+            out.append((values[axis] < low) | (values[axis] > high))
+        return out
+
+    def off_map_rows(self, obs: np.ndarray) -> np.ndarray:
+        """Which observation rows (as :meth:`act` reads them) lie outside the training range."""
+        obs = np.asarray(obs, dtype=float)
+        flags = self.off_map(obs[:, 0] * self.reference_spot, obs[:, 1] * self.days_per_year,
+                             obs[:, 2] * self.notional_shares, None if self.state is None else obs[:, 3])
+        return np.logical_or.reduce(flags)
 
     @property
     def point_nodes(self) -> list[np.ndarray]:
@@ -252,6 +285,7 @@ class HedgeTable:
             if (nodes.ndim != 1 or nodes.size < 1 or not np.isfinite(nodes).all()
                     or not np.all(np.diff(nodes) > 0)):
                 raise TableError(f"{sidecar}: grid.{name} must be a list of increasing finite numbers")
+        _check_training_range(meta, names[1:], sidecar)
         targets = _read_csv(folder, files.get("targets", {}), target_columns(state), "targets")
         band = _read_csv(folder, files.get("band", {}), band_columns(state), "band")
         points = math.prod(n.size for _, n in axes[:-1])
@@ -365,6 +399,26 @@ def read_sidecar(sidecar: Path) -> dict:
     return meta
 
 
+def _check_training_range(meta: dict, axes: list[str], sidecar: Path) -> None:
+    """``training_range`` is null, or per decision time (``days_left``, finite) a [low, high] pair of
+    finite numbers, low <= high, for each of ``axes``."""
+    seen = meta.get("training_range")
+    if seen is None:
+        return
+    try:
+        days = np.asarray(seen["days_left"], dtype=float)
+        pairs = [np.asarray(seen[axis], dtype=float) for axis in axes]
+    except (KeyError, TypeError, ValueError):
+        raise TableError(f"{sidecar}: training_range must give days_left and a [low, high] list for each of "
+                         f"{', '.join(axes)}") from None
+    if days.ndim != 1 or days.size < 1 or not np.isfinite(days).all():
+        raise TableError(f"{sidecar}: training_range.days_left must be a list of finite numbers")
+    for axis, pair in zip(axes, pairs):
+        if (pair.shape != (days.size, 2) or not np.isfinite(pair).all() or (pair[:, 0] > pair[:, 1]).any()):
+            raise TableError(f"{sidecar}: training_range.{axis} must hold one [low, high] pair of finite numbers "
+                             "(low <= high) per decision time")
+
+
 def _check_band(band: np.ndarray, path: Path) -> None:
     """Band edges finite or NaN (no band) together, lower <= upper; targets beyond the holding
     domain finite."""
@@ -471,6 +525,15 @@ def advice(table: HedgeTable, spot: float, days_left: float, holding: float, sta
             edge = low if value < low else high
             notes.append(f"{axis} {value:g} is outside the table's domain [{low:g}, {high:g}]: "
                          f"decided at {edge:g}")
+    off_map = []
+    if table.training_range is not None:
+        nearest = int(np.abs(days_left - table.training_days).argmin())
+        values = {"moneyness": spot / table.reference_spot, "holding_shares": holding, table.state: state}
+        for axis, flag in zip(table.range_axes, table.off_map(spot, days_left, holding, state)):
+            if bool(flag):
+                low, high = table.training_range[axis][nearest]
+                off_map.append(f"{axis} {values[axis]:,.6g} is outside what the policy met on its training paths "
+                               f"{table.training_days[nearest]:g} days before the horizon [{low:,.6g}, {high:,.6g}]")
     lower, upper = float(decision.band_lower_shares), float(decision.band_upper_shares)
     meta = table.meta
     return {
@@ -490,5 +553,7 @@ def advice(table: HedgeTable, spot: float, days_left: float, holding: float, sta
         "inside_band": bool(decision.inside_band),
         "clamped": bool(decision.clamped),
         "clamping": notes,
+        "off_map": off_map,
+        "training_range_known": table.training_range is not None,
         "currency": meta.get("units", {}).get("currency"),
     }

@@ -4,6 +4,7 @@ clamping, the Policy protocol, and the export / advise / evaluate commands."""
 from __future__ import annotations
 
 import json
+from dataclasses import replace
 import shutil
 import subprocess
 import sys
@@ -30,7 +31,7 @@ from rehedge.cli import CAUTION, app
 from rehedge.config import parse_config
 from rehedge.errors import ConfigError
 from rehedge.tables.export import TableGrid, export_table
-from rehedge.tables.reader import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError
+from rehedge.tables.reader import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, sidecar_digest
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -79,7 +80,7 @@ def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
     problem, _, tables, _ = exported
     table = tables["grid_dp"]
     meta = table.meta
-    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 4
+    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 5
     assert meta["state_axis"] is None and table.state is None  # the policy reads spot, time and holding alone
     n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
     assert (n_days, n_money, n_hold) == (10, 101, 41)
@@ -352,3 +353,57 @@ def test_run_writes_the_table_of_export_policy_and_evaluate_scores_tables_beside
 
     done = runner.invoke(app, ["export", str(run_dir), "--policy", "nope"])
     assert done.exit_code == 2 and done.stderr.strip().startswith("error: unknown policy 'nope'; policies: ")
+
+
+@pytest.fixture(scope="module")
+def mapped(tmp_path_factory):
+    """The Whalley-Wilmott band of the small reference case, exported with its training range."""
+    from rehedge.tables.export import training_range
+
+    problem = reference_like()
+    market = GBMMarket(spot=100.0, drift=0.0, volatility=0.2)
+    policy = WhalleyWilmottBand(problem, risk_aversion=5.0)
+    seen = training_range(policy, problem, market, None, seed=1)
+    folder = export_table(policy, problem, tmp_path_factory.mktemp("mapped") / "ww", kind="whalley_wilmott",
+                          training_range=seen)
+    return problem, market, HedgeTable.load(folder)
+
+
+def test_advise_off_the_training_map_says_so_and_exits_4(mapped):
+    # A table asked about a state far from its training paths gave confident trades with exit 0 (the
+    # issue's: spot 64 with 29 of 30 days left and 1,500 shares held, a sell of 1,990 where delta said
+    # +13). Now each decision time's range on the policy's own training rollout is in the sidecar.
+    problem, market, table = mapped
+    seen = table.meta["training_range"]
+    assert len(seen["days_left"]) == problem.schedule.steps and seen["days_left"][0] == 10.0
+    assert seen["moneyness"][0][0] < 1.0 < seen["moneyness"][0][1]
+    path = str(table.path)
+    far = runner.invoke(app, ["advise", path, "--spot", "128", "--days-left", "9", "--holding", "1.5"])
+    assert far.exit_code == 4, far.output
+    assert "OFF THE MAP: moneyness 1.28 is outside what the policy met on its training paths" in far.stdout
+    assert "OFF THE MAP: holding_shares 1.5 is outside" in far.stdout
+    assert far.stderr.count("\n") == 1 and far.stderr.startswith("error: off the map")
+    as_json = runner.invoke(app, ["advise", path, "--spot", "128", "--days-left", "9", "--holding", "1.5", "--json"])
+    assert as_json.exit_code == 4 and len(json.loads(as_json.stdout)["off_map"]) == 2
+    near = runner.invoke(app, ["advise", path, "--spot", "100.5", "--days-left", "9", "--holding", "0.5"])
+    assert near.exit_code == 0 and "OFF THE MAP" not in near.stdout, near.output
+    # The share of held-out decisions off the map: about none on paths like the training ones, all on
+    # paths that start far from them.
+    from rehedge.tables.export import off_map_share
+
+    assert off_map_share(table, problem, market, 500, seed=9) < 0.01
+    assert off_map_share(table, problem, replace(market, spot=140.0), 500, seed=9) > 0.5
+
+
+def test_a_table_without_a_training_range_says_so_and_a_malformed_one_is_refused(exported, mapped, tmp_path):
+    _, _, tables, _ = exported
+    done = runner.invoke(app, ["advise", str(tables["fixed_band"].path), "--spot", "100", "--days-left", "4",
+                               "--holding", "0"])
+    assert done.exit_code == 0 and "records no training range" in done.stdout
+    copy = _copy(mapped[2], tmp_path)
+    meta = json.loads((copy / "table.json").read_text())
+    meta["training_range"]["holding_shares"][3] = [1.0, -1.0]
+    meta["sidecar_sha256"] = sidecar_digest(meta)
+    (copy / "table.json").write_text(json.dumps(meta))
+    refused = runner.invoke(app, ["advise", str(copy), "--spot", "100", "--days-left", "4", "--holding", "0"])
+    assert refused.exit_code == 2 and "training_range.holding_shares must hold one [low, high] pair" in refused.stderr

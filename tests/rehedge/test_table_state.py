@@ -107,16 +107,17 @@ runner = CliRunner()
 def test_advise_takes_the_variance_a_table_needs_and_refuses_in_one_line_without_it(heston, tmp_path):
     _, _, tables = heston
     path = str(tables["linear"].path)
-    point = ["--spot", "62", "--days-left", "12", "--holding", "-2500"]
+    point = ["--spot", "62", "--days-left", "12", "--holding", "-1000"]  # inside the training range
     done = runner.invoke(app, ["advise", path, *point, "--variance", "0.05", "--json"])
     assert done.exit_code == 0, done.stderr
     record = json.loads(done.stdout)
-    expected = tables["linear"].decide(62.0, 12.0, -2500.0, 0.05)
+    expected = tables["linear"].decide(62.0, 12.0, -1000.0, 0.05)
     assert record["variance"] == 0.05 and record["target_shares"] == float(expected.target_shares)
     text = runner.invoke(app, ["advise", path, *point, "--variance", "0.05"])
     assert text.exit_code == 0 and "variance 0.05" in text.stdout
     far = runner.invoke(app, ["advise", path, *point, "--variance", "2.0"])
-    assert far.exit_code == 0 and "CLAMPED: variance 2 is outside the table's domain" in far.stdout
+    assert far.exit_code == 4 and "CLAMPED: variance 2 is outside the table's domain" in far.stdout
+    assert "OFF THE MAP: variance 2 is outside what the policy met on its training paths" in far.stdout
     for args, message in (
         ([], "error: --variance is required: this table's targets depend on the variance\n"),
         (["--implied-vol", "0.2"], "error: --implied-vol: this table has no implied_vol axis (it reads the variance: "
