@@ -505,15 +505,19 @@ def advise(
         if record["off_map"]:
             raise typer.Exit(OFF_MAP)
         return
-    trade = record["trade_shares"]
-    action = "no trade" if trade == 0 else f"{'buy' if trade > 0 else 'sell'} {abs(trade):,.6g} shares"
+    trade, lot = record["trade_shares"], record["lot_shares"]
+    lots = "" if lot == 1 else f" ({abs(trade) / lot:,.0f} lots of {lot:,.6g})"
+    action = "no trade" if trade == 0 else f"{'buy' if trade > 0 else 'sell'} {abs(trade):,.6g} shares{lots}"
+    currency = record["currency"] or "currency units"
     lines = [
         f"hedge table {record['table']} (policy {record['policy']}, config {record['config']}, "
         f"created {record['created']})",
         f"at spot {spot:g} (moneyness {record['moneyness']:.4f}), {days_left:g} days left"
         + ("" if state is None else f", {loaded.state} {state:g}") + f", holding {holding:,.6g} shares:",
         f"  target holding  {record['target_shares']:,.6g} shares",
-        f"  trade           {action}",
+        f"  trade           {action}" + ("" if trade == 0 else f", to {record['traded_target_shares']:,.6g} shares"),
+        f"  its cost        {record['trade_cost']:,.2f} {currency} (spread, fees and impact at this spot)",
+        f"  delta hedge     {record['delta_hedge_shares']:,.6g} shares (Black-Scholes at the mark volatility)",
     ]
     if record["band_lower_shares"] is None:
         lines.append("  no-trade band   none at this point (the policy trades to its target from any holding)")

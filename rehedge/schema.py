@@ -452,6 +452,8 @@ class FrictionsSpec(_Spec):
     position_limit_shares: Annotated[float | None, BeforeValidator(_inf_means_no_limit)] = Field(
         None, gt=0, le=SHARES_MAX, description="Hedge targets are clipped to +/- this many shares; absent or inf = no limit."
     )
+    lot_size: float = Field(1.0, gt=0, le=SHARES_MAX, description=(
+        "Shares per tradable lot: `rehedge advise` rounds each trade to whole lots (the hedge itself is not rounded)."))
 
 
 class ObjectiveSpec(_Spec):

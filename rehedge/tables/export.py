@@ -287,6 +287,7 @@ def export_table(
     volatility: float | None = None,
     state_range: tuple[float, float] | None = None,
     training_range: dict | None = None,
+    lot_shares: float = 1.0,
 ) -> Path:
     """Write ``policy`` on ``problem`` as a hedge table folder; returns the folder.
 
@@ -312,6 +313,8 @@ def export_table(
     training_range : dict, optional
         Per decision time, the range of each axis the policy met on its training paths
         (:func:`training_range`); null in the sidecar without it.
+    lot_shares : float
+        Shares per tradable lot (``frictions.lot_size``): advice rounds trades to whole lots.
     """
     folder = Path(folder)
     notional, marks = problem.notional_shares, problem.marks
@@ -358,7 +361,8 @@ def export_table(
             "days_per_year": float(marks.days_per_year),
         },
         "book": {"legs": [_leg_dict(leg) for leg in problem.book.legs],
-                 "notional_shares": float(notional), "reference_spot": float(problem.reference_spot)},
+                 "notional_shares": float(notional), "reference_spot": float(problem.reference_spot),
+                 "lot_shares": float(lot_shares)},
         "marks": {"volatility": float(marks.volatility), "rate": float(marks.rate),
                   "dividend_yield": float(marks.dividend_yield), "days_per_year": float(marks.days_per_year)},
         "schedule": {"steps": schedule.steps, "step_days": float(schedule.step_days),
@@ -527,4 +531,4 @@ def export_policy(config, problem, policies: dict, name: str, folder: str | Path
     return export_table(policies[name], problem, folder, grid=grid_of(config.export), kind=kinds.get(name, ""),
                         config_name=config.name, config_hash=config_hash(config),
                         currency=config.export.currency, volatility=config.pricing.volatility, state_range=bounds,
-                        training_range=seen)
+                        training_range=seen, lot_shares=config.frictions.lot_size)

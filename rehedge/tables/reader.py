@@ -510,6 +510,39 @@ def _state_name(meta: dict) -> str | None:
     return name
 
 
+def black_scholes_hedge(meta: dict, spot: float, days_left: float) -> float:
+    """Minus the book's Black-Scholes delta (shares) at the sidecar's mark volatility, rate and dividend
+    yield: the delta hedge a desk would hold at this point (math.erf; tested against hedge_env.pricing)."""
+    marks, schedule = meta["marks"], meta["schedule"]
+    vol, rate, carry = float(marks["volatility"]), float(marks["rate"]), float(marks["dividend_yield"])
+    elapsed = float(schedule["horizon_days"]) - days_left
+    delta = 0.0
+    for leg in meta["book"]["legs"]:
+        tau = (float(leg["expiry_days"]) - elapsed) / float(marks["days_per_year"])
+        shares = float(leg["quantity"]) * float(leg["multiplier"])
+        call = leg["kind"] == "call"
+        if tau <= 0:
+            continue
+        d1 = (math.log(spot / float(leg["strike"])) + (rate - carry + 0.5 * vol * vol) * tau) / (vol * math.sqrt(tau))
+        cdf = 0.5 * (1.0 + math.erf(d1 / math.sqrt(2.0)))
+        delta += shares * math.exp(-carry * tau) * (cdf if call else cdf - 1.0)
+    return -delta
+
+
+def trade_cost(frictions: dict, trade: float, spot: float) -> float:
+    """The cost of trading ``trade`` shares at mid ``spot`` under the sidecar's frictions: proportional
+    and fixed cost, temporary impact, and the fill halfway through the trade's own permanent impact
+    (hedge_env.frictions.Frictions's formulas; tested against it)."""
+    size = abs(trade)
+    if size == 0:
+        return 0.0
+    cost = float(frictions["cost_rate"]) * size * spot + float(frictions["fixed_cost"])
+    adv, beta = float(frictions["adv_shares"]), float(frictions["impact_exponent"])
+    cost += float(frictions["impact_coefficient"]) * spot * size ** (1.0 + beta) / adv**beta
+    cost += 0.5 * trade * spot * math.expm1(float(frictions["permanent_impact"]) / adv * trade)
+    return cost
+
+
 def advice(table: HedgeTable, spot: float, days_left: float, holding: float, state: float | None = None) -> dict:
     """One decision of ``table`` as a JSON-ready record: target, trade, band, clamping notes."""
     decision = table.decide(spot, days_left, holding, state)
@@ -536,6 +569,8 @@ def advice(table: HedgeTable, spot: float, days_left: float, holding: float, sta
                                f"{table.training_days[nearest]:g} days before the horizon [{low:,.6g}, {high:,.6g}]")
     lower, upper = float(decision.band_lower_shares), float(decision.band_upper_shares)
     meta = table.meta
+    lot = float(meta["book"].get("lot_shares", 1.0))
+    trade = lot * round(float(decision.trade_shares) / lot)  # whole lots; the unrounded target stays beside
     return {
         "table": str(table.path),
         "policy": meta["policy"]["name"],
@@ -547,7 +582,11 @@ def advice(table: HedgeTable, spot: float, days_left: float, holding: float, sta
         **({} if table.state is None else {table.state: float(state)}),
         "holding_shares": float(holding),
         "target_shares": float(decision.target_shares),
-        "trade_shares": float(decision.trade_shares),
+        "lot_shares": lot,
+        "trade_shares": trade,
+        "traded_target_shares": float(holding) + trade,
+        "trade_cost": trade_cost(meta["frictions"], trade, float(spot)),
+        "delta_hedge_shares": black_scholes_hedge(meta, float(spot), float(days_left)),
         "band_lower_shares": None if math.isnan(lower) else lower,
         "band_upper_shares": None if math.isnan(upper) else upper,
         "inside_band": bool(decision.inside_band),

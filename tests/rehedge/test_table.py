@@ -4,6 +4,7 @@ clamping, the Policy protocol, and the export / advise / evaluate commands."""
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import replace
 import shutil
 import subprocess
@@ -252,7 +253,8 @@ def test_advise_prints_target_trade_band_and_cautions_with_exit_code_0(exported)
     out = json.loads(done.stdout)
     expected = tables["whalley_wilmott"].decide(101.5, 4.0, 0.1)
     assert out["target_shares"] == float(expected.target_shares)
-    assert out["trade_shares"] == pytest.approx(out["target_shares"] - 0.1, abs=1e-12)
+    # The trade in whole lots (the default lot is one share): 0.517 shares to buy rounds to 1.
+    assert out["trade_shares"] == round(out["target_shares"] - 0.1) == 1.0 and out["traded_target_shares"] == 1.1
     assert out["band_lower_shares"] == float(expected.band_lower_shares) and not out["inside_band"]
     assert out["clamped"] is False and out["caution"] == CAUTION
     text = runner.invoke(app, ["advise", path, "--spot", "101.5", "--days-left", "4", "--holding", "0.1"])
@@ -407,3 +409,53 @@ def test_a_table_without_a_training_range_says_so_and_a_malformed_one_is_refused
     (copy / "table.json").write_text(json.dumps(meta))
     refused = runner.invoke(app, ["advise", str(copy), "--spot", "100", "--days-left", "4", "--holding", "0"])
     assert refused.exit_code == 2 and "training_range.holding_shares must hold one [low, high] pair" in refused.stderr
+
+
+def test_advice_rounds_the_trade_to_lots_and_shows_the_delta_hedge_and_the_trade_cost(tmp_path):
+    # A trader executes whole lots: the trade is rounded to frictions.lot_size (the sidecar's
+    # book.lot_shares), with the Black-Scholes delta hedge beside the target and the trade's cost.
+    problem = replace(reference_like(), book=Book((OptionLeg("call", 100.0, 10.0, -30.0, 100.0),)),
+                      frictions=Frictions(cost_rate=0.002, fixed_cost=5.0, impact_coefficient=0.1, adv_shares=1e5))
+    folder = export_table(WhalleyWilmottBand(problem, risk_aversion=0.01), problem, tmp_path / "lots", lot_shares=100.0)
+    done = runner.invoke(app, ["advise", str(folder), "--spot", "101", "--days-left", "6", "--holding", "0", "--json"])
+    assert done.exit_code == 0, done.output
+    out = json.loads(done.stdout)
+    assert out["lot_shares"] == 100.0 and out["trade_shares"] % 100.0 == 0.0 and out["trade_shares"] != 0.0
+    assert abs(out["trade_shares"] - (out["target_shares"] - 0.0)) <= 50.0
+    _, delta = problem.book.value_and_delta(101.0, problem.schedule.horizon_days - 6.0, problem.marks)
+    assert out["delta_hedge_shares"] == pytest.approx(-float(delta), rel=1e-12)
+    trade, frictions = out["trade_shares"], problem.frictions
+    expected = frictions.trading_cost(abs(trade), 101.0) + frictions.impact_cost(abs(trade), 101.0)
+    assert out["trade_cost"] == pytest.approx(expected, rel=1e-12)
+    text = runner.invoke(app, ["advise", str(folder), "--spot", "101", "--days-left", "6", "--holding", "0"])
+    assert f"lots of 100" in text.stdout and "delta hedge" in text.stdout and "its cost" in text.stdout
+
+
+def test_the_readers_cost_and_delta_are_the_steps_over_random_draws():
+    # The reader computes them without hedge_env (a live process loads numpy alone): the same formulas
+    # as hedge_env.frictions.Frictions and hedge_env's Black-Scholes book delta, over random inputs.
+    from rehedge.tables.reader import black_scholes_hedge, trade_cost
+
+    rng = np.random.default_rng(8)
+    for _ in range(200):
+        frictions = Frictions(cost_rate=rng.uniform(0, 0.01), fixed_cost=rng.uniform(0, 10),
+                              impact_coefficient=rng.uniform(0, 1), impact_exponent=rng.uniform(0, 1),
+                              permanent_impact=rng.uniform(0, 0.5), adv_shares=rng.uniform(1e3, 1e6))
+        trade, spot = rng.normal(0, 5000), rng.uniform(10, 200)
+        factor = frictions.impact_factor(trade, math.exp)
+        expected = (frictions.trading_cost(abs(trade), spot) + frictions.impact_cost(abs(trade), spot)
+                    + frictions.permanent_impact_cost(trade, spot, factor))
+        sidecar = {f: getattr(frictions, f) for f in ("cost_rate", "fixed_cost", "impact_coefficient",
+                                                      "impact_exponent", "permanent_impact", "adv_shares")}
+        assert trade_cost(sidecar, trade, spot) == pytest.approx(expected, rel=1e-9)
+        legs = (OptionLeg(str(rng.choice(["call", "put"])), rng.uniform(50, 150), rng.uniform(1, 60),
+                          rng.normal(0, 10), 100.0),)
+        marks = MarkParameters(rng.uniform(0.05, 0.8), rng.uniform(0, 0.05), rng.uniform(0, 0.03))
+        days_left = rng.uniform(0.5, 60)
+        meta = {"marks": {"volatility": marks.volatility, "rate": marks.rate, "dividend_yield": marks.dividend_yield,
+                          "days_per_year": marks.days_per_year},
+                "schedule": {"horizon_days": 60.0},
+                "book": {"legs": [{"kind": l.kind, "strike": l.strike, "expiry_days": l.expiry_days,
+                                   "quantity": l.quantity, "multiplier": l.multiplier} for l in legs]}}
+        _, delta = Book(legs).value_and_delta(spot, 60.0 - days_left, marks)
+        assert black_scholes_hedge(meta, spot, days_left) == pytest.approx(-float(delta), rel=1e-9, abs=1e-9)
