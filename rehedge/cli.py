@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 from contextlib import contextmanager
@@ -79,7 +80,10 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 # Not a terminal (a file, a pipe): tables up to 160 columns, and prose is never broken mid-sentence.
-console = Console(width=None if sys.stdout.isatty() else 160, soft_wrap=not sys.stdout.isatty())
+# The width: COLUMNS when set (a terminal's, or a test's), else the terminal's, else 160 (a pipe or a file).
+_COLUMNS = os.environ.get("COLUMNS", "")
+console = Console(width=int(_COLUMNS) if _COLUMNS.isdigit() and int(_COLUMNS) > 0 else
+                  None if sys.stdout.isatty() else 160, soft_wrap=not sys.stdout.isatty())
 errors = Console(stderr=True, soft_wrap=True)
 
 
@@ -122,31 +126,40 @@ def _progress(quiet: bool):
             shown[0].stop()
 
 
-def _print_table(title: str, records: list[dict], wide: bool = False) -> None:
-    """The ranked table: the terminal's columns (every column with ``wide``), split into as many tables
-    as the console's width needs, so no number and no policy name is ever cut."""
-    columns = [c for c in metric_columns(records[0]) if wide or c.on_terminal]
-    labels = [r["name"] if r["kind"] in ("", r["name"], "table") else f"{r['name']} ({r['kind']})" for r in records]
+def _print_split(title: str | None, lead: list[tuple[str, list[str], str]], rest: list[tuple[str, list[str]]]) -> None:
+    """Columns ``rest`` (header, cells; right-justified) beside the ``lead`` columns (header, cells,
+    justification), split into as many tables as the console's width needs, each repeating the lead
+    columns: no number and no name is ever cut."""
 
     def table_of(group) -> Table:
         table = Table(box=box.SIMPLE_HEAD, pad_edge=False)
-        table.add_column("policy", no_wrap=True)
-        for column in group:
-            table.add_column(column.short, justify="right", no_wrap=True)
-        for label, record in zip(labels, records):
-            table.add_row(label, *(column.format(record[column.key]) for column in group))
+        for header, _, justify in lead:
+            table.add_column(header, justify=justify, no_wrap=True)
+        for header, _ in group:
+            table.add_column(header, justify="right", no_wrap=True)
+        for row in zip(*(cells for _, cells, _ in lead), *(cells for _, cells in group)):
+            table.add_row(*row)
         return table
 
     groups = [[]]
-    for column in columns:
+    for column in rest:
         wider = table_of(groups[-1] + [column])
         natural = Measurement.get(console, console.options.update_width(10**6), wider).maximum
         if groups[-1] and natural > console.width:
             groups.append([])
         groups[-1].append(column)
-    console.print(title, highlight=False)
+    if title:
+        console.print(title, highlight=False)
     for group in groups:
         console.print(table_of(group))
+
+
+def _print_table(title: str, records: list[dict], wide: bool = False) -> None:
+    """The ranked table: the terminal's columns (every column with ``wide``), split as the width needs."""
+    columns = [c for c in metric_columns(records[0]) if wide or c.on_terminal]
+    labels = [r["name"] if r["kind"] in ("", r["name"], "table") else f"{r['name']} ({r['kind']})" for r in records]
+    _print_split(title, [("policy", labels, "left")],
+                 [(column.short, [column.format(r[column.key]) for r in records]) for column in columns])
 
 
 def _print_version(asked: bool) -> None:
@@ -382,6 +395,24 @@ def run(
         report_variants(run_dirs)
 
 
+def _print_quote_table(rows: list[dict]) -> None:
+    """Bid, ask, their spreads in volatility points and the CVaR quotes per policy, split as the width needs."""
+    # The risk of an unhedged book is no basis for a hedged quote: its row shows no numbers.
+    unhedged = [r["kind"] == "no_hedge" for r in rows]
+
+    def cells(format_one) -> list[str]:
+        return ["-" if skip else format_one(r) for r, skip in zip(rows, unhedged)]
+
+    _print_split(None, [("policy", [r["name"] + (" *" if skip else "") for r, skip in zip(rows, unhedged)], "left")], [
+        ("bid", cells(lambda r: format_money(r["quote_bid"]))),
+        ("ask", cells(lambda r: format_money(r["quote_ask"]))),
+        ("spread bid / ask (vol points)",
+         cells(lambda r: f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}")),
+        ("CVaR-95 bid", cells(lambda r: format_money(r["cvar_bid"]))),
+        ("CVaR-95 ask", cells(lambda r: format_money(r["cvar_ask"]))),
+    ])
+
+
 OBJECTIVE_WORDS = {"mean_variance": "mean-variance objective",
                    "exponential": "exponential utility (a utility-indifference price)"}
 
@@ -413,17 +444,7 @@ def quote(
     console.print(f"{cfg.name}: premiums in currency for the whole book, {n_paths:,} held-out paths; Black-Scholes "
                   f"mark {format_money(rows[0]['mark'])}; book vega {format_money(rows[0]['vega_per_vol_point'])} "
                   "per volatility point", highlight=False)
-    table = Table(box=box.SIMPLE_HEAD, pad_edge=False)
-    for header in ("policy", "bid", "ask", "spread bid / ask (vol points)", "CVaR-95 bid", "CVaR-95 ask"):
-        table.add_column(header, justify="left" if header == "policy" else "right", no_wrap=True)
-    for r in rows:
-        if r["kind"] == "no_hedge":  # the risk of an unhedged book is no basis for a hedged quote
-            table.add_row(r["name"] + " *", *["-"] * 5)
-            continue
-        table.add_row(r["name"], format_money(r["quote_bid"]), format_money(r["quote_ask"]),
-                      f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}",
-                      format_money(r["cvar_bid"]), format_money(r["cvar_ask"]))
-    console.print(table)
+    _print_quote_table(rows)
     # The mark is the configured position's liability: positive when the desk has sold value.
     sold = rows[0]["mark"] > 0
     console.print(("ask: the premium to receive for selling this book as configured" if sold else
@@ -575,17 +596,20 @@ def sweep_command(
 
 def _print_sweep(result) -> None:
     keys = [key for key in result.table.columns if key in result.cells[0].overrides]
-    table = Table(title=f"sweep {result.folder}: {len(result.cells)} cells in {result.seconds:.0f} s; money in "
-                        "currency units, costs per path", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
-    for header in [*(k.rsplit(".", 1)[-1] for k in keys), "status", "policy", "objective", "std P&L", "CVaR 95",
-                   "cost"]:
-        table.add_column(header, justify="left" if header in ("status", "policy") else "right", no_wrap=True)
-    for row in result.table.to_dict("records"):
-        numbers = [format_money(row[k]) if row.get(k) == row.get(k) and row.get(k) is not None else "-"
-                   for k in ("objective", "std_pnl", "cvar_95", "mean_cost")]
-        table.add_row(*(f"{row[k]:g}" if isinstance(row[k], float) else str(row[k]) for k in keys),
-                      row["status"], row["policy"] or row["error"][:60], *numbers)
-    console.print(table)
+    records = result.table.to_dict("records")
+
+    def money(key: str) -> list[str]:
+        return [format_money(row[key]) if row.get(key) == row.get(key) and row.get(key) is not None else "-"
+                for row in records]
+
+    lead = [(key.rsplit(".", 1)[-1], [f"{row[key]:g}" if isinstance(row[key], float) else str(row[key])
+                                      for row in records], "right") for key in keys]
+    lead += [("status", [row["status"] for row in records], "left"),
+             ("policy", [row["policy"] or row["error"][:60] for row in records], "left")]
+    _print_split(f"sweep {result.folder}: {len(result.cells)} cells in {result.seconds:.0f} s; money in currency "
+                 "units, costs per path", lead,
+                 [("objective", money("objective")), ("std P&L", money("std_pnl")), ("CVaR 95", money("cvar_95")),
+                  ("cost", money("mean_cost"))])
     if (result.folder / "frontier.png").is_file():
         console.print(f"cost-risk frontier: {result.folder / 'frontier.png'}", highlight=False)
     console.print(f"combined table: {result.folder / 'sweep.csv'} (and sweep.json)", highlight=False)

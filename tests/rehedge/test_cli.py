@@ -337,3 +337,35 @@ def test_the_tour_from_train_to_report_through_evaluate_save_and_last(tmp_path):
     exported = rehedge("export", "last", "--policy", "delta", cwd=tmp_path)
     assert exported.returncode == 0, exported.stderr
     assert exported.stderr == "" and exported.stdout.count("hedge table") == 1, exported
+
+
+def screen_at(monkeypatch, width: int, draw) -> str:
+    """What ``draw()`` prints on a console ``width`` columns wide."""
+    from rich.console import Console
+
+    from rehedge import cli
+
+    console = Console(width=width, record=True, file=open("/dev/null", "w"))
+    monkeypatch.setattr(cli, "console", console)
+    draw()
+    return console.export_text()
+
+
+@pytest.mark.parametrize("width", [60, 80, 100])
+def test_the_quote_table_never_cuts_a_number_at_any_width(monkeypatch, width):
+    # At 80 columns the quote table cut bid and ask to `3,...` and `6,...`.
+    from rehedge import cli
+    from rehedge.formats import format_count, format_money
+
+    row = {"name": "whalley_wilmott", "kind": "whalley_wilmott", "quote_bid": 3390.4, "quote_ask": 6140.2,
+           "spread_bid_vol_points": 9.1, "spread_ask_vol_points": 12.15, "cvar_bid": 2149.0, "cvar_ask": 7487.3}
+    rows = [row, {**row, "name": "a_much_longer_policy_name", "quote_bid": -1234567.0}, {**row, "name": "no_hedge",
+                                                                                         "kind": "no_hedge"}]
+    text = screen_at(monkeypatch, width, lambda: cli._print_quote_table(rows))
+    assert "…" not in text and max(len(line) for line in text.splitlines()) <= width
+    for r in rows[:2]:
+        assert r["name"] in text
+        for key in ("quote_bid", "quote_ask", "cvar_bid", "cvar_ask"):
+            assert format_money(r[key]) in text, key
+        assert f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}" in text
+    assert "no_hedge *" in text

@@ -180,3 +180,20 @@ def test_sweep_command_prints_the_combined_table_as_json_and_writes_each_cell_re
     # A sweep folder in use is not overwritten: one line, exit code 2.
     again = runner.invoke(app, ["sweep", str(config), "--sweep-dir", str(tmp_path / "s"), "--quiet"])
     assert again.exit_code == 2 and "already holds a sweep" in again.output
+
+
+@pytest.mark.parametrize("width", [60, 80, 100])
+def test_the_sweep_table_never_cuts_a_number_at_any_width(serial, monkeypatch, width):
+    # At 80 columns the sweep table cut `6,5...` and `13,2...`.
+    from tests.rehedge.test_cli import screen_at
+
+    from rehedge import cli
+    from rehedge.formats import format_money
+
+    text = screen_at(monkeypatch, width, lambda: cli._print_sweep(serial))
+    assert "…" not in text
+    table_lines = [line for line in text.splitlines() if not line.startswith(("sweep ", "cost-risk", "combined", "Decision"))]
+    assert max(len(line) for line in table_lines) <= width
+    for row in serial.table.to_dict("records"):
+        for key in ("objective", "std_pnl", "cvar_95", "mean_cost"):
+            assert format_money(row[key]) in text, key
