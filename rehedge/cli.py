@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
 import subprocess
 import sys
 from contextlib import contextmanager
@@ -80,10 +79,7 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 # Not a terminal (a file, a pipe): tables up to 160 columns, and prose is never broken mid-sentence.
-# The width: COLUMNS when set (a terminal's, or a test's), else the terminal's, else 160 (a pipe or a file).
-_COLUMNS = os.environ.get("COLUMNS", "")
-console = Console(width=int(_COLUMNS) if _COLUMNS.isdigit() and int(_COLUMNS) > 0 else
-                  None if sys.stdout.isatty() else 160, soft_wrap=not sys.stdout.isatty())
+console = Console(width=None if sys.stdout.isatty() else 160, soft_wrap=not sys.stdout.isatty())
 errors = Console(stderr=True, soft_wrap=True)
 
 
