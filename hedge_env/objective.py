@@ -9,15 +9,21 @@ Two objectives (``Objective.kind``):
   the terminal P&L W_T, with gamma = ``risk_aversion`` per currency unit. A
   policy's objective is the certainty equivalent
   ``CE = -1/gamma log E[exp(-gamma W_T)]`` over paths (computed with a
-  log-sum-exp, so no exponent overflows). The per-step reward is the
-  telescoping increment of the utility ``u(W) = (1 - exp(-gamma W)) / gamma``,
-  ``r_k = u(W_{k+1}) - u(W_k) = exp(-gamma W_k) (1 - exp(-gamma dW)) / gamma``:
-  an episode's summed reward is then exactly its terminal utility u(W_T), so
-  a reinforcement learner that maximises expected return maximises expected
+  log-sum-exp, so no exponent overflows). The reward is 0 at every step but
+  the last, which pays the terminal utility ``u(W_T) = (1 - exp(-gamma W_T)) / gamma``
+  in one rounding: an episode's return is exactly u(W_T), so a
+  reinforcement learner that maximises expected return maximises expected
   utility, whose certainty equivalent is ``-log(1 - gamma E[u]) / gamma``.
-  The increment depends on the wealth W_k gathered so far (the price of that
-  exactness: utility is not additive over steps); the batch agents do not
-  read it, they fit the certainty-equivalent recursion on the step P&L.
+  (The telescoping increments ``u(W_{k+1}) - u(W_k)`` sum to the same in exact
+  arithmetic, but each is ``exp(-gamma W_k)`` times a step's change: a path
+  that dips to a loss and recovers sums numbers far larger than its utility,
+  which cancel to noise, and overflow to inf - inf = NaN; at 100 short calls
+  and gamma 1 the sums missed u(W_T) by a relative 1e24.) u(W_T) itself is
+  below the double range, so -inf, exactly where gamma times the loss is over
+  709; no positive per-path rescaling can avoid that without reweighting the
+  paths (and so changing the optimum), while the certainty equivalent stays
+  finite. The batch agents do not read the reward, they fit the
+  certainty-equivalent recursion on the step P&L.
 
 Evaluation looks at the whole distribution of total P&L: losses are
 positive numbers in VaR and CVaR.
@@ -67,14 +73,14 @@ class Objective:
     def exponential(self) -> bool:
         return self.kind == "exponential"
 
-    def reward(self, pnl, wealth=0.0):
+    def reward(self, pnl, wealth=0.0, last: bool = True):
         """Per-step reward of a wealth change ``pnl`` (float or array); ``wealth``, the P&L gathered
-        before the step, is read only by the exponential objective."""
+        before the step, and ``last``, whether the step ends at the horizon, are read only by the
+        exponential objective (0 before the last step, then u(wealth + pnl); see the module's text)."""
         if self.exponential:
-            gamma = self.risk_aversion
-            if isinstance(pnl, float):
-                return -math.exp(-gamma * wealth) * math.expm1(-gamma * pnl) / gamma
-            return np.exp(-gamma * wealth) * -np.expm1(-gamma * pnl) / gamma
+            if not last:
+                return 0.0 * pnl
+            return terminal_utility(wealth + pnl, self.risk_aversion)
         if not self.risk_aversion:
             return pnl
         # pnl - (kappa / 2) pnl^2 in one buffer for arrays: the same bits, as negation is exact.
@@ -106,6 +112,20 @@ class Objective:
         if self.entropic_theta > 0:
             measures["entropic_risk"] = entropic_risk(pnl, self.entropic_theta)
         return measures
+
+
+# The largest x whose exp(x) is a finite double.
+_LOG_DOUBLE_MAX = math.log(np.finfo(float).max)
+
+
+def terminal_utility(wealth, gamma: float):
+    """``(1 - exp(-gamma W)) / gamma`` (float or array): -inf where ``-gamma W`` is beyond the double
+    range, never a NaN or an overflow warning."""
+    if isinstance(wealth, float):
+        return -math.inf if -gamma * wealth > _LOG_DOUBLE_MAX else -math.expm1(-gamma * wealth) / gamma
+    exponent = -gamma * np.asarray(wealth, dtype=float)
+    beyond = exponent > _LOG_DOUBLE_MAX
+    return np.where(beyond, -np.inf, -np.expm1(np.where(beyond, 0.0, exponent)) / gamma)
 
 
 def level_tag(level: float) -> str:

@@ -266,7 +266,7 @@ def hedge_step(
     # The exponential objective's reward reads the wealth before the step (the P&L gathered so far).
     wealth = state.wealth() if objective.exponential else 0.0
     return StepOutcome(
-        next_state, target, pnl, objective.reward(pnl, wealth), hedge_gain, book_change, financing,
+        next_state, target, pnl, objective.reward(pnl, wealth, step.last), hedge_gain, book_change, financing,
         trading_cost, impact_cost, traded_shares, trades,
     )
 

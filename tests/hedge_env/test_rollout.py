@@ -282,9 +282,9 @@ def test_rollout_objective_is_the_mean_of_summed_step_rewards_and_cvar_is_at_lea
     assert row["cvar_99"] >= row["cvar_95"]
 
 
-def test_exponential_step_rewards_telescope_to_the_terminal_utility_and_the_objective_is_its_certainty_equivalent():
-    # u(W) = (1 - exp(-gamma W)) / gamma: the per-step rewards u(W_{k+1}) - u(W_k) sum to u(W_T) on every
-    # path, with financing, fees, temporary and permanent impact (the wealth the reward reads, cash +
+def test_exponential_rewards_sum_to_the_terminal_utility_and_the_objective_is_its_certainty_equivalent():
+    # u(W) = (1 - exp(-gamma W)) / gamma: the rewards (0, then u at the last step) sum to u(W_T) on every
+    # path, with financing, fees, temporary and permanent impact (the wealth the last reward reads, cash +
     # shares x spot + book, must be the P&L gathered so far). Common practice, no source.
     gamma = 0.05
     problem = replace(friction_problem(), objective=Objective(risk_aversion=gamma, kind="exponential"))
@@ -297,6 +297,35 @@ def test_exponential_step_rewards_telescope_to_the_terminal_utility_and_the_obje
     # The same paths under the mean-variance objective: the P&L is the same to the bit.
     mean_variance = rollout(friction_problem(), DeltaHedge(problem), paths)
     np.testing.assert_array_equal(mean_variance.pnl, result.pnl)
+
+
+@pytest.mark.filterwarnings("error")  # no overflow or invalid-value warning either
+def test_exponential_rewards_at_a_thousand_calls_are_the_utility_never_nan():
+    # 1,000 short calls at gamma 1: with telescoping step rewards 12.5% of a delta hedge's paths gave
+    # inf or NaN and the sums missed u(W_T) by up to a relative 1e24. Now every path's return is u(W_T)
+    # to a rounding where it is a double, and -inf exactly where gamma x loss is beyond log(max double).
+    gamma = 1.0
+    book = Book((OptionLeg("call", 100.0, 10.0, quantity=-1000.0),))
+    problem = replace(friction_problem(), book=book, objective=Objective(risk_aversion=gamma, kind="exponential"),
+                      frictions=Frictions(cost_rate=0.001))
+    paths = GBMMarket(spot=100.0, volatility=0.25).generate(4000, problem.schedule.steps, problem.dt_years, seed=2)
+    result = rollout(problem, DeltaHedge(problem), paths)
+    assert not np.isnan(result.reward).any()
+    beyond = -gamma * result.pnl > math.log(np.finfo(float).max)
+    assert beyond.any() and not beyond.all()  # the case has both
+    np.testing.assert_array_equal(np.isneginf(result.reward), beyond)
+    # The wealth the last reward reads and the summed step P&Ls agree to 1e-9 currency units, so u to
+    # a relative gamma x 1e-9.
+    np.testing.assert_allclose(result.reward[~beyond], -np.expm1(-gamma * result.pnl[~beyond]) / gamma,
+                               rtol=gamma * 1e-9)
+    # The Gymnasium env's rewards on one path: 0 until the last step, then u(W_T).
+    env = HedgingEnv(problem, paths=MarketPaths(paths.spot[:1]))
+    env.reset(seed=0)
+    rewards, done = [], False
+    while not done:
+        _, reward, done, _, _ = env.step(np.array([0.0]))
+        rewards.append(reward)
+    assert rewards[:-1] == [0.0] * (len(rewards) - 1) and not math.isnan(rewards[-1])
 
 
 def test_certainty_equivalent_does_not_overflow_where_the_exponent_would():
