@@ -111,6 +111,8 @@ class Objective:
             measures[f"cvar_{tag}"] = conditional_value_at_risk(ordered, level, presorted=True)
         if self.entropic_theta > 0:
             measures["entropic_risk"] = entropic_risk(pnl, self.entropic_theta)
+        if self.exponential:
+            measures["ce_effective_paths"] = effective_paths(pnl, self.risk_aversion)
         return measures
 
 
@@ -155,6 +157,15 @@ def conditional_value_at_risk(pnl: np.ndarray, level: float, presorted: bool = F
 def certainty_equivalent(pnl: np.ndarray, gamma: float) -> float:
     """``-1/gamma log E[exp(-gamma X)]``: the sure amount worth as much as ``pnl`` under exponential utility."""
     return -entropic_risk(pnl, gamma)
+
+
+def effective_paths(pnl: np.ndarray, gamma: float) -> float:
+    """Kish's effective sample size of the certainty equivalent's weights ``exp(-gamma P&L)``:
+    ``(sum w)^2 / sum w^2``, between 1 (one path decides it) and the path count (all count alike).
+    Computed with the weights scaled by the largest, so none overflows."""
+    exponent = -gamma * np.asarray(pnl, dtype=float)
+    weights = np.exp(exponent - exponent.max())
+    return float(weights.sum() ** 2 / np.dot(weights, weights))
 
 
 def entropic_risk(pnl: np.ndarray, theta: float) -> float:

@@ -20,6 +20,7 @@ from typer.core import TyperGroup
 from rehedge.errors import UserError, one_line
 from rehedge.formats import (
     CAUTION,
+    ce_caution,
     format_count,
     format_interval,
     format_money,
@@ -219,8 +220,9 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
         "costs per path" + (", turnover in notionals" if wide else ""),
         records, wide,
     )
-    if caution := tail_caution(n_paths):
-        console.print(caution, highlight=False)
+    for caution in (tail_caution(n_paths), ce_caution(records)):
+        if caution:
+            console.print(caution, highlight=False)
     reference = evaluation.reference
     if reference in evaluation.results:
         objective = "certainty equivalent" if cfg.objective.kind == "exponential" else "objective"

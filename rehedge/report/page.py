@@ -24,6 +24,7 @@ import matplotlib
 
 from rehedge.formats import (
     CAUTION,
+    ce_caution,
     format_days,
     format_money,
     format_percent,
@@ -183,7 +184,7 @@ def _cell(key: str, value, formatter) -> str:
 
 # The summary's tables: each policy's row in each, so every column fits a 1,400 px window and a page.
 _SUMMARY_TABLES = (
-    ("Ranking", ("objective", "mean_pnl", "std_pnl")),
+    ("Ranking", ("objective", "mean_pnl", "std_pnl", "ce_effective_paths")),
     ("Tail risk", ("var_", "cvar_", "entropic_risk")),
     ("Trading", ("mean_cost", "mean_impact", "turnover", "trades")),
     ("Quotes", ("quote_", "spread_")),
@@ -253,7 +254,13 @@ def _summary_html(scored: Scored) -> str:
                   "Bid and ask: mean-variance indifference premiums")
                  + " for the opposite and the configured book; spreads are each quote's distance from the mark, "
                  "in Black-Scholes implied-volatility points.")
+    if exponential:
+        note += ("CE paths: Kish's effective number of paths behind each certainty equivalent, "
+                 "(sum w)^2 / sum w^2 with w = exp(-gamma P&L); under half the paths, its interval is not to be "
+                 "trusted. ")
     parts = [f'<h2>Summary</h2><p class="muted">{_e(note)}</p>']
+    if caution := ce_caution(records):
+        parts.append(f'<p class="caution">{_e(caution)}</p>')
     for title, prefixes in _SUMMARY_TABLES:
         chosen = [c for c in columns if c.key.startswith(prefixes)]
         if not chosen:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 
@@ -200,3 +202,34 @@ def test_quotes_need_no_cvar_95_among_the_configured_levels():
     q, result = evaluation.quotes["delta"], evaluation.results["delta"]
     assert q["cvar_ask"] == pytest.approx(q["mark"] + conditional_value_at_risk(result.pnl, 0.95), rel=1e-12)
     assert "cvar_95" not in evaluation.to_records()[0]
+
+
+@pytest.mark.parametrize("c, heavy", [(0.3, False), (0.8, True)])
+def test_a_certainty_equivalent_on_too_few_effective_paths_is_flagged_where_its_interval_stops_covering(c, heavy):
+    # A short-gamma toy with a known answer: P&L = -a Z^2, Z standard normal, so E[exp(-gamma P&L)] =
+    # (1 - 2 gamma a)^(-1/2) and CE = log(1 - 2 gamma a) / (2 gamma) (the chi-square's moment generating
+    # function; common practice, no source). At c = 2 gamma a = 0.3 the weights have finite variance and
+    # the bootstrap interval covers at the nominal 95% (within 3 binomial standard errors) with the
+    # effective paths over half the paths in every sample (no warning); at c = 0.8 they have none, the
+    # interval covers far less, and the warning fires on most samples (docs/references.md,
+    # "Certainty-equivalent intervals").
+    from hedge_env.objective import effective_paths
+    from rehedge.compare import resample_batches, resampled_certainty_equivalent
+    from rehedge.formats import ce_caution
+
+    gamma, n, trials = 1.0, 2000, 200
+    a, known = c / (2 * gamma), math.log(1 - c) / (2 * gamma)
+    rng = np.random.default_rng(21)
+    covered = flagged = 0
+    for t in range(trials):
+        pnl = -a * rng.standard_normal(n) ** 2
+        _, resampled = resampled_certainty_equivalent(pnl, gamma, resample_batches(n, 400, t))
+        low, high = np.quantile(resampled, [0.025, 0.975])
+        covered += low <= known <= high
+        record = {"name": "toy", "paths": n, "ce_effective_paths": effective_paths(pnl, gamma)}
+        flagged += ce_caution([record]) is not None
+    coverage, tolerance = covered / trials, 3 * math.sqrt(0.95 * 0.05 / trials)
+    if heavy:
+        assert coverage < 0.95 - tolerance and flagged > trials / 2, (coverage, flagged)
+    else:
+        assert abs(coverage - 0.95) <= tolerance and flagged == 0, (coverage, flagged)

@@ -296,7 +296,7 @@ def test_folder_without_metrics_is_a_one_line_run_folder_error(runs, tmp_path):
     for name in ("config.json", "manifest.json", "config.toml"):
         (unscored / name).write_text((runs[0] / name).read_text())
     (unscored / "agents").symlink_to(runs[0] / "agents")
-    with pytest.raises(RunFolderError, match=r"no metrics\.json") as error:
+    with pytest.raises(RunFolderError, match=r"no held-out scores \(metrics\.json\)") as error:
         build_report(unscored)
     assert "\n" not in str(error.value)
 
