@@ -110,6 +110,7 @@ def write_run(training: Training, config_text: str, runs_dir: Path, extra: dict 
             "tuned": {name: {r.parameter: r.value, "train_objective": r.objective}
                       for name, r in training.tuning.items()},
             "agents": {spec.name: spec.kind for spec in config.agents},
+            "grid_convergence": training.grid_convergence,
             **_history_facts(training),
             **(extra or {}),
         }

@@ -129,6 +129,13 @@ def _scenario_html(scored: Scored) -> str:
         ("software", f"rehedge {manifest.get('version', 'n/a')}, Python {manifest.get('python', 'n/a')}, "
                      f"numpy {manifest.get('numpy', 'n/a')}, scikit-learn {manifest.get('scikit_learn', 'n/a')}"),
     ]
+    for name, grid in manifest.get("grid_convergence", {}).items():
+        sizes = " x ".join(str(n) for n in grid["grid"].values())
+        coarser = " x ".join(str(n) for n in grid["coarser_grid"].values())
+        facts.append((f"grid optimum {name}: convergence",
+                      f"value at the start {format_money(grid['value'])} on {sizes} points, "
+                      f"{format_money(grid['coarser_value'])} on {coarser} (difference {grid['difference']:.3g}, "
+                      "currency; the finer grid's own error is of that order or less)"))
     tuned = manifest.get("tuned", {})
     if tuned:
         facts.append(("tuned on training paths", "; ".join(

@@ -369,3 +369,16 @@ def test_the_quote_table_never_cuts_a_number_at_any_width(monkeypatch, width):
             assert format_money(r[key]) in text, key
         assert f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}" in text
     assert "no_hedge *" in text
+
+
+def test_a_run_reports_its_grid_optimums_convergence(small_run):
+    # Grid convergence is a per-config fact (6e-5 on configs/heston.toml, 7.4e-3 on a 10-day strike-105
+    # case): a run records its grid optimum's value at the start beside the value on a grid of half the
+    # points per axis, in the manifest and the report.
+    _, _, out = small_run
+    run_dir = Path(out["run"])
+    grid = json.loads((run_dir / "manifest.json").read_text())["grid_convergence"]["grid_dp"]
+    assert grid["grid"] == {"holding_points": 41, "spot_points": 41}
+    assert grid["coarser_grid"] == {"holding_points": 21, "spot_points": 21}
+    assert grid["difference"] == pytest.approx(grid["value"] - grid["coarser_value"], abs=1e-12)
+    assert "grid optimum grid_dp: convergence" in (run_dir / "report.html").read_text()
