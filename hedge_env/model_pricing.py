@@ -262,13 +262,16 @@ def _black_normalized(x: np.ndarray, v: np.ndarray, pricer: HestonPricer, tau: f
     call the table leaves out (the difference is smooth in the table's coordinates and small)."""
     w = pricer.mean_variance(v, tau)
     root = np.sqrt(w * tau)
-    d1 = x / root + 0.5 * root
-    forward = np.exp(x)
-    c_x = forward * ndtr(d1)
-    c = c_x - ndtr(d1 - root)
-    # dc/dw = e^x phi(d1) sqrt(tau) / (2 sqrt(w)); dw/dv = (1 - e^{-kappa tau}) / (kappa tau)
-    slope = -math.expm1(-pricer.mean_reversion * tau) / (pricer.mean_reversion * tau)
-    c_v = forward * np.exp(-0.5 * d1 * d1) * (_INV_SQRT_2PI * tau * 0.5 * slope) / root
+    # A mean variance of 0 (v = 0 with kappa tau at 0) gives NaN here, without a warning: such points lie
+    # outside the table's z range and fail the tails' check, so the integral prices them.
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d1 = x / root + 0.5 * root
+        forward = np.exp(x)
+        c_x = forward * ndtr(d1)
+        c = c_x - ndtr(d1 - root)
+        # dc/dw = e^x phi(d1) sqrt(tau) / (2 sqrt(w)); dw/dv = (1 - e^{-kappa tau}) / (kappa tau)
+        slope = -math.expm1(-pricer.mean_reversion * tau) / (pricer.mean_reversion * tau)
+        c_v = forward * np.exp(-0.5 * d1 * d1) * (_INV_SQRT_2PI * tau * 0.5 * slope) / root
     return np.stack([c, c_x, c_v])
 
 

@@ -216,8 +216,8 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
         return
     fixed = cfg.market.model == "historical"
     _print_table(
-        f"{cfg.name}: {heldout_text(n_paths, cfg.data.heldout_paths, seed, fixed)}; money in currency units, "
-        "costs per path" + (", turnover in notionals" if wide else ""),
+        f"{cfg.name}: {heldout_text(n_paths, cfg.data.heldout_paths, seed, fixed)}; ranked by objective, higher "
+        "is better; money in currency units, costs per path" + (", turnover in notionals" if wide else ""),
         records, wide,
     )
     for caution in (tail_caution(n_paths), ce_caution(records)):
@@ -226,12 +226,12 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
     reference = evaluation.reference
     if reference in evaluation.results:
         objective = "certainty equivalent" if cfg.objective.kind == "exponential" else "objective"
-        console.print(f"{objective} difference from {reference}, paired over paths, bootstrap 95% CI "
+        console.print(f"{objective} (higher is better) difference from {reference}, paired over paths, bootstrap 95% CI "
                       f"({evaluation.bootstrap_samples} resamples, seed {evaluation.bootstrap_seed}):", highlight=False)
         for record in records:
             if record["name"] != reference:
                 v = record["vs_reference"]
-                verdict = "above" if v["ci_low"] > 0 else "below" if v["ci_high"] < 0 else "not distinguishable"
+                verdict = "better" if v["ci_low"] > 0 else "worse" if v["ci_high"] < 0 else "not distinguishable"
                 console.print(f"  {record['name']:<18} {format_interval(v['mean'], v['ci_low'], v['ci_high'])}"
                               f"  {verdict}", highlight=False)
     for name, result in tuning.items():

@@ -64,7 +64,7 @@ table.facts th { width: 210px; }
 figure { margin: 14px 0 22px; }
 figure img { max-width: 100%; height: auto; display: block; }
 figcaption { font-size: 12.5px; color: #55524b; margin-top: 4px; max-width: 980px; }
-.above { color: #2f7a4d; } .below { color: #b3412c; }
+.better { color: #2f7a4d; } .worse { color: #b3412c; }
 @media print { body { max-width: none; padding: 0; font-size: 11px; } table { font-size: 10px; }
                figure, table { break-inside: avoid; } h2, h3 { break-after: avoid; } }
 """
@@ -231,7 +231,7 @@ def _versus_cells(reference: str, label: str):
         if record["name"] == reference:
             return [mean, '<td class="num">reference</td>', "<td></td>"]
         low, high = versus["ci_low"], versus["ci_high"]
-        verdict = "above" if low > 0 else "below" if high < 0 else "not distinguishable"
+        verdict = "better" if low > 0 else "worse" if high < 0 else "not distinguishable"
         return [mean,
                 f'<td class="num" data-key="vs_reference_ci" data-value="{_e(repr(low))} {_e(repr(high))}">'
                 f"[{_e(format_signed_money(low))}, {_e(format_signed_money(high))}]</td>",
@@ -255,7 +255,7 @@ def _summary_html(scored: Scored) -> str:
                       "mean per-path difference in summed reward")
         note += (f"The difference from {reference_label} is the {difference}, with a "
                  f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples of the paths); "
-                 "'above' or 'below' when the interval excludes zero. ")
+                 "'better' or 'worse' than it when the interval excludes zero. ")
     if "quote_bid" in records[0]:
         note += (("Bid and ask: utility-indifference premiums under exponential utility" if exponential else
                   "Bid and ask: mean-variance indifference premiums")

@@ -470,13 +470,14 @@ RANGE_STATE_MARGIN = 0.1
 
 
 def training_range(policy, problem, source, state: str | None, seed: int = 0,
-                   exploration: Exploration = Exploration()) -> dict:
-    """Per decision time, the range of each table axis over ``STATE_RANGE_PATHS`` paths of the training
-    market ``source`` (a history's windows: as many as it has), both as the learned agents' training
-    data visits them (``exploration``, the behaviour policy) and as the policy itself hedges them,
+                   exploration: Exploration = Exploration(), n_paths: int = STATE_RANGE_PATHS) -> dict:
+    """Per decision time, the range of each table axis over ``n_paths`` paths of the training market
+    ``source`` (a history's windows: as many as it has; the run takes its training path count, at most
+    ``STATE_RANGE_PATHS``), both as the learned agents' training data visits them (``exploration``, the
+    behaviour policy) and as the policy itself hedges them,
     widened by the margins above: the states a learned policy was fitted on and every policy was
     scored on. A state outside it is advice off the map (``rehedge advise`` says so)."""
-    n_paths = STATE_RANGE_PATHS if source.max_paths is None else min(STATE_RANGE_PATHS, source.max_paths)
+    n_paths = n_paths if source.max_paths is None else min(n_paths, source.max_paths)
     recorder = RowRecorder(policy)
     rollout(problem, recorder, source, n_paths, seed)
     schedule, notional = problem.schedule, problem.notional_shares
@@ -527,7 +528,8 @@ def export_policy(config, problem, policies: dict, name: str, folder: str | Path
     agent = next((spec for spec in config.agents if spec.name == name), None)
     exploration = Exploration() if agent is None else exploration_of(agent)
     seen = (None if market is None else
-            training_range(policies[name], problem, market, axis, config.data.train_seed, exploration))
+            training_range(policies[name], problem, market, axis, config.data.train_seed, exploration,
+                           min(STATE_RANGE_PATHS, config.data.train_paths)))
     return export_table(policies[name], problem, folder, grid=grid_of(config.export), kind=kinds.get(name, ""),
                         config_name=config.name, config_hash=config_hash(config),
                         currency=config.export.currency, volatility=config.pricing.volatility, state_range=bounds,
