@@ -332,7 +332,21 @@ def gamma(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.nd
     ndarray
         d2V/dS2 per unit of spot, float64; 0 at expiry and at zero volatility.
     """
-    return black_scholes(spot, strike, tau, vol, rate, dividend, is_call).gamma
+    scalars = [_as_float(x) for x in (tau, vol, rate, dividend)]
+    if None in scalars:  # per-element times or volatilities: the general function's masks
+        return black_scholes(spot, strike, tau, vol, rate, dividend, is_call).gamma
+    tau, vol, rate, dividend = scalars
+    shape = np.broadcast_shapes(np.shape(spot), np.shape(strike))
+    std = vol * math.sqrt(max(tau, 0.0))
+    if tau <= 0.0 or vol <= 0.0 or std <= _MIN_STD:
+        return np.zeros(shape)
+    # One time and volatility (the step's case): e^{-q tau} phi(d1) / (S std) directly, without the
+    # price, the delta, vega and theta that the general function computes beside it.
+    S = np.asarray(spot, dtype=np.float64)
+    with np.errstate(under="ignore"):
+        d1 = np.log(S / np.asarray(strike, dtype=np.float64)) * (1.0 / std) + ((rate - dividend) * tau / std + 0.5 * std)
+        out = np.exp(-0.5 * d1 * d1) * (math.exp(-dividend * tau) * _INV_SQRT_2PI / std) / S
+    return np.broadcast_to(out, shape).copy() if out.shape != shape else out
 
 
 def vega(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.ndarray:
