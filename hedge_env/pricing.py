@@ -346,6 +346,7 @@ def gamma(spot, strike, tau, vol, rate=0.0, dividend=0.0, is_call=True) -> np.nd
     with np.errstate(under="ignore"):
         d1 = np.log(S / np.asarray(strike, dtype=np.float64)) * (1.0 / std) + ((rate - dividend) * tau / std + 0.5 * std)
         out = np.exp(-0.5 * d1 * d1) * (math.exp(-dividend * tau) * _INV_SQRT_2PI / std) / S
+    out = np.asarray(out)
     return np.broadcast_to(out, shape).copy() if out.shape != shape else out
 
 
