@@ -334,9 +334,13 @@ def test_the_tour_from_train_to_report_through_evaluate_save_and_last(tmp_path):
     assert [p["objective"] for p in recorded] == [p["objective"] for p in json.loads(saved.stdout)["policies"]]
     reported = rehedge("report", "last", cwd=tmp_path)
     assert reported.returncode == 0 and (run_dir / "report.html").is_file(), reported.stderr
-    exported = rehedge("export", "last", "--policy", "delta", cwd=tmp_path)
+    exported = rehedge("export", "last", "--policy", "linear", "--check-paths", "400", cwd=tmp_path)
     assert exported.returncode == 0, exported.stderr
-    assert exported.stderr == "" and exported.stdout.count("hedge table") == 1, exported
+    assert exported.stdout.count("hedge table") == 1, exported
+    # The table beside its source and the baselines, paired on held-out paths; a warning if a baseline wins.
+    assert "the table on 400 held-out paths" in exported.stdout
+    assert "(its source)" in exported.stdout and "(baseline)" in exported.stdout
+    assert exported.stderr == "" or exported.stderr.startswith("warning: "), exported.stderr
 
 
 def screen_at(monkeypatch, width: int, draw) -> str:
