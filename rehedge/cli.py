@@ -26,6 +26,7 @@ from rehedge.formats import (
     format_money,
     heldout_text,
     metric_columns,
+    money_formatter,
     tail_caution,
 )
 
@@ -155,8 +156,11 @@ def _print_table(title: str, records: list[dict], wide: bool = False) -> None:
     """The ranked table: the terminal's columns (every column with ``wide``), split as the width needs."""
     columns = [c for c in metric_columns(records[0]) if wide or c.on_terminal]
     labels = [r["name"] if r["kind"] in ("", r["name"], "table") else f"{r['name']} ({r['kind']})" for r in records]
-    _print_split(title, [("policy", labels, "left")],
-                 [(column.short, [column.format(r[column.key]) for r in records]) for column in columns])
+    cells = []
+    for column in columns:
+        values = [r[column.key] for r in records]
+        cells.append((column.short, [column.formatter(values)(v) for v in values]))
+    _print_split(title, [("policy", labels, "left")], cells)
 
 
 def _print_version(asked: bool) -> None:
@@ -401,13 +405,17 @@ def _print_quote_table(rows: list[dict]) -> None:
     def cells(format_one) -> list[str]:
         return ["-" if skip else format_one(r) for r, skip in zip(rows, unhedged)]
 
+    def money(key: str) -> list[str]:  # one number of decimals per column
+        shown = money_formatter([r[key] for r, skip in zip(rows, unhedged) if not skip])
+        return cells(lambda r: shown(r[key]))
+
     _print_split(None, [("policy", [r["name"] + (" *" if skip else "") for r, skip in zip(rows, unhedged)], "left")], [
-        ("bid", cells(lambda r: format_money(r["quote_bid"]))),
-        ("ask", cells(lambda r: format_money(r["quote_ask"]))),
+        ("bid", money("quote_bid")),
+        ("ask", money("quote_ask")),
         ("spread bid / ask (vol points)",
          cells(lambda r: f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}")),
-        ("CVaR-95 bid", cells(lambda r: format_money(r["cvar_bid"]))),
-        ("CVaR-95 ask", cells(lambda r: format_money(r["cvar_ask"]))),
+        ("CVaR-95 bid", money("cvar_bid")),
+        ("CVaR-95 ask", money("cvar_ask")),
     ])
 
 
@@ -630,7 +638,8 @@ def _print_sweep(result) -> None:
     records = result.table.to_dict("records")
 
     def money(key: str) -> list[str]:
-        return [format_money(row[key]) if row.get(key) == row.get(key) and row.get(key) is not None else "-"
+        shown = money_formatter([row.get(key) for row in records])
+        return [shown(row[key]) if row.get(key) == row.get(key) and row.get(key) is not None else "-"
                 for row in records]
 
     lead = [(key.rsplit(".", 1)[-1], [f"{row[key]:g}" if isinstance(row[key], float) else str(row[key])

@@ -30,6 +30,22 @@ def format_money(value: float | None) -> str:
     return f"{value:,.2f}"
 
 
+def money_formatter(values) -> Callable[[float | None], str]:
+    """One format for a column of currency amounts, with the decimals its largest needs (as
+    :func:`format_money` gives that one: whole units from 100, cents from 1, three significant digits
+    below), so that every row of the column has the same decimals."""
+    sizes = [abs(v) for v in values if v is not None and math.isfinite(v)]
+    top = max(sizes, default=0.0)
+    decimals = 0 if top >= 100 else 2 if top >= 1 or top == 0 else min(2 - math.floor(math.log10(top)), 12)
+
+    def formatted(value: float | None) -> str:
+        if value is None or not math.isfinite(value):
+            return "n/a"
+        return f"{value:,.{decimals}f}"
+
+    return formatted
+
+
 def format_signed_money(value: float | None) -> str:
     """A difference in currency, always signed."""
     text = format_money(value)
@@ -59,6 +75,11 @@ class MetricColumn:
     format: Callable[[float | None], str]
     on_terminal: bool = True
 
+    def formatter(self, values) -> Callable[[float | None], str]:
+        """The format of this column over ``values`` (all its rows): money with one number of
+        decimals for the whole column, anything else as :attr:`format`."""
+        return money_formatter(values) if self.format is format_money else self.format
+
 
 def metric_columns(record: dict) -> list[MetricColumn]:
     """The metric columns of a held-out record, in display order, for the keys it has: objective,
@@ -87,9 +108,9 @@ def metric_columns(record: dict) -> list[MetricColumn]:
         MetricColumn("trades", "trades", "trades (per path)", format_count),
         MetricColumn("quote_bid", "bid", "bid (currency)", format_money, on_terminal=False),
         MetricColumn("quote_ask", "ask", "ask (currency)", format_money, on_terminal=False),
-        MetricColumn("spread_bid_vol_points", "bid spread", "bid spread (vol points)", format_count,
+        MetricColumn("spread_bid_vol_points", "bid spread (vol pts)", "bid spread (vol points)", format_count,
                      on_terminal=False),
-        MetricColumn("spread_ask_vol_points", "ask spread", "ask spread (vol points)", format_count,
+        MetricColumn("spread_ask_vol_points", "ask spread (vol pts)", "ask spread (vol points)", format_count,
                      on_terminal=False),
     ]
     return [column for column in columns if column.key in record]

@@ -206,13 +206,14 @@ def _summary_table(records: list[dict], columns, versus_of=None) -> str:
         headers += versus_of(None)
     headers += [column.long for column in columns[1:]]
     rows = []
+    shown = {column.key: column.formatter([r[column.key] for r in records]) for column in columns}
     for rank, record in enumerate(records, start=1):
         cells = [f'<td class="num">{rank}</td>',
                  f'<td data-key="name">{_e(policy_label(record["name"], record.get("kind", "")))}</td>',
-                 _cell(columns[0].key, record[columns[0].key], columns[0].format)]
+                 _cell(columns[0].key, record[columns[0].key], shown[columns[0].key])]
         if versus_of is not None:
             cells += versus_of(record)
-        cells += [_cell(column.key, record[column.key], column.format) for column in columns[1:]]
+        cells += [_cell(column.key, record[column.key], shown[column.key]) for column in columns[1:]]
         rows.append(f'<tr data-policy="{_e(record["name"])}">{"".join(cells)}</tr>')
     head = "".join(f"<th>{_e(h)}</th>" for h in headers)
     return f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>'

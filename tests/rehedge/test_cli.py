@@ -232,7 +232,7 @@ def test_the_ranked_table_never_cuts_a_number_or_a_name_at_any_width(monkeypatch
         assert (r["name"] if r["kind"] == r["name"] else f"{r['name']} ({r['kind']})") in text
         for column in metric_columns(r):
             if wide or column.on_terminal:
-                assert column.format(r[column.key]) in text, column.key
+                assert column.formatter([q[column.key] for q in records])(r[column.key]) in text, column.key
     assert max(len(line) for line in text.splitlines()) <= width
 
 
@@ -359,7 +359,7 @@ def screen_at(monkeypatch, width: int, draw) -> str:
 def test_the_quote_table_never_cuts_a_number_at_any_width(monkeypatch, width):
     # At 80 columns the quote table cut bid and ask to `3,...` and `6,...`.
     from rehedge import cli
-    from rehedge.formats import format_count, format_money
+    from rehedge.formats import format_count, money_formatter
 
     row = {"name": "whalley_wilmott", "kind": "whalley_wilmott", "quote_bid": 3390.4, "quote_ask": 6140.2,
            "spread_bid_vol_points": 9.1, "spread_ask_vol_points": 12.15, "cvar_bid": 2149.0, "cvar_ask": 7487.3}
@@ -370,7 +370,7 @@ def test_the_quote_table_never_cuts_a_number_at_any_width(monkeypatch, width):
     for r in rows[:2]:
         assert r["name"] in text
         for key in ("quote_bid", "quote_ask", "cvar_bid", "cvar_ask"):
-            assert format_money(r[key]) in text, key
+            assert money_formatter([q[key] for q in rows[:2]])(r[key]) in text, key
         assert f"{format_count(r['spread_bid_vol_points'])} / {format_count(r['spread_ask_vol_points'])}" in text
     assert "no_hedge *" in text
 
@@ -386,3 +386,12 @@ def test_a_run_reports_its_grid_optimums_convergence(small_run):
     assert grid["coarser_grid"] == {"holding_points": 21, "spot_points": 21}
     assert grid["difference"] == pytest.approx(grid["value"] - grid["coarser_value"], abs=1e-12)
     assert "grid optimum grid_dp: convergence" in (run_dir / "report.html").read_text()
+
+
+def test_a_money_column_has_one_number_of_decimals():
+    # The reference case mixed -0.19, -0.194 and 0.2 in one column.
+    from rehedge.formats import money_formatter
+
+    assert [money_formatter([-0.19, -0.194, 0.2])(v) for v in (-0.19, -0.194, 0.2)] == ["-0.190", "-0.194", "0.200"]
+    assert [money_formatter([5.5, 12.25])(v) for v in (5.5, 12.25)] == ["5.50", "12.25"]
+    assert [money_formatter([1368.4, -0.2, None])(v) for v in (1368.4, -0.2, None)] == ["1,368", "-0", "n/a"]

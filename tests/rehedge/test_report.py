@@ -18,7 +18,7 @@ from agents.registry import AGENTS, BASELINES
 from rehedge.compare import evaluate_with_quotes, write_metrics
 from rehedge.config import load_variants
 from rehedge.errors import RunFolderError
-from rehedge.formats import CAUTION, format_money, metric_columns
+from rehedge.formats import CAUTION, format_money, metric_columns, money_formatter
 from rehedge.report import build_report
 from rehedge.report.figures import _band_departure, _departure_text, policy_map
 from rehedge.report.scored import policy_label
@@ -177,13 +177,16 @@ def test_summary_objectives_are_the_metrics_json_values_formatted_in_rank_order(
     metrics = json.loads((runs[0] / "metrics.json").read_text())
     rows = parse(report).rows
     assert [row["policy"] for row in rows] == [record["name"] for record in metrics["policies"]]
+    # Each money column in one number of decimals, the one its largest value needs.
+    shown = {key: money_formatter([record[key] for record in metrics["policies"]])
+             for key in ("objective", "cvar_95", "quote_ask")}
     for row, record in zip(rows, metrics["policies"]):
-        assert row["objective"] == format_money(record["objective"])
+        assert row["objective"] == shown["objective"](record["objective"])
         # The cell carries the unrounded value too: the very float of metrics.json.
         assert float(row["objective@value"]) == record["objective"]
         assert float(row["vs_reference_mean@value"]) == record["vs_reference"]["mean"]
-        assert row["cvar_95"] == format_money(record["cvar_95"])
-        assert row["quote_ask"] == format_money(record["quote_ask"])
+        assert row["cvar_95"] == shown["cvar_95"](record["cvar_95"])
+        assert row["quote_ask"] == shown["quote_ask"](record["quote_ask"])
         # Every measure of metrics.json is in one of the summary's tables.
         assert {column.key for column in metric_columns(record)} <= set(row)
 

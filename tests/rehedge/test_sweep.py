@@ -188,12 +188,14 @@ def test_the_sweep_table_never_cuts_a_number_at_any_width(serial, monkeypatch, w
     from tests.rehedge.test_cli import screen_at
 
     from rehedge import cli
-    from rehedge.formats import format_money
+    from rehedge.formats import money_formatter
 
     text = screen_at(monkeypatch, width, lambda: cli._print_sweep(serial))
     assert "…" not in text
     table_lines = [line for line in text.splitlines() if not line.startswith(("sweep ", "cost-risk", "combined", "Decision"))]
     assert max(len(line) for line in table_lines) <= width
-    for row in serial.table.to_dict("records"):
-        for key in ("objective", "std_pnl", "cvar_95", "mean_cost"):
-            assert format_money(row[key]) in text, key
+    records = serial.table.to_dict("records")
+    for key in ("objective", "std_pnl", "cvar_95", "mean_cost"):
+        shown = money_formatter([row[key] for row in records])
+        for row in records:
+            assert shown(row[key]) in text, key
