@@ -221,7 +221,7 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
     fixed = cfg.market.model == "historical"
     _print_table(
         f"{cfg.name}: {heldout_text(n_paths, cfg.data.heldout_paths, seed, fixed)}; ranked by objective, higher "
-        "is better; money in currency units, costs per path" + (", turnover in notionals" if wide else ""),
+        f"is better; money in {cfg.currency}, costs per path" + (", turnover in notionals" if wide else ""),
         records, wide,
     )
     for caution in (tail_caution(n_paths), ce_caution(records)):
@@ -447,7 +447,7 @@ def quote(
                "caution": CAUTION}
         sys.stdout.write(json.dumps(out, indent=2) + "\n")
         return
-    console.print(f"{cfg.name}: premiums in currency for the whole book, {n_paths:,} held-out paths; Black-Scholes "
+    console.print(f"{cfg.name}: premiums in {cfg.currency} for the whole book, {n_paths:,} held-out paths; Black-Scholes "
                   f"mark {format_money(rows[0]['mark'])}; book vega {format_money(rows[0]['vega_per_vol_point'])} "
                   "per volatility point", highlight=False)
     _print_quote_table(rows)

@@ -81,33 +81,33 @@ class MetricColumn:
         return money_formatter(values) if self.format is format_money else self.format
 
 
-def metric_columns(record: dict) -> list[MetricColumn]:
+def metric_columns(record: dict, currency: str = "currency") -> list[MetricColumn]:
     """The metric columns of a held-out record, in display order, for the keys it has: objective,
     P&L, every VaR and CVaR level (ascending, VaR first), entropic risk, costs, turnover, trades and,
     when quoted, the bid and ask."""
     levels = sorted({k.split("_")[1] for k in record if re.fullmatch(r"c?var_[0-9.]+", k)}, key=float)
     columns = [
-        MetricColumn("objective", "objective", "objective (currency)", format_money),
-        MetricColumn("mean_pnl", "mean P&L", "mean P&L (currency)", format_money),
-        MetricColumn("std_pnl", "std P&L", "std P&L (currency)", format_money),
+        MetricColumn("objective", "objective", f"objective ({currency}, higher is better)", format_money),
+        MetricColumn("mean_pnl", "mean P&L", f"mean P&L ({currency})", format_money),
+        MetricColumn("std_pnl", "std P&L", f"std P&L ({currency})", format_money),
     ]
     for level in levels:
-        columns.append(MetricColumn(f"var_{level}", f"VaR {level}", f"VaR {level} (currency, loss)",
+        columns.append(MetricColumn(f"var_{level}", f"VaR {level}", f"VaR {level} ({currency}, loss)",
                                     format_money, on_terminal=False))
-        columns.append(MetricColumn(f"cvar_{level}", f"CVaR {level}", f"CVaR {level} (currency, loss)",
+        columns.append(MetricColumn(f"cvar_{level}", f"CVaR {level}", f"CVaR {level} ({currency}, loss)",
                                     format_money))
     columns += [
         MetricColumn("ce_effective_paths", "CE paths", "certainty equivalent's effective paths (of all held out)",
                      format_count),
-        MetricColumn("entropic_risk", "entropic", "entropic risk (currency, loss)", format_money,
+        MetricColumn("entropic_risk", "entropic", f"entropic risk ({currency}, loss)", format_money,
                      on_terminal=False),
-        MetricColumn("mean_cost", "cost", "mean cost (currency per path)", format_money),
-        MetricColumn("mean_impact", "impact", "mean impact (currency per path)", format_money),
+        MetricColumn("mean_cost", "cost", f"mean cost ({currency} per path)", format_money),
+        MetricColumn("mean_impact", "impact", f"mean impact ({currency} per path)", format_money),
         MetricColumn("turnover", "turnover", "turnover (shares traded per share of notional)", format_count,
                      on_terminal=False),
         MetricColumn("trades", "trades", "trades (per path)", format_count),
-        MetricColumn("quote_bid", "bid", "bid (currency)", format_money, on_terminal=False),
-        MetricColumn("quote_ask", "ask", "ask (currency)", format_money, on_terminal=False),
+        MetricColumn("quote_bid", "bid", f"bid ({currency})", format_money, on_terminal=False),
+        MetricColumn("quote_ask", "ask", f"ask ({currency})", format_money, on_terminal=False),
         MetricColumn("spread_bid_vol_points", "bid spread (vol pts)", "bid spread (vol points)", format_count,
                      on_terminal=False),
         MetricColumn("spread_ask_vol_points", "ask spread (vol pts)", "ask spread (vol points)", format_count,

@@ -788,6 +788,8 @@ class Config(_Spec):
     name: PolicyName = Field(description="Scenario name, used in run folder names.")
     seed: int = Field(ge=0, le=SEED_MAX, description="Master seed; data seeds derive from it unless given.")
     description: str = Field("", description="Free text about the scenario.")
+    currency: str = Field("currency units", min_length=1, max_length=32,
+                          description="The money unit every screen, report and hedge table names (e.g. \"EUR\").")
     market: MarketSpec = Field(description="Model of the underlying.")
     book: BookSpec = Field(description="Options to hedge.")
     pricing: PricingSpec = Field(default_factory=PricingSpec, description="Marking and Greeks.")

@@ -219,12 +219,12 @@ def _summary_table(records: list[dict], columns, versus_of=None) -> str:
     return f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>'
 
 
-def _versus_cells(reference: str, label: str):
+def _versus_cells(reference: str, label: str, currency: str = "currency"):
     """Headers (for None) or cells of a record's difference from ``reference`` (named ``label``)."""
 
     def cells(record: dict | None) -> list[str]:
         if record is None:
-            return [f"vs {label}: mean (currency)", "95% CI (currency)", "verdict"]
+            return [f"vs {label}: mean ({currency})", f"95% CI ({currency})", "verdict"]
         versus = record.get("vs_reference")
         if versus is None:
             return ['<td class="num">n/a</td>'] * 2 + ["<td></td>"]
@@ -244,7 +244,7 @@ def _versus_cells(reference: str, label: str):
 def _summary_html(scored: Scored) -> str:
     records = scored.records
     reference = scored.metrics.get("reference_policy")
-    columns = metric_columns(records[0])
+    columns = metric_columns(records[0], scored.run.config.currency)
     has_versus = any("vs_reference" in r for r in records)
     reference_label = policy_label(reference, next((r.get("kind", "") for r in records if r["name"] == reference), ""))
     note = ("Ranked by objective (higher is better), in the same order in every table. Every number is from "
@@ -273,7 +273,8 @@ def _summary_html(scored: Scored) -> str:
         chosen = [c for c in columns if c.key.startswith(prefixes)]
         if not chosen:
             continue
-        versus = _versus_cells(reference, reference_label) if has_versus and title == "Ranking" else None
+        versus = (_versus_cells(reference, reference_label, scored.run.config.currency)
+                  if has_versus and title == "Ranking" else None)
         parts.append(f"<h3>{_e(title)}</h3>{_summary_table(records, chosen, versus)}")
     return "".join(parts)
 

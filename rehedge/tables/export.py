@@ -532,5 +532,5 @@ def export_policy(config, problem, policies: dict, name: str, folder: str | Path
                            min(STATE_RANGE_PATHS, config.data.train_paths)))
     return export_table(policies[name], problem, folder, grid=grid_of(config.export), kind=kinds.get(name, ""),
                         config_name=config.name, config_hash=config_hash(config),
-                        currency=config.export.currency, volatility=config.pricing.volatility, state_range=bounds,
+                        currency=config.export.currency or config.currency, volatility=config.pricing.volatility, state_range=bounds,
                         training_range=seen, lot_shares=config.frictions.lot_size)

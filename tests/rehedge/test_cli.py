@@ -245,7 +245,7 @@ def test_quote_screen_gives_units_the_books_vega_what_bid_and_ask_mean_and_no_qu
     done = rehedge("quote", str(config), "--quiet")
     assert done.returncode == 0, done.stderr
     text = " ".join(done.stdout.split())
-    assert "premiums in currency for the whole book" in text and "per volatility point" in text
+    assert "premiums in currency units for the whole book" in text and "per volatility point" in text
     assert "ask: the premium to receive for selling this book as configured" in text  # a short call
     (row,) = [line for line in done.stdout.splitlines() if line.strip().startswith("no_hedge")]
     assert row.split()[1:] == ["*", "-", "-", "-", "-", "-"]

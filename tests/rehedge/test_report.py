@@ -346,3 +346,14 @@ def test_browser_check_catches_a_wide_table_and_a_broken_image(chromium, tmp_pat
     seen = browser.layout(page, 1400)
     assert seen["document_width"] > 1400 and seen["tables"][0]["right"] > 1400
     assert seen["images"][0]["natural_width"] == 0
+
+
+def test_the_config_currency_names_every_money_header():
+    # A `currency` key (default "currency units") appears in every money header.
+    from rehedge.formats import metric_columns as columns_of
+
+    record = {"objective": 1.0, "mean_pnl": 1.0, "std_pnl": 1.0, "var_95": 1.0, "cvar_95": 1.0, "entropic_risk": 1.0,
+              "mean_cost": 1.0, "mean_impact": 1.0, "quote_bid": 1.0, "quote_ask": 1.0, "turnover": 1.0}
+    money = [c for c in columns_of(record, "EUR") if c.format is format_money]
+    assert money and all("EUR" in c.long for c in money)
+    assert "higher is better" in next(c.long for c in money if c.key == "objective")
