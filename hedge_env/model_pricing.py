@@ -356,6 +356,7 @@ PRICE_TOLERANCE = 1e-6
 DELTA_TOLERANCE = 1e-4
 _CHECK_SHARE = 0.25
 
+
 @lru_cache(maxsize=16)
 def _chirp_transforms(columns: int) -> tuple[CZT, CZT]:
     """Sums ``sum_k f_k e^{i t_k z}`` over ``columns`` t nodes (``t_k = k _T_STEP``) at the z nodes

@@ -508,27 +508,19 @@ def export(
 def _check_table(run, policies: dict, name: str, folder: Path, paths: int) -> None:
     """The exported table beside its source and the run's baselines on held-out paths: paired
     differences from the table, and a warning when a baseline scores above it."""
-    from rehedge.compare import evaluate_policies
-    from rehedge.tables.reader import tables_as_policies
+    from rehedge.compare import table_beside_sources
 
-    loaded, _ = tables_as_policies([folder], run.problem)
-    (table_name, table), = loaded.items()
-    compared = {table_name: table, name: policies[name], **{b: p for b, p in run.baselines.items() if b != name}}
     n_paths, seed = _heldout(run.config, run.heldout_market, paths, None)
-    evaluation = evaluate_policies(run.problem, compared, run.heldout_market, n_paths, seed, reference=table_name,
-                                   chunk_paths=run.config.data.chunk_paths,
-                                   bootstrap_samples=run.config.report.bootstrap_samples)
-    records = {r["name"]: r for r in evaluation.to_records()}
+    table_name, records, winners = table_beside_sources(run, policies, name, folder, n_paths, seed)
     console.print(f"the table on {n_paths:,} held-out paths (seed {seed}): objective "
                   f"{format_money(records[table_name]['objective'])} (higher is better); difference from it, "
                   "paired, bootstrap 95% CI:", highlight=False)
     for other, record in records.items():
-        if other == table_name:
-            continue
-        v = record["vs_reference"]
-        role = "its source" if other == name else "baseline"
-        console.print(f"  {other:<18} {format_interval(v['mean'], v['ci_low'], v['ci_high'])}  ({role})", highlight=False)
-    winners = [b for b in run.baselines if b != name and records[b]["objective"] > records[table_name]["objective"]]
+        if other != table_name:
+            v = record["vs_reference"]
+            role = "its source" if other == name else "baseline"
+            console.print(f"  {other:<18} {format_interval(v['mean'], v['ci_low'], v['ci_high'])}  ({role})",
+                          highlight=False)
     if winners:
         errors.print(f"warning: {', '.join(winners)} scores above the table on these paths: the table loses its "
                      "source's rank (a finer export grid may keep it)", markup=False, highlight=False)

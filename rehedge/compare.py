@@ -289,3 +289,20 @@ def evaluate_with_quotes(problem, policies, source, n_paths, seed, **options) ->
         state0 = float(first.factors[problem.mark_factor][0, 0])
     evaluation.quotes = quotes(problem, evaluation, opposite, state0)
     return evaluation
+
+
+def table_beside_sources(run, policies: dict, name: str, folder, n_paths: int, seed: int):
+    """An exported hedge table (``folder``) scored on ``n_paths`` held-out paths of ``run`` beside its
+    source policy ``name`` and the run's baselines: the table's policy name, the records by name
+    (each with its paired difference from the table) and the baselines that score above it."""
+    from rehedge.tables.reader import tables_as_policies
+
+    loaded, _ = tables_as_policies([folder], run.problem)
+    (table_name, table), = loaded.items()
+    compared = {table_name: table, name: policies[name], **{b: p for b, p in run.baselines.items() if b != name}}
+    evaluation = evaluate_policies(run.problem, compared, run.heldout_market, n_paths, seed, reference=table_name,
+                                   chunk_paths=run.config.data.chunk_paths,
+                                   bootstrap_samples=run.config.report.bootstrap_samples)
+    records = {r["name"]: r for r in evaluation.to_records()}
+    winners = [b for b in run.baselines if b != name and records[b]["objective"] > records[table_name]["objective"]]
+    return table_name, records, winners
