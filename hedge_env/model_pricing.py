@@ -307,14 +307,10 @@ class HestonTable:
     trusted: np.ndarray  # (y nodes, z nodes) bool: cell [s0, z0] (by its lower-left node) within tolerance
     tails: np.ndarray  # (2, y nodes) bool: beyond the z range below / above, Black-Scholes is within tolerance
 
-    @property
-    def z_step(self) -> float:
-        return 2.0 * TABLE_Z / (TABLE_Z_POINTS - 1)
-
     def coordinates(self, x: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Grid coordinates (fractional z and y node indices, y counted from the row below 0)."""
         z = x / np.sqrt(self.pricer.mean_variance(v, self.tau) * self.tau)
-        return (z + TABLE_Z) / self.z_step, np.sqrt(np.sqrt(v)) / self.y_step + 1.0
+        return (z + TABLE_Z) / _Z_STEP, np.sqrt(np.sqrt(v)) / self.y_step + 1.0
 
     def lookup(self, x: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         shape = np.shape(x)

@@ -472,11 +472,11 @@ RANGE_STATE_MARGIN = 0.1
 def training_range(policy, problem, source, state: str | None, seed: int = 0,
                    exploration: Exploration = Exploration(), n_paths: int = STATE_RANGE_PATHS) -> dict:
     """Per decision time, the range of each table axis over ``n_paths`` paths of the training market
-    ``source`` (a history's windows: as many as it has; the run takes its training path count, at most
-    ``STATE_RANGE_PATHS``), both as the learned agents' training data visits them (``exploration``, the
-    behaviour policy) and as the policy itself hedges them,
-    widened by the margins above: the states a learned policy was fitted on and every policy was
-    scored on. A state outside it is advice off the map (``rehedge advise`` says so)."""
+    ``source`` (a history's windows: as many as it has; a run takes its training path count, at most
+    ``STATE_RANGE_PATHS``), as the learned agents' training data visits them (``exploration``, the
+    behaviour policy) and as the policy itself hedges them, widened by the margins above: the states a
+    learned policy was fitted on and every policy was scored on. A state outside it is advice off the
+    map (``rehedge advise`` says so)."""
     n_paths = n_paths if source.max_paths is None else min(n_paths, source.max_paths)
     recorder = RowRecorder(policy)
     rollout(problem, recorder, source, n_paths, seed)

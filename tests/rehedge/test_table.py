@@ -428,7 +428,7 @@ def test_advice_rounds_the_trade_to_lots_and_shows_the_delta_hedge_and_the_trade
     expected = frictions.trading_cost(abs(trade), 101.0) + frictions.impact_cost(abs(trade), 101.0)
     assert out["trade_cost"] == pytest.approx(expected, rel=1e-12)
     text = runner.invoke(app, ["advise", str(folder), "--spot", "101", "--days-left", "6", "--holding", "0"])
-    assert f"lots of 100" in text.stdout and "delta hedge" in text.stdout and "its cost" in text.stdout
+    assert "lots of 100" in text.stdout and "delta hedge" in text.stdout and "its cost" in text.stdout
 
 
 def test_the_readers_cost_and_delta_are_the_steps_over_random_draws():
