@@ -91,20 +91,20 @@ def metric_columns(record: dict, currency: str = "currency") -> list[MetricColum
         MetricColumn("mean_pnl", "mean P&L", f"mean P&L ({currency})", format_money),
         MetricColumn("std_pnl", "std P&L", f"std P&L ({currency})", format_money),
     ]
+
+    def tail(key: str, short: str, long: str, on_terminal: bool = False) -> list[MetricColumn]:
+        """A tail figure and its bootstrap interval's bounds (shown with --wide and in the report)."""
+        return [MetricColumn(key, short, f"{long} ({currency}, loss)", format_money, on_terminal),
+                *(MetricColumn(f"{key}_ci_{end}", f"{short} 95% {end}", f"{long}, 95% interval {end} ({currency})",
+                               format_money, on_terminal=False) for end in ("low", "high"))]
+
     for level in levels:
-        columns.append(MetricColumn(f"var_{level}", f"VaR {level}", f"VaR {level} ({currency}, loss)",
-                                    format_money, on_terminal=False))
-        columns.append(MetricColumn(f"cvar_{level}", f"CVaR {level}", f"CVaR {level} ({currency}, loss)",
-                                    format_money))
+        columns += tail(f"var_{level}", f"VaR {level}", f"VaR {level}")
+        columns += tail(f"cvar_{level}", f"CVaR {level}", f"CVaR {level}", on_terminal=True)
+    columns.append(MetricColumn("ce_effective_paths", "CE paths",
+                                "certainty equivalent's effective paths (of all held out)", format_count))
+    columns += tail("entropic_risk", "entropic", "entropic risk")
     columns += [
-        MetricColumn("ce_effective_paths", "CE paths", "certainty equivalent's effective paths (of all held out)",
-                     format_count),
-        MetricColumn("entropic_risk", "entropic", f"entropic risk ({currency}, loss)", format_money,
-                     on_terminal=False),
-        MetricColumn("entropic_risk_ci_low", "entropic 95% low", f"entropic risk, 95% interval low ({currency})",
-                     format_money, on_terminal=False),
-        MetricColumn("entropic_risk_ci_high", "entropic 95% high", f"entropic risk, 95% interval high ({currency})",
-                     format_money, on_terminal=False),
         MetricColumn("mean_cost", "cost", f"mean cost ({currency} per path)", format_money),
         MetricColumn("mean_impact", "impact", f"mean impact ({currency} per path)", format_money),
         MetricColumn("turnover", "turnover", "turnover (shares traded per share of notional)", format_count,

@@ -200,20 +200,39 @@ _SUMMARY_TABLES = (
 
 def _summary_table(records: list[dict], columns, versus_of=None) -> str:
     """One table of the summary: rank, policy and ``columns`` (with the difference from the
-    reference after the first column when ``versus_of`` makes its cells)."""
+    reference after the first column when ``versus_of`` makes its cells). A ``*_ci_low`` column and
+    the ``*_ci_high`` after it share one cell, the interval."""
     headers = ["#", "policy", columns[0].long]
     if versus_of is not None:
         headers += versus_of(None)
-    headers += [column.long for column in columns[1:]]
+    groups = []  # each a column, or the low and high of an interval
+    for column in columns[1:]:
+        if column.key.endswith("_ci_high") and groups and groups[-1][0].key.endswith("_ci_low"):
+            groups[-1].append(column)
+        else:
+            groups.append([column])
+    headers += [group[0].long if len(group) == 1 else group[0].long.replace(" low", "") for group in groups]
+    shown = {}
+    for group in [[columns[0]], *groups]:
+        formatter = group[0].formatter([r[column.key] for r in records for column in group])
+        shown.update(dict.fromkeys((column.key for column in group), formatter))
+
+    def cell(group, record) -> str:
+        if len(group) == 1:
+            return _cell(group[0].key, record[group[0].key], shown[group[0].key])
+        low, high = (record[column.key] for column in group)
+        key = group[0].key.removesuffix("_low")
+        return (f'<td class="num" data-key="{_e(key)}" data-value="{_e(repr(low))} {_e(repr(high))}">'
+                f"[{_e(shown[group[0].key](low))}, {_e(shown[group[0].key](high))}]</td>")
+
     rows = []
-    shown = {column.key: column.formatter([r[column.key] for r in records]) for column in columns}
     for rank, record in enumerate(records, start=1):
         cells = [f'<td class="num">{rank}</td>',
                  f'<td data-key="name">{_e(policy_label(record["name"], record.get("kind", "")))}</td>',
-                 _cell(columns[0].key, record[columns[0].key], shown[columns[0].key])]
+                 cell([columns[0]], record)]
         if versus_of is not None:
             cells += versus_of(record)
-        cells += [_cell(column.key, record[column.key], shown[column.key]) for column in columns[1:]]
+        cells += [cell(group, record) for group in groups]
         rows.append(f'<tr data-policy="{_e(record["name"])}">{"".join(cells)}</tr>')
     head = "".join(f"<th>{_e(h)}</th>" for h in headers)
     return f'<table class="summary"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>'

@@ -235,25 +235,55 @@ def test_a_certainty_equivalent_on_too_few_effective_paths_is_flagged_where_its_
         assert abs(coverage - 0.95) <= tolerance and flagged == 0, (coverage, flagged)
 
 
-def test_entropic_risk_comes_with_a_bootstrap_interval_that_covers_its_known_value():
-    # A tail figure moves with the paths (entropic risk moved from 1,947 to 3,011 between 50,000 and
-    # 200,000 paths): it now has a percentile bootstrap interval. Normal P&L N(mu, s^2) has entropic
-    # risk -mu + theta s^2 / 2 (the normal's moment generating function; common practice, no source).
+def _normal_result(pnl, theta):
     from hedge_env.objective import Objective
     from hedge_env.rollout import HedgeResult
-    from rehedge.compare import entropic_risk_intervals
+
+    zeros = np.zeros_like(pnl)
+    return HedgeResult("p", Objective(risk_aversion=theta, var_levels=(0.95, 0.99)), 1.0, pnl=pnl, reward=zeros,
+                       trading_cost=zeros, impact_cost=zeros, financing=zeros, traded_shares=zeros, trades=zeros,
+                       hedge_gain=zeros, book_change=zeros, step_cost=np.zeros(1))
+
+
+def test_tail_figures_come_with_bootstrap_intervals_that_cover_their_known_values():
+    # A tail figure moves with the paths (entropic risk moved from 1,947 to 3,011 between 50,000 and
+    # 200,000 paths): each has a percentile bootstrap interval. Normal P&L N(mu, s^2) has entropic
+    # risk -mu + theta s^2 / 2 (the normal's moment generating function), VaR -mu - s z and CVaR
+    # -mu + s phi(z) / (1 - level) with z the (1 - level) quantile (common practice, no source).
+    from scipy.stats import norm
+
+    from rehedge.compare import tail_intervals
 
     theta, mu, s = 0.5, 0.2, 1.0
-    known = -mu + theta * s * s / 2
+    z = {tag: norm.ppf(1 - level) for tag, level in (("95", 0.95), ("99", 0.99))}
+    known = {"entropic_risk": -mu + theta * s * s / 2}
+    for tag, level in (("95", 0.95), ("99", 0.99)):
+        known[f"var_{tag}"] = -mu - s * z[tag]
+        known[f"cvar_{tag}"] = -mu + s * norm.pdf(z[tag]) / (1 - level)
     rng = np.random.default_rng(13)
-    covered, trials = 0, 200
+    covered, trials = dict.fromkeys(known, 0), 200
     for t in range(trials):
-        pnl = mu + s * rng.standard_normal(2000)
-        zeros = np.zeros_like(pnl)
-        result = HedgeResult("p", Objective(risk_aversion=theta), 1.0, pnl=pnl, reward=zeros, trading_cost=zeros,
-                             impact_cost=zeros, financing=zeros, traded_shares=zeros, trades=zeros,
-                             hedge_gain=zeros, book_change=zeros, step_cost=np.zeros(1))
-        ci = entropic_risk_intervals({"p": result}, samples=400, seed=t, batches=250)["p"]
-        covered += ci["ci_low"] <= known <= ci["ci_high"]
+        result = _normal_result(mu + s * rng.standard_normal(4000), theta)
+        ci = tail_intervals({"p": result}, samples=400, seed=t, batches=250)["p"]
+        for key, value in known.items():
+            covered[key] += ci[f"{key}_ci_low"] <= value <= ci[f"{key}_ci_high"]
     tolerance = 3 * math.sqrt(0.95 * 0.05 / trials)
-    assert abs(covered / trials - 0.95) <= tolerance + 0.015  # the percentile method's small-sample undercoverage
+    for key, count in covered.items():  # + 0.015: the percentile method's small-sample undercoverage
+        assert abs(count / trials - 0.95) <= tolerance + 0.015, (key, count / trials)
+
+
+def test_a_resample_that_draws_every_batch_once_gives_the_point_estimates():
+    # The weighted tail read on a resample is the same estimator as the point figures (Acerbi-Tasche
+    # CVaR with its fractional last atom, the lower-quantile VaR), not a second formula.
+    from hedge_env.objective import conditional_value_at_risk, value_at_risk
+    from rehedge.compare import resample_batches, resampled_tails
+
+    pnl = np.random.default_rng(5).standard_t(3, size=1003)
+    starts, _, _ = resample_batches(pnl.size, 1, 0, 100)
+    identity = (starts, np.arange(starts.size)[None, :], np.array([pnl.size]))
+    shuffled = np.random.default_rng(6).permutation(starts.size)[None, :]
+    for draws in (identity[1], shuffled):
+        for level in (0.9, 0.95, 0.99, 0.999):
+            var, cvar = resampled_tails(pnl, level, (starts, draws, identity[2]))
+            assert var[0] == value_at_risk(pnl, level)
+            assert cvar[0] == pytest.approx(conditional_value_at_risk(pnl, level), rel=1e-13)
