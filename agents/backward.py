@@ -67,14 +67,34 @@ ROW_BLOCK = 1024
 def candidate_targets(state: StateFeatures, band_widths, partial_moves, limit: float, move: float = 1.0) -> np.ndarray:
     """(n, C) candidate targets per share of notional: no trade, hedge, band edges
     (``band_widths`` x ``move``), partial moves."""
-    h, hedge = state.holding[:, None], state.hedge[:, None]
+    tied = holding_candidates(state, partial_moves, limit)
+    return np.concatenate([tied[:, :1], hedge_candidates(state, band_widths, limit, move), tied[:, 1:]], axis=1)
+
+
+def hedge_candidates(state: StateFeatures, band_widths, limit: float, move: float = 1.0) -> np.ndarray:
+    """The candidates of :func:`candidate_targets` that do not depend on the holding: the hedge and
+    the band edges, (n, 1 + 2 W)."""
+    hedge = state.hedge[:, None]
     widths = np.asarray(band_widths, dtype=float) * move
+    return _clipped(np.concatenate([hedge, hedge - widths, hedge + widths], axis=1), limit)
+
+
+def holding_candidates(state: StateFeatures, partial_moves, limit: float) -> np.ndarray:
+    """The candidates of :func:`candidate_targets` that depend on the holding: no trade and the
+    partial moves toward the hedge, (n, 1 + P)."""
+    h, hedge = state.holding[:, None], state.hedge[:, None]
     moves = np.asarray(partial_moves, dtype=float)
-    columns = [h, hedge, hedge - widths, hedge + widths, h + moves * (hedge - h)]
-    targets = np.concatenate(columns, axis=1)
+    return _clipped(np.concatenate([h, h + moves * (hedge - h)], axis=1), limit)
+
+
+def _clipped(targets: np.ndarray, limit: float) -> np.ndarray:
     if math.isfinite(limit):  # no limit, no pass
         np.clip(targets, -limit, limit, out=targets)
     return targets
+
+
+# Features that read the holding (the rest of a basis reads the state's market part and the target).
+HOLDING_FEATURES = frozenset({"holding", "trade", "abs_trade"})
 
 
 def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarray,
@@ -303,7 +323,7 @@ class BackwardQAgent(BaseEstimator):
             y = y - targets * (notional * move_surprise)
             y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise
         if not chunk.done(k):
-            y = y + self.value(chunk.next_observations(k, next_moneyness), k + 1).reshape(y.shape)
+            y = y + self._next_values(chunk, k, next_moneyness)
         if problem.objective.exponential:
             spot = state.spot[:, None]
             return X, np.stack(np.broadcast_arrays(y, hedge_surprise, square_gap_surprise, move_surprise / spot,
@@ -369,6 +389,40 @@ class BackwardQAgent(BaseEstimator):
             targets_out[rows] = targets[pick, best]
             values_out[rows] = q[pick, best]
         return targets_out, values_out
+
+    def _next_values(self, chunk: Transitions, k: int, next_moneyness: np.ndarray | None) -> np.ndarray:
+        """max_a Q_{k+1} at the next state of each tried target of step k, (n, M). Without impact the
+        M next states of a state differ only in the holding, so a fit that ignores the holding
+        predicts its holding-free candidates once per state (:meth:`value_at_holdings`)."""
+        if next_moneyness is None and not self._reads_holding():
+            return self.value_at_holdings(chunk.next_obs[k], chunk.next_holding[k], k + 1)
+        return self.value(chunk.next_observations(k, next_moneyness), k + 1).reshape(chunk.next_holding[k].shape)
+
+    def _reads_holding(self) -> bool:
+        """Whether any fitted term reads the holding (``HOLDING_FEATURES``)."""
+        return any(factor.partition("^")[0] in HOLDING_FEATURES
+                   for term in self._fitted_terms() for factor in term.split("*"))
+
+    def value_at_holdings(self, obs: np.ndarray, holdings: np.ndarray, k: int) -> np.ndarray:
+        """:meth:`value` of each row of ``obs`` (n,) at each of its ``holdings`` (n, M), the same
+        numbers to the bit, for a fit whose terms ignore the holding: the state's features and the
+        predictions of :func:`hedge_candidates` are computed once per row, and only the trade's known
+        part and the :func:`holding_candidates` once per holding."""
+        problem, limit = self.problem, self._limit()
+        growth = problem.horizon_growth(k)
+        features = state_features(problem, np.asarray(obs, dtype=float), self.factor_names, self.anchor)
+        values = np.empty(holdings.shape)
+        for start in range(0, len(obs), ROW_BLOCK):
+            rows = slice(start, start + ROW_BLOCK)
+            state = features.rows(rows)
+            free = hedge_candidates(state, self.band_widths, limit, self.move_)
+            free_predicted = self._predict(k, state, free)
+            for j in range(holdings.shape[1]):
+                held = state.with_holding(holdings[rows, j], problem.notional_shares)
+                tied = holding_candidates(held, self.partial_moves, limit)
+                best_free = (self._known(held, free, growth) + free_predicted).max(axis=1)
+                values[rows, j] = np.maximum(best_free, self._q(k, held, tied).max(axis=1))
+        return values
 
     def value(self, obs: np.ndarray, k: int) -> np.ndarray:
         """max_a Q_k(s, a) of rows at decision time k (up to a function of the state alone when

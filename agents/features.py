@@ -130,6 +130,11 @@ class StateFeatures:
     def __len__(self) -> int:
         return self.spot.shape[0]
 
+    def with_holding(self, holding: np.ndarray, notional_shares: float) -> StateFeatures:
+        """The same states at another holding (per share of notional), as their observations with
+        that holding would give (agents.policy.decode)."""
+        return StateFeatures({**self.values, "holding": holding}, self.spot, holding * notional_shares)
+
     def rows(self, selection: slice) -> StateFeatures:
         """The features of a block of rows (views, no copies)."""
         return StateFeatures({name: value[selection] for name, value in self.values.items()},

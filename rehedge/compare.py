@@ -128,7 +128,10 @@ def resampled_tails(pnl: np.ndarray, level: float, resamples, chunk: int = 256) 
     tail = (1.0 - level) * counts
     needed = np.minimum(np.maximum(np.ceil(np.round(tail, 9)), 1.0), counts)  # the VaR's rank on each resample
     var, cvar = np.empty(samples), np.empty(samples)
-    read = min(n, 2 * int(np.ceil((1.0 - level) * n)) + 64)
+    # The worst paths a resample's tail is likely to reach: the tail's count, plus 8 standard deviations
+    # of a resample's weight on them (a batch drawn Poisson(1) times carries n / groups paths).
+    expected = (1.0 - level) * n
+    read = min(n, int(expected + 8.0 * math.sqrt(expected * (1.0 + expected / groups))) + 64)
     for first in range(0, samples, chunk):
         rows = slice(first, first + chunk)
         while True:

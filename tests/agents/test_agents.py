@@ -239,6 +239,30 @@ def test_linear_agent_fitted_from_streamed_chunks_has_the_coefficients_of_the_co
     assert np.array_equal(streamed.act(batch), concatenated.act(batch))
 
 
+@pytest.mark.parametrize("kind", AGENTS)
+@pytest.mark.parametrize("exponential", [False, True], ids=["mean_variance", "exponential"])
+def test_next_values_shared_across_holdings_are_the_tiled_values_to_the_bit(kind, exponential):
+    # The fit's next-state values read the holding-free candidates once per state (agents.backward,
+    # value_at_holdings); they must be the greedy values of the next states repeated per tried target
+    # (Transitions.next_observations), to the bit, so that a fit and a run's metrics do not move. A
+    # position limit clips candidates on both routes.
+    from hedge_env.objective import Objective
+
+    problem, market = reference(0.001)
+    problem = replace(problem, frictions=replace(problem.frictions, position_limit_shares=0.9 * problem.notional_shares))
+    if exponential:
+        problem = replace(problem, objective=Objective(kind="exponential", risk_aversion=1e-3))
+    data = small_data(problem, market)
+    agent = AGENTS[kind](problem).fit(data)
+    assert not agent._reads_holding()
+    for k in (0, 11, problem.schedule.steps - 2):
+        tiled = agent.value(data.next_observations(k), k + 1).reshape(data.next_holding[k].shape)
+        shared = agent.value_at_holdings(data.next_obs[k], data.next_holding[k], k + 1)
+        assert np.array_equal(shared, tiled), k
+    # A basis that reads the holding takes the tiled route.
+    assert AGENTS[kind](problem, basis=("gap^2", "abs_trade")).fit(data)._reads_holding()
+
+
 # --- persistence and scikit-learn conventions ----------------------------------------------------
 
 

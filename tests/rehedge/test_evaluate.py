@@ -287,3 +287,12 @@ def test_a_resample_that_draws_every_batch_once_gives_the_point_estimates():
             var, cvar = resampled_tails(pnl, level, (starts, draws, identity[2]))
             assert var[0] == value_at_risk(pnl, level)
             assert cvar[0] == pytest.approx(conditional_value_at_risk(pnl, level), rel=1e-13)
+    # A resample of the best batch alone: its tail lies among the best paths, past the worst ones read first.
+    sizes = np.diff(np.append(starts, pnl.size))
+    best = int(np.argmax(np.add.reduceat(pnl, starts) / sizes))
+    batch = pnl[starts[best]:starts[best] + sizes[best]]
+    only_best = (starts, np.full((1, starts.size), best), np.array([starts.size * batch.size]))
+    repeated = np.tile(batch, starts.size)
+    var, cvar = resampled_tails(pnl, 0.95, only_best)
+    assert var[0] == value_at_risk(repeated, 0.95)
+    assert cvar[0] == pytest.approx(conditional_value_at_risk(repeated, 0.95), rel=1e-12)
