@@ -9,6 +9,7 @@ import io
 import json
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import matplotlib
@@ -58,9 +59,9 @@ STYLE = {
 
 _DPI = 100
 # A policy whose central P&L range is this many times the median range is left off the P&L and
-# frontier plots (typically no_hedge): it would flatten every other policy into one spike.
+# frontier plots (typically no_hedge): it would flatten every other policy.
 _OUTLIER_SPREAD = 2.0
-# Central quantiles the P&L plot shows.
+# Central quantiles whose range measures a policy's P&L spread (_wide_policies).
 _CLIP = (0.005, 0.995)
 _MAP_SPOTS = 61
 # Gaps from the hedge searched for an agent's no-trade region, per share of notional.
@@ -88,8 +89,36 @@ def _figure(width: float, height: float, rows: int = 1, cols: int = 1, **subplot
 
 
 def _legend_below(figure: Figure, handles, labels, columns: int = 8) -> None:
-    """The figure's legend under its axes, so it never hides a line."""
-    figure.legend(handles, labels, loc="outside lower center", ncols=min(columns, len(handles)))
+    """The figure's legend under its axes, so it never hides a line, in as many columns (up to
+    ``columns``) as fit the figure's width: a legend wider than its figure is cut in the PNG."""
+    renderer = figure.canvas.get_renderer()
+    for ncols in range(min(columns, len(handles)), 0, -1):
+        legend = figure.legend(handles, labels, loc="outside lower center", ncols=ncols)
+        box = legend.get_window_extent(renderer)
+        if box.width <= 0.98 * figure.bbox.width or ncols == 1:
+            break
+        legend.remove()
+    # The figure's height holds its axes and one row of legend; each further row adds its height.
+    rows = -(-len(handles) // ncols)
+    figure.set_figheight(figure.get_figheight() + (rows - 1) / rows * box.height / figure.dpi)
+
+
+def cut_parts(figure: Figure) -> list[str]:
+    """The parts of ``figure`` (each legend, each visible axes with its title, labels, tick labels
+    and texts) that the saved PNG would cut: once drawn, their box reaches outside the figure's.
+    Empty for a figure that shows everything."""
+    figure.canvas.draw()
+    renderer = figure.canvas.get_renderer()
+    bounds = figure.bbox
+    parts = [(f"legend {i + 1}", legend) for i, legend in enumerate(figure.legends)]
+    parts += [(f"axes {i + 1} ({ax.get_title(loc='left') or ax.get_ylabel()})", ax)
+              for i, ax in enumerate(figure.axes) if ax.get_visible()]
+    cut = []
+    for name, artist in parts:
+        box = artist.get_tightbbox(renderer)
+        if box.x0 < bounds.x0 - 0.5 or box.x1 > bounds.x1 + 0.5 or box.y0 < bounds.y0 - 0.5 or box.y1 > bounds.y1 + 0.5:
+            cut.append(name)
+    return cut
 
 
 def _png_data_uri(figure: Figure) -> str:
@@ -117,8 +146,9 @@ def _wide_policies(pnl: dict[str, np.ndarray]) -> list[str]:
 
 
 def pnl_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
-    """Small panels, one per policy on shared axes, each with the reference policy's outline: seven
-    overlaid histograms cannot be told apart, panels side by side can."""
+    """What separates the policies' P&L: left, each policy's per-path P&L minus the reference
+    policy's on the same paths (the paired difference the ranking's intervals rest on); right, the
+    left tail, the probability of a P&L at or below each level, on a log scale."""
     names = [r["name"] for r in scored.records]
     labels = labels_of(scored.records)
     pnl = {name: scored.heldout[f"pnl__{name}"] for name in names}
@@ -126,46 +156,47 @@ def pnl_figure(scored: Scored, colors: dict[str, str]) -> tuple[str, str]:
     shown = [name for name in names if name not in skipped]
     reference = scored.metrics.get("reference_policy")
     reference = reference if reference in shown else None
-    pooled = np.concatenate([pnl[name] for name in shown])
-    low, high = _central_range(pooled)
-    bins = np.linspace(low, high, 70)
-
-    def density(values: np.ndarray) -> np.ndarray:
-        # Density of all paths, so a policy with more paths outside the range sits lower.
-        counts, _ = np.histogram(values[(values >= low) & (values <= high)], bins=bins)
-        return counts / (values.size * np.diff(bins))
-
-    columns = min(4, len(shown))
-    rows = -(-len(shown) // columns)
-    figure, axes = _figure(10.5, 0.4 + 1.9 * rows, rows, columns, sharex=True, sharey=True)
-    outline = density(pnl[reference]) if reference is not None else None
-    for index, ax in enumerate(axes.flat):
-        if index >= len(shown):
-            ax.set_visible(False)
-            continue
-        name = shown[index]
-        ax.stairs(density(pnl[name]), bins, fill=True, color=colors[name], alpha=0.75, linewidth=0)
-        if outline is not None and name != reference:
-            ax.stairs(outline, bins, color="#33312c", linewidth=0.9)
-        mean = float(pnl[name].mean())
-        ax.axvline(mean, color="#33312c", linewidth=0.9, linestyle="--")
-        ax.axvline(0.0, color="#33312c", linewidth=0.6, linestyle=":")
-        ax.set_title(f"{names.index(name) + 1}. {labels[name]}", fontsize=8.5)
-        ax.text(0.98, 0.92, f"mean {mean:,.0f}\nstd {float(pnl[name].std()):,.0f}", transform=ax.transAxes,
-                ha="right", va="top", fontsize=7)
-        if index % columns == 0:
-            ax.set_ylabel("density")
-        if index >= len(shown) - columns:
-            ax.set_xlabel("P&L per path (currency)")
-        ax.tick_params(labelbottom=True)
-    ax = axes[0, 0]
-    ax.set_xlim(low, high)
     paths = pnl[names[0]].size
-    caption = (f"Histograms of the P&L of {paths:,} held-out paths per policy, one panel each in rank order, "
-               f"on the same axes, between the {100 * _CLIP[0]:g}% and {100 * _CLIP[1]:g}% quantiles of the "
-               "policies shown (pooled); dashed: the policy's mean, dotted: zero.")
+    figure, axes = _figure(10.5, 2.5 + 0.32 * len(shown), 1, 2, width_ratios=(1.0, 1.15))
+    ax = axes[0, 0]
     if reference is not None:
-        caption += f" The dark outline in each panel is {labels[reference]}, the reference policy."
+        rows = [name for name in shown if name != reference]
+        for row, name in enumerate(rows):
+            difference = pnl[name] - pnl[reference]
+            q05, q25, q50, q75, q95 = np.quantile(difference, (0.05, 0.25, 0.5, 0.75, 0.95))
+            ax.plot([q05, q95], [row, row], color=colors[name], linewidth=1.2, solid_capstyle="butt")
+            ax.plot([q25, q75], [row, row], color=colors[name], linewidth=5.0, solid_capstyle="butt")
+            ax.plot(q50, row, marker="|", markersize=9, color="white", markeredgewidth=1.5)
+            ax.plot(float(difference.mean()), row, marker="D", markersize=4.5, color="#33312c", linestyle="none")
+        ax.set_yticks(range(len(rows)), [f"{names.index(name) + 1}. {labels[name]}" for name in rows])
+        ax.set_ylim(len(rows) - 0.5, -0.5)
+        ax.axvline(0.0, color="#33312c", linewidth=0.8, linestyle=":")
+        ax.set_xlabel(f"P&L minus {labels[reference]}'s, per path (currency)")
+        ax.set_title(f"Paired difference from {labels[reference]}")
+    else:
+        ax.set_visible(False)
+    ax = axes[0, 1]
+    worst = 0.1  # the worst tenth of the paths
+    probability = np.arange(1, paths + 1) / paths
+    keep = probability <= worst
+    for name in shown:
+        ax.plot(np.sort(pnl[name])[keep], probability[keep], color=colors[name], linewidth=1.3,
+                label=f"{names.index(name) + 1}. {labels[name]}")
+    ax.set_yscale("log")
+    ax.set_ylim(1.0 / paths, worst)
+    ax.set_xlabel("P&L per path (currency)")
+    ax.set_ylabel("share of paths at or below")
+    ax.set_title("Left tail of the P&L")
+    _legend_below(figure, *ax.get_legend_handles_labels(), columns=4)
+    tail = ("the worst tenth of each policy's P&L, the share of paths at or below each P&L on a log scale "
+            "down to one path: lower and further right is a thinner left tail. Policies are numbered in rank order.")
+    if reference is None:
+        caption = f"The left tail of the {paths:,} held-out paths: {tail}"
+    else:
+        caption = (f"Left: each policy's P&L minus the reference policy's on the same {paths:,} held-out paths; "
+                   "the thin bar spans the 5% to 95% quantiles of the per-path difference, the thick one 25% to "
+                   "75%, the white tick is the median and the diamond the mean; right of the dotted zero the "
+                   f"policy did better on that path. Right: {tail}")
     if skipped:
         caption += (f" Not shown: {', '.join(labels[name] for name in skipped)} (its P&L spread is over "
                     f"{_OUTLIER_SPREAD:g} times the median policy's and would flatten the others; its numbers "
@@ -257,7 +288,8 @@ def map_figures(scored: Scored, sample_factors: dict[str, np.ndarray]) -> list[t
     out = []
     for name in learned:
         agent, label = run.agents[name], policy_label(name, kinds[name])
-        figure, axes = _figure(10.5, 5.6, 2, len(times), sharex="col", sharey="row")
+        # One spot axis for every panel, so the times compare; each panel's lines span its own time's spots.
+        figure, axes = _figure(10.5, 5.6, 2, len(times), sharex=True, sharey="row")
         departures = []
         for column, k in enumerate(times):
             # Spots where the paths are at this time (+-2.5 sd of log spot): off them an agent extrapolates.
@@ -293,8 +325,8 @@ def map_figures(scored: Scored, sample_factors: dict[str, np.ndarray]) -> list[t
               else "the mark volatility of the first held-out path at each time")
         caption = (f"{label}: target holding (shares) against spot when the current holding is the "
                    f"Black-Scholes hedge (minus the book's delta at {at}), over the spots within 2.5 standard "
-                   "deviations of log spot at each time (about 99% of paths); below, the same as gaps from the "
-                   f"hedge. The shaded region is where the agent does not trade (target equal to the holding "
+                   "deviations of log spot at each time (about 99% of paths), on one spot axis; below, the same "
+                   f"as gaps from the hedge. The shaded region is where the agent does not trade (target equal to the holding "
                    f"within {NO_TRADE_TOLERANCE:g} of the {problem.notional_shares:,.0f}-share notional): its "
                    f"edges are bracketed from {low:.3g} to {high:,.0f} shares either side of the hedge and placed "
                    "by bisection on the agent, as in the hedge tables.")
@@ -391,24 +423,70 @@ def _flatten(value, prefix: str = "") -> dict[str, object]:
     return {prefix[:-1]: value}
 
 
-def _order_variants(variants: list[tuple[Path, dict, dict]],
-                    swept: Sequence[str] = ()) -> tuple[list[tuple[Path, dict, dict]], list[str]]:
-    """Runs in the order of the settings that differ between them (the ``swept`` dotted keys when
-    given), each with a short label such as ``cost_rate=0.001`` (the run's config name when
-    nothing but the name differs)."""
+def _is_seed(key: str) -> bool:
+    """A dotted config key that only reseeds the paths (``seed``, ``data.heldout_seed``)."""
+    return key.rsplit(".", 1)[-1] == "seed" or key.endswith("_seed")
+
+
+@dataclass(frozen=True, eq=False)
+class Setting:
+    """The runs of a sweep that differ only in their seeds: one point of the frontier."""
+
+    values: tuple  # of the differing keys other than seeds, in ``Frontier.keys`` order
+    runs: tuple  # (path, metrics) of each seed's run
+
+    def mean(self, name: str, key: str) -> float | None:
+        """The mean over the setting's runs of a policy's metric (None where a run lacks it)."""
+        found = [next((r.get(key) for r in metrics["policies"] if r["name"] == name), None) for _, metrics in self.runs]
+        return None if not found or any(value is None for value in found) else float(np.mean(found))
+
+
+@dataclass(frozen=True)
+class Frontier:
+    """A sweep's runs grouped into settings (seeds averaged), joined along ``keys[0]``: a cost key
+    when one differs, else the first differing key; the other keys tell lines apart."""
+
+    keys: tuple[str, ...]
+    settings: tuple[Setting, ...]
+    seeds: int
+
+    def label(self, setting: Setting, keys=None) -> str:
+        keys = self.keys if keys is None else keys
+        return ", ".join(f"{key.rsplit('.', 1)[-1]}={json.dumps(setting.values[self.keys.index(key)])}"
+                         for key in keys) or "this run"
+
+    def lines(self) -> list[tuple[tuple, list[Setting]]]:
+        """The settings that share every key but the joined one, each group in the joined key's order."""
+        groups: dict[str, tuple[tuple, list[Setting]]] = {}
+        for setting in self.settings:
+            others = setting.values[1:]
+            groups.setdefault(json.dumps(others, sort_keys=True), (others, []))[1].append(setting)
+        return list(groups.values())
+
+
+def _sort_value(value):
+    return (0, value, "") if isinstance(value, (int, float)) else (1, 0, json.dumps(value))
+
+
+def frontier_of(variants: list[tuple[Path, dict, dict]], swept: Sequence[str] = ()) -> Frontier:
+    """Group runs by the settings that differ between them (the ``swept`` dotted keys when given),
+    seeds apart, in the order of those settings."""
     flats = [_flatten({k: v for k, v in config.items() if k not in ("name", "description", "sweep")})
              for _, _, config in variants]
-    keys = list(swept) or sorted({k for flat in flats for k in flat})
-    differing = [k for k in keys if len({json.dumps(flat.get(k), sort_keys=True) for flat in flats}) > 1][:3]
-
-    def sort_key(index: int):
-        values = [flats[index].get(k) for k in differing]
-        return [(0, v, "") if isinstance(v, (int, float)) else (1, 0, json.dumps(v)) for v in values]
-
-    order = sorted(range(len(variants)), key=sort_key)
-    labels = [", ".join(f"{k.rsplit('.', 1)[-1]}={json.dumps(flats[i].get(k))}" for k in differing)
-              or variants[i][2].get("name", variants[i][0].name) for i in order]
-    return [variants[i] for i in order], labels
+    # Without the swept keys, the scalar settings that differ: a list (the baselines) can differ only
+    # through a setting it derives from (Leland's cost rate follows the frictions').
+    candidates = list(swept) or sorted({k for flat in flats for k, v in flat.items() if not isinstance(v, list)})
+    differing = [k for k in candidates if len({json.dumps(flat.get(k), sort_keys=True) for flat in flats}) > 1]
+    seeds = [k for k in differing if _is_seed(k)]
+    keys = [k for k in differing if not _is_seed(k)][:3]
+    keys.sort(key=lambda k: "cost" not in k.rsplit(".", 1)[-1])  # a cost key first (stable otherwise)
+    grouped: dict[str, tuple[tuple, list]] = {}
+    for (path, metrics, _), flat in zip(variants, flats):
+        values = tuple(flat.get(k) for k in keys)
+        grouped.setdefault(json.dumps(values, sort_keys=True), (values, []))[1].append((path, metrics))
+    order = sorted(grouped.values(), key=lambda group: [_sort_value(v) for v in (*group[0][1:], *group[0][:1])])
+    settings = tuple(Setting(values, tuple(runs)) for values, runs in order)
+    return Frontier(tuple(keys), settings, max(len(s.runs) for s in settings) if seeds else 1)
 
 
 _MARKERS = "osD^v<>ph*"
@@ -436,46 +514,54 @@ def write_frontier(run_dirs: Sequence[Path], target: Path, swept: Sequence[str] 
 def _frontier_plot(scored: Scored, siblings: list[tuple[Path, dict, dict]], colors: dict[str, str],
                    swept: Sequence[str] = ()):
     here = (scored.run.path, scored.metrics, scored.run.config.model_dump(mode="json"))
-    variants, labels = _order_variants([here, *siblings], swept)
+    frontier = frontier_of([here, *siblings], swept)
     names, policy_labels = [r["name"] for r in scored.records], labels_of(scored.records)
     skipped = _wide_policies({name: scored.heldout[f"pnl__{name}"] for name in names})
     tail_key = "cvar_95" if "cvar_95" in scored.records[0] else next(
         (k for k in scored.records[0] if k.startswith("cvar_")), "std_pnl")
     risk_keys = (("std_pnl", "std of P&L per path (currency)"),
                  (tail_key, f"CVaR {tail_key[5:]} of the loss (currency)"))
-    # Many runs (a sweep's cells) have long labels: fewer legend columns, a taller figure for its rows.
-    columns = 8 if len(variants) <= 4 else 3
-    legend_rows = -(-(len(names) + len(variants)) // columns)
-    figure, axes = _figure(10.5, 3.8 + (0.22 * legend_rows if columns < 8 else 0.0), 1, 2, sharey=True)
+    lines = frontier.lines()
+    styles = ("-", "--", ":", "-.")
+    figure, axes = _figure(10.5, 3.8, 1, 2, sharey=True)
+    markers = {setting: _MARKERS[i % len(_MARKERS)] for i, setting in enumerate(frontier.settings)}
     for ax, (key, label) in zip(axes[0], risk_keys):
         for name in names:
             if name in skipped:
                 continue
-            points = []
-            for index, (_, metrics, _) in enumerate(variants):
-                record = next((r for r in metrics["policies"] if r["name"] == name), None)
-                if record is not None and key in record:
-                    points.append((record[key], record["mean_cost"] + record["mean_impact"], index))
-            if not points:
-                continue
-            x, y, _ = zip(*points)
-            ax.plot(x, y, color=colors[name], linewidth=1.2, label=policy_labels[name])
-            for xi, yi, index in points:
-                ax.plot(xi, yi, linestyle="none", marker=_MARKERS[index % len(_MARKERS)], markersize=5,
-                        color=colors[name])
+            for line, (_, settings) in enumerate(lines):
+                points = [(setting.mean(name, key), setting.mean(name, "mean_cost"), setting.mean(name, "mean_impact"),
+                           setting) for setting in settings]
+                points = [(x, cost + impact, setting) for x, cost, impact, setting in points
+                          if x is not None and cost is not None and impact is not None]
+                if not points:
+                    continue
+                x, y, _ = zip(*points)
+                ax.plot(x, y, color=colors[name], linewidth=1.2, linestyle=styles[line % len(styles)],
+                        label=policy_labels[name] if line == 0 else None)
+                for xi, yi, setting in points:
+                    ax.plot(xi, yi, linestyle="none", marker=markers[setting], markersize=5, color=colors[name])
         ax.set_xlabel(label)
         ax.set_title(f"Cost against {'std of P&L' if key == 'std_pnl' else label.split(' of')[0]}")
     axes[0, 0].set_ylabel("mean trading + impact cost per path (currency)")
     handles, legend_labels = axes[0, 0].get_legend_handles_labels()
-    for index, label in enumerate(labels):
-        handles.append(matplotlib.lines.Line2D([], [], linestyle="none", marker=_MARKERS[index % len(_MARKERS)],
-                                               markersize=5, color="#5c6b73"))
-        legend_labels.append(label)
-    _legend_below(figure, handles, legend_labels, columns)
-    caption = ("Cost-risk frontier: mean trading + impact cost per path against the spread of P&L, one "
-               "marker per run of the sweep ("
-               + "; ".join(f"{label}: {path.name}" for (path, _, _), label in zip(variants, labels))
-               + "), the points of a policy joined in that order. Numbers from each run's metrics.json.")
+    for setting, marker in markers.items():
+        handles.append(matplotlib.lines.Line2D([], [], linestyle="none", marker=marker, markersize=5, color="#5c6b73"))
+        legend_labels.append(frontier.label(setting))
+    if len(lines) > 1:
+        for line, (_, settings) in enumerate(lines):
+            handles.append(matplotlib.lines.Line2D([], [], linestyle=styles[line % len(styles)], color="#5c6b73"))
+            legend_labels.append(frontier.label(settings[0], frontier.keys[1:]))
+    _legend_below(figure, handles, legend_labels)
+    averaged = (f", each the mean of its {frontier.seeds} seeds' runs" if frontier.seeds > 1 else "")
+    joined = (f"joined in the order of {frontier.keys[0].rsplit('.', 1)[-1]}" if frontier.keys else "")
+    caption = ("Cost-risk frontier: mean trading + impact cost per path against the spread of P&L, one marker "
+               f"per setting of the sweep{averaged} ("
+               + "; ".join(f"{frontier.label(s)}: {', '.join(path.name for path, _ in s.runs)}"
+                           for s in frontier.settings)
+               + (f"), a policy's points {joined}" if joined else ")")
+               + (", one line style per value of the other settings" if len(lines) > 1 else "")
+               + ". Numbers from each run's metrics.json.")
     if skipped:
         caption += (f" Not shown: {', '.join(policy_labels[name] for name in skipped)} (its P&L spread is over "
                     f"{_OUTLIER_SPREAD:g} times the median policy's).")

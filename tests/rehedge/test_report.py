@@ -225,6 +225,48 @@ def test_report_with_a_sibling_run_adds_the_cost_risk_frontier(runs, report_with
     assert runs[0].name in text and runs[1].name in text
 
 
+def test_no_figure_cuts_a_legend_a_label_or_a_title(runs, monkeypatch):
+    # A PNG cannot be laid out by the browser test, so each figure is checked as it is saved: every
+    # legend and every axes' title, labels and tick labels lie inside the figure (the demo's cost and
+    # path legends ran past both edges).
+    from rehedge.report import figures
+
+    saved = []
+    encode = figures._png_data_uri
+    monkeypatch.setattr(figures, "_png_data_uri", lambda figure: saved.append(figure) or encode(figure))
+    build_report(runs[1], [runs[0]])
+    assert len(saved) == 7
+    for figure in saved:
+        assert figures.cut_parts(figure) == [], figure.axes[0].get_title(loc="left")
+
+
+def _sweep_variant(cost: float, aversion: float, seed: int, mean_cost: float) -> tuple:
+    record = {"name": "delta", "std_pnl": 10.0 * aversion + seed, "cvar_95": 1.0, "mean_cost": mean_cost,
+              "mean_impact": 0.0}
+    config = {"seed": seed, "frictions": {"cost_rate": cost}, "objective": {"risk_aversion": aversion}}
+    return Path(f"cell-{cost}-{aversion}-{seed}"), {"policies": [record]}, config
+
+
+def test_the_frontier_averages_each_setting_over_its_seeds_and_joins_settings_along_the_cost():
+    # A sweep of 2 costs x 2 risk aversions x 2 seeds has 4 settings, each the mean of its 2 seeds'
+    # runs; a line joins the costs at one risk aversion, never a cell of another seed or aversion.
+    from rehedge.report.figures import frontier_of
+
+    variants = [_sweep_variant(cost, aversion, seed, 100 * cost + seed)
+                for seed in (2, 1) for aversion in (0.004, 0.001) for cost in (0.002, 0.0005)]
+    frontier = frontier_of(variants, ["frictions.cost_rate", "objective.risk_aversion", "seed"])
+    assert frontier.keys == ("frictions.cost_rate", "objective.risk_aversion") and frontier.seeds == 2
+    lines = frontier.lines()
+    assert [others for others, _ in lines] == [(0.001,), (0.004,)]
+    for others, settings in lines:
+        assert [s.values for s in settings] == [(0.0005, others[0]), (0.002, others[0])]
+        for setting in settings:
+            assert len(setting.runs) == 2
+            assert setting.mean("delta", "std_pnl") == pytest.approx(10.0 * others[0] + 1.5)
+            assert setting.mean("delta", "mean_cost") == pytest.approx(100 * setting.values[0] + 1.5)
+    assert frontier.label(lines[0][1][0]) == "cost_rate=0.0005, risk_aversion=0.001"
+
+
 def test_policy_map_finds_the_whalley_wilmott_band_as_its_no_trade_region(runs):
     # The band is known in closed form (Whalley and Wilmott, 1997, as coded in agents.baselines): the
     # search (agents.band, bisection on the policy) must find its edges to within the no-trade
