@@ -363,6 +363,8 @@ def export_table(
         "book": {"legs": [_leg_dict(leg) for leg in problem.book.legs],
                  "notional_shares": float(notional), "reference_spot": float(problem.reference_spot),
                  "lot_shares": float(lot_shares)},
+        "band": {"tolerance_shares": float(NO_TRADE_TOLERANCE * notional),
+                 "meaning": "a trade within this of a band edge counts as none: the edges are placed to it"},
         "marks": {"volatility": float(marks.volatility), "rate": float(marks.rate),
                   "dividend_yield": float(marks.dividend_yield), "days_per_year": float(marks.days_per_year)},
         "schedule": {"steps": schedule.steps, "step_days": float(schedule.step_days),

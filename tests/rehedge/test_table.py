@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from agents.baselines import DeltaHedge, FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand
+from agents.baselines import DeltaHedge, FixedBand, LelandDelta, NoHedge, WhalleyWilmottBand, band_center
 from agents.dataset import Exploration, Transitions, collect_chunks
 from agents.fitted_q import FittedQAgent, default_regressor
 from agents.grid_dp import GridDPAgent
@@ -31,7 +31,8 @@ from hedge_env.rollout import rollout_many
 from rehedge.cli import CAUTION, app
 from rehedge.config import parse_config
 from rehedge.errors import ConfigError
-from rehedge.tables.export import TableGrid, export_table
+from rehedge.tables.export import TARGET_DIGITS, TableGrid, export_table
+from hedge_env.step import observation_rows
 from rehedge.tables.reader import BAND_COLUMNS, TARGET_COLUMNS, HedgeTable, TableError, sidecar_digest
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -81,7 +82,7 @@ def test_table_files_have_the_documented_columns_rows_and_sidecar(exported):
     problem, _, tables, _ = exported
     table = tables["grid_dp"]
     meta = table.meta
-    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 5
+    assert meta["format"] == "rehedge-hedge-table" and meta["format_version"] == 6
     assert meta["state_axis"] is None and table.state is None  # the policy reads spot, time and holding alone
     n_days, n_money, n_hold = (len(meta["grid"][k]) for k in ("days_left", "moneyness", "holding_shares"))
     assert (n_days, n_money, n_hold) == (10, 101, 41)
@@ -198,7 +199,27 @@ def every_kind(exported, tmp_path_factory):
 
 @pytest.mark.parametrize("kind", ["no_hedge", "delta", "leland", "whalley_wilmott", "fixed_band", "grid_dp",
                                   "linear", "fitted_q"])
-def test_a_table_target_lies_in_its_own_band_and_asking_again_from_it_trades_nothing(every_kind, kind):
+def test_a_table_target_never_passes_the_far_edge_of_its_band(every_kind, kind):
+    problem, tables = every_kind
+    table = tables[kind]
+    rng = np.random.default_rng(17)
+    n = 4000
+    spot = rng.uniform(*table.domain["spot"], n)
+    days = rng.uniform(*table.domain["days_left"], n)
+    held = rng.uniform(*table.domain["holding_shares"], n)
+    first = table.decide(spot, days, held)
+    lower, upper, target = first.band_lower_shares, first.band_upper_shares, first.target_shares
+    banded = np.isfinite(lower) & np.isfinite(upper)
+    assert (target[banded & (held < lower)] <= upper[banded & (held < lower)]).all()
+    assert (target[banded & (held > upper)] >= lower[banded & (held > upper)]).all()
+    assert np.array_equal(target[first.inside_band], held[first.inside_band])
+    assert banded.mean() > 0.5 or kind == "no_hedge"
+
+
+@pytest.mark.parametrize("kind", ["whalley_wilmott", "fixed_band"])
+def test_a_band_policys_table_target_lies_in_its_band_and_asking_again_from_it_trades_nothing(every_kind, kind):
+    # A band baseline trades from outside exactly onto its nearer edge, at every node: between holding
+    # nodes its interpolated target is inside or on the band, so asking again trades nothing.
     problem, tables = every_kind
     table = tables[kind]
     rng = np.random.default_rng(17)
@@ -216,6 +237,49 @@ def test_a_table_target_lies_in_its_own_band_and_asking_again_from_it_trades_not
     again = table.decide(spot, days, target)
     assert np.array_equal(again.trade_shares[banded], np.zeros(banded.sum()))
     assert banded.mean() > 0.5 or kind == "no_hedge"
+
+
+class ShortOfTheBand:
+    """A policy that, from outside the band of half-width ``width`` (per share of notional) around the
+    Black-Scholes hedge, moves half way to the nearer edge: the shape of the best trade under impact
+    costs that grow faster than the trade."""
+
+    name = "short_of_the_band"
+
+    def __init__(self, problem, width: float = 0.1):
+        self.problem, self.width = problem, width
+
+    def edges(self, obs) -> tuple[np.ndarray, np.ndarray]:
+        """The band's edges, per share of notional."""
+        center = band_center(self.problem, "delta", obs)[0] / self.problem.notional_shares
+        return center - self.width, center + self.width
+
+    def act(self, obs):
+        low, high = self.edges(obs)
+        held = obs[:, 2]
+        return np.where(held < low, held + 0.5 * (low - held), np.where(held > high, held - 0.5 * (held - high), held))
+
+
+def test_a_target_short_of_the_band_is_read_back_as_the_policy_gave_it(exported, tmp_path):
+    # At the table's (days, moneyness) nodes and holdings a node or more from either edge, trilinear
+    # reading of a policy that is linear in the holding outside its band is exact: the table's target
+    # is the policy's to the CSV's digits (format 5 moved it onto the band's edge, half the way off).
+    problem = exported[0]
+    policy = ShortOfTheBand(problem)
+    table = HedgeTable.load(export_table(policy, problem, tmp_path / "short", kind="fixed_band"))
+    days, money, holds = table.days_left, table.moneyness, table.holding_shares
+    node = holds[1] - holds[0]
+    d, m, h = (x.ravel() for x in np.meshgrid(days, money, holds, indexing="ij"))
+    years = d / problem.marks.days_per_year
+    obs = observation_rows(problem, m * problem.reference_spot, years, h, ())
+    source = policy.act(obs) * problem.notional_shares
+    low, high = (edge * problem.notional_shares for edge in policy.edges(obs))
+    away = (h < low - node) | (h > high + node)
+    assert away.mean() > 0.3
+    decision = table.decide(m * problem.reference_spot, d, h)
+    # TARGET_DIGITS significant digits in the CSV: a relative rounding of at most half a unit in the last.
+    np.testing.assert_allclose(decision.target_shares[away], source[away], rtol=0.5 * 10.0 ** (1 - TARGET_DIGITS),
+                               atol=1e-12)
 
 
 def test_a_failed_export_writes_nothing(tmp_path):
