@@ -107,8 +107,7 @@ def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarra
     horizon: ``-G (paid + gamma G / 2 (gap N S)^2 m2)``, G the growth of the step's P&L to the
     horizon at the cash rate (``growth``): a sure amount passes through a certainty equivalent
     unchanged, and a normal one-step gap move costs gamma/2 times its variance."""
-    frictions, kappa = problem.frictions, problem.objective.risk_aversion
-    exponential = problem.objective.exponential
+    frictions, objective = problem.frictions, problem.objective
     notional = problem.notional_shares
     spot = state.spot[:, None]
     # In place on the (n, C) arrays: this runs for every row and candidate of the greedy policy.
@@ -120,18 +119,9 @@ def known_part(problem: HedgingProblem, state: StateFeatures, targets: np.ndarra
         paid = paid + impact
     gap_risk = targets - state.hedge[:, None]
     gap_risk *= gap_risk
-    risk_aversion = kappa * growth if exponential else kappa
+    risk_aversion = objective.form.gap_aversion(objective, growth)
     gap_risk *= (0.5 * risk_aversion * notional * notional) * (spot * spot * np.reshape(second_moment, (-1, 1)))
-    if exponential:
-        known = gap_risk
-        known += paid
-        known *= growth
-    else:
-        known = paid * paid
-        known *= 0.5 * kappa
-        known += paid
-        known += gap_risk
-    return np.negative(known, out=known)
+    return objective.form.known_value(objective, paid, gap_risk, growth)
 
 
 def check_anchor(problem: HedgingProblem, anchor: str, factor_names: tuple[str, ...]) -> None:
@@ -313,7 +303,7 @@ class BackwardQAgent(BaseEstimator):
         notional = problem.notional_shares
         gap_shares = (targets - state.hedge[:, None]) * notional
         move_surprise, square_surprise, next_moneyness = self._surprises(chunk, k, state, second_moment)
-        if problem.objective.exponential:
+        if problem.objective.certainty_equivalent:
             growth = problem.horizon_growth(k)
             y = chunk.rewards[k] * growth - known_part(problem, state, targets, second_moment, growth)
             hedge_surprise = growth * (gap_shares * move_surprise)
@@ -324,7 +314,7 @@ class BackwardQAgent(BaseEstimator):
             y = y + (0.5 * problem.objective.risk_aversion) * gap_shares * gap_shares * square_surprise
         if not chunk.done(k):
             y = y + self._next_values(chunk, k, next_moneyness)
-        if problem.objective.exponential:
+        if problem.objective.certainty_equivalent:
             spot = state.spot[:, None]
             return X, np.stack(np.broadcast_arrays(y, hedge_surprise, square_gap_surprise, move_surprise / spot,
                                                    square_surprise / (spot * spot)))

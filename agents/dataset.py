@@ -164,7 +164,7 @@ def collect(problem: HedgingProblem, paths: MarketPaths, exploration: Exploratio
             problem, _tile(state, m), actions[k].T.reshape(-1) * notional, np.tile(spot[k + 1], m),
             None if mark_vol is None else np.tile(mark_vol[k + 1], m),
         )
-        rewards[k] = (outcome.pnl if problem.objective.exponential else outcome.reward).reshape(m, n).T
+        rewards[k] = problem.objective.form.learning_signal(outcome.pnl, outcome.reward).reshape(m, n).T
         next_holding[k] = (outcome.state.holding / notional).reshape(m, n).T
         state = _first_rows(outcome.state, n)  # the trajectory follows the behaviour action
         next_obs[k] = observe(problem, state, [factors[f][k + 1] for f in observed])

@@ -157,7 +157,7 @@ class FittedQAgent(BackwardQAgent):
         if self.linear_basis is None or self.linear_basis == "none":
             return ()
         basis = None if self.linear_basis == "polynomial" else self.linear_basis
-        return fitted_basis(basis, tuple(self.factor_names), self.problem.objective.exponential)
+        return fitted_basis(basis, tuple(self.factor_names), self.problem.objective.certainty_equivalent)
 
     def _setup(self) -> None:
         steps = self.problem.schedule.steps
@@ -173,7 +173,7 @@ class FittedQAgent(BackwardQAgent):
         self._rows: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
 
     def _begin_fit(self, moment_sums) -> None:
-        if self.problem.objective.exponential and not self.linear_terms:
+        if self.problem.objective.certainty_equivalent and not self.linear_terms:
             raise ValueError("fitted Q under the exponential objective needs a linear stage (linear_basis not "
                              "'none'): it carries the value's level across states")
         moment_sums = list(moment_sums)
@@ -211,7 +211,7 @@ class FittedQAgent(BackwardQAgent):
         if m < 2:
             raise ValueError("fitted Q needs exploration.actions_per_state >= 2")
         keep = self._kept(y.shape[-2], m)
-        if self.problem.objective.exponential:
+        if self.problem.objective.certainty_equivalent:
             # The certainty-equivalent stage needs every row; the regressor's rows are cut like the others.
             self._certainty_rows = self._certainty_rows + StepRows.of(linear, y)
             self._rows.append((X if keep is None else X[:, keep], keep, None))
@@ -256,11 +256,11 @@ class FittedQAgent(BackwardQAgent):
         self._rows = rows
 
     def _finish_step(self, k: int) -> None:
-        if self.problem.objective.exponential:
+        if self.problem.objective.certainty_equivalent:
             self._certainty_equivalent_rows(k)
         X = np.concatenate([x for x, _, _ in self._rows])
         y = np.concatenate([t for _, t, _ in self._rows])
-        if len(self.linear_terms) and not self.problem.objective.exponential:
+        if len(self.linear_terms) and not self.problem.objective.certainty_equivalent:
             self.linear_coef_[k] = self._normal.solve(self.ridge)
             y = y - np.concatenate([lin for _, _, lin in self._rows]) @ self.linear_coef_[k]
         self._rows = []

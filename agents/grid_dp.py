@@ -75,11 +75,6 @@ class GridDPAgent(BaseEstimator):
         book delta's range over the spot grid and the rehedge times, widened
         to include 0 and padded by 10% of notional on each side. Always cut
         back to the position limit.
-    utility : str or None
-        None: the problem objective's kind. ``"mean_variance"``: the per-step objective ``E[sum_k r_k]``;
-        ``"exponential"``: the expected exponential utility of the wealth at the
-        horizon, ``objective.risk_aversion`` its absolute risk aversion
-        (:meth:`_induct_exponential`); ``value`` then gives the certainty equivalent.
     name : str
         Policy name in reports.
 
@@ -144,7 +139,6 @@ class GridDPAgent(BaseEstimator):
         quadrature_nodes: int = 16,
         log_spot_width: float = 8.0,
         holding_range: tuple[float, float] | None = None,
-        utility: str | None = None,
         name: str = "grid_dp",
     ):
         self.problem = problem
@@ -155,7 +149,6 @@ class GridDPAgent(BaseEstimator):
         self.quadrature_nodes = quadrature_nodes
         self.log_spot_width = log_spot_width
         self.holding_range = holding_range
-        self.utility = utility
         self.name = name
 
     # --- fitting --------------------------------------------------------------------------------
@@ -188,8 +181,9 @@ class GridDPAgent(BaseEstimator):
         self._validate_parameters()
         problem = self.problem
         steps = problem.schedule.steps
-        self.utility_ = self.utility or problem.objective.kind
-        exponential = self.utility_ == "exponential"
+        # The problem's objective says what is solved: the per-step mean-variance E[sum_k r_k], or the
+        # expected exponential utility of the wealth at the horizon (:meth:`_induct_exponential`).
+        exponential = problem.objective.certainty_equivalent
         # Under exponential utility Q is kept as -log E[exp(-gamma W_T)]: level - charge x gamma_k, linear.
         self.reward_coefficients_ = (1.0, 0.0) if exponential else reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
@@ -226,12 +220,8 @@ class GridDPAgent(BaseEstimator):
             )
         if not (self.volatility > 0 and self.log_spot_width > 0):
             raise ValueError(f"volatility and log_spot_width must be > 0, got {self.volatility}, {self.log_spot_width}")
-        if self.utility not in (None, "mean_variance", "exponential"):
-            raise ValueError(f"utility must be 'mean_variance' or 'exponential', got {self.utility!r}")
-        objective = self.problem.objective
-        if (self.utility or objective.kind) == "exponential" and not (
-                objective.risk_aversion > 0 and not self.problem.frictions.permanent_impact):
-            raise ValueError("exponential utility needs objective.risk_aversion > 0 and no permanent impact")
+        if self.problem.objective.certainty_equivalent and self.problem.frictions.permanent_impact:
+            raise ValueError("exponential utility needs no permanent impact")
         if self.holding_range is not None and not self.holding_range[0] < self.holding_range[1]:
             raise ValueError(f"holding_range must be (low, high) with low < high, got {self.holding_range}")
 
@@ -461,8 +451,8 @@ class GridDPAgent(BaseEstimator):
     def value(self, obs) -> np.ndarray:
         """``V_k`` at observation rows, currency: the optimal expected sum of rewards from their state
         on; under exponential utility the certainty equivalent of the wealth at the horizon."""
-        value = self._best(obs)[1]
-        return value / self.problem.objective.risk_aversion if self.utility_ == "exponential" else value
+        objective = self.problem.objective
+        return objective.form.value_in_money(objective, self._best(obs)[1])
 
     def _decode(self, obs):
         check_is_fitted(self, "value_")

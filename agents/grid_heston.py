@@ -145,7 +145,7 @@ class HestonGridDPAgent(BaseEstimator):
                 self.variance_nodes, self.spot_nodes) < 2:
             raise ValueError("need spot_points, variance_points, holding_points >= 4 and quadrature nodes >= 2")
         steps = problem.schedule.steps
-        exponential = problem.objective.exponential
+        exponential = problem.objective.certainty_equivalent
         # Under exponential utility Q is kept as -log E[exp(-gamma W_T)]: level - charge x gamma_k, linear.
         self.reward_coefficients_ = (1.0, 0.0) if exponential else reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
@@ -371,7 +371,7 @@ class HestonGridDPAgent(BaseEstimator):
         under exponential utility the certainty equivalent of the wealth at the horizon."""
         value = self._best(obs)[1]
         objective = self.problem.objective
-        return value / objective.risk_aversion if objective.exponential else value
+        return objective.form.value_in_money(objective, value)
 
     def _best(self, obs):
         check_is_fitted(self, "value_")

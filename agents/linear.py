@@ -107,21 +107,21 @@ class LinearBasisAgent(BackwardQAgent):
 
     @property
     def terms(self) -> tuple[str, ...]:
-        return fitted_basis(self.basis, tuple(self.factor_names), self.problem.objective.exponential)
+        return fitted_basis(self.basis, tuple(self.factor_names), self.problem.objective.certainty_equivalent)
 
     def _setup(self) -> None:
         self.coef_ = np.zeros((self.problem.schedule.steps, len(self.terms)))
         self.statistics_: dict[int, NormalEquations | StepRows | None] = {}
 
     def _start_step(self, k: int) -> None:
-        exponential = self.problem.objective.exponential
+        exponential = self.problem.objective.certainty_equivalent
         self.statistics_[k] = StepRows() if exponential else NormalEquations.empty(len(self.terms))
 
     def _add(self, k: int, X: np.ndarray, y: np.ndarray) -> None:
         self.statistics_[k] = self.statistics_[k] + self._statistics(X, y)
 
     def _statistics(self, X: np.ndarray, y: np.ndarray) -> NormalEquations | StepRows:
-        return StepRows.of(X, y) if self.problem.objective.exponential else within_state(X, y)
+        return StepRows.of(X, y) if self.problem.objective.certainty_equivalent else within_state(X, y)
 
     def _finish_step(self, k: int) -> None:
         statistics = self.statistics_[k]

@@ -102,7 +102,7 @@ def _compare(config, smoothing: str) -> list:
     reference = config.report.reference_policy
     seed = config.data.heldout_seed + 1
     versus_band = objective_versus(results, "whalley_wilmott", BOOTSTRAP, seed)
-    objective = "certainty equivalent" if problem.objective.exponential else "objective"
+    objective = problem.objective.form.score_name
     print(f"\n{config.name}: cost {config.frictions.cost_rate * 1e4:g} bps, "
           f"{config.data.train_paths:,} training / {config.data.heldout_paths:,} held-out paths "
           f"(training {train_s:.1f} s); shares of the gain of {optimum} over {reference} in the {objective}")

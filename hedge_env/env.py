@@ -91,10 +91,18 @@ class HedgingEnv(gym.Env):
 
     ## Rewards
 
-    Per step ``r = dW - kappa / 2 * dW**2`` where ``dW`` is the change in the
-    hedger's wealth over the step (hedge gain + book mark change + financing
-    - costs) and kappa the risk aversion per currency unit. The sum of ``dW``
-    over an episode is the P&L against the initial mark.
+    ``dW`` is the change in the hedger's wealth over the step (hedge gain +
+    book mark change + financing - costs); the sum of ``dW`` over an episode
+    is the P&L against the initial mark ``W_T``. The reward is the problem's
+    objective kind's (``objective.kind``, hedge_env.objective):
+
+    - ``mean_variance``: ``r = dW - kappa / 2 * dW**2`` each step, kappa the
+      risk aversion per currency unit; the return is the summed rewards.
+    - ``exponential``: 0 at every step but the last, which pays
+      ``u(W_T) = (1 - exp(-gamma W_T)) / gamma``, gamma the absolute risk
+      aversion: the return is the terminal utility (-inf where gamma times the
+      loss is past the double range), whose expectation ranks policies as
+      their certainty equivalent does.
 
     ## Starting State
 

@@ -263,8 +263,8 @@ def hedge_step(
 
     next_state = HedgeState(state.k + 1, spot_next, impact, holding, cash, mark_next, delta_next)
     objective = problem.objective
-    # The exponential objective's reward reads the wealth before the step (the P&L gathered so far).
-    wealth = state.wealth() if objective.exponential else 0.0
+    # A kind that tracks wealth (exponential utility) reads the P&L gathered before the step.
+    wealth = state.wealth() if objective.form.tracks_wealth else 0.0
     return StepOutcome(
         next_state, target, pnl, objective.reward(pnl, wealth, step.last), hedge_gain, book_change, financing,
         trading_cost, impact_cost, traded_shares, trades,

@@ -229,7 +229,7 @@ def _records_out(cfg, n_paths: int, seed: int, evaluation, tuning: dict, as_json
             console.print(caution, highlight=False)
     reference = evaluation.reference
     if reference in evaluation.results:
-        objective = "certainty equivalent" if cfg.objective.kind == "exponential" else "objective"
+        objective = evaluation.results[reference].objective.form.score_name
         console.print(f"{objective} (higher is better) difference from {reference}, paired over paths, bootstrap 95% CI "
                       f"({evaluation.bootstrap_samples} resamples, seed {evaluation.bootstrap_seed}):", highlight=False)
         for record in records:
@@ -419,10 +419,6 @@ def _print_quote_table(rows: list[dict]) -> None:
     ])
 
 
-OBJECTIVE_WORDS = {"mean_variance": "mean-variance objective",
-                   "exponential": "exponential utility (a utility-indifference price)"}
-
-
 @app.command()
 def quote(
     source: Path = typer.Argument(..., help="TOML config file, or a run folder."),
@@ -456,7 +452,7 @@ def quote(
     console.print(("ask: the premium to receive for selling this book as configured" if sold else
                    "ask: the premium for taking on this book as configured (negative: paid)")
                   + " and hedging it with the policy, at which the desk is indifferent under its "
-                  + OBJECTIVE_WORDS[cfg.objective.kind]
+                  + next(iter(evaluation.results.values())).objective.form.quote_title
                   + ("; bid: the premium to pay for buying it back" if sold else "; bid: the same")
                   + " (the opposite book, the policy mirrored). CVaR-95: the mark plus (ask) or minus (bid) the "
                   "95% CVaR of the hedged loss.", highlight=False)

@@ -12,13 +12,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from scipy.optimize import brentq
-from scipy.special import logsumexp
 
 from agents.policy import Mirrored
 from hedge_env import pricing
 from hedge_env.book import Book
 from hedge_env.market import MarketPaths, PathGenerator
-from hedge_env.objective import certainty_equivalent, conditional_value_at_risk, level_tag
+from hedge_env.objective import (Objective, conditional_value_at_risk, level_tag, resampled_certainty_equivalent,
+                                 resampled_mean)
 from hedge_env.problem import HedgingProblem
 from hedge_env.rollout import HedgeResult, PolicyOutputError, rollout_many
 from rehedge.errors import PolicyError
@@ -58,32 +58,16 @@ def paired_bootstrap(differences: dict[str, np.ndarray], samples: int = 2000, se
     policy, so the intervals are paired and reproducible from ``seed``.
     """
     n = len(next(iter(differences.values())))
-    starts, draws, counts = resample_batches(n, samples, seed, batches)
-    return _interval({name: (diff.mean(), np.add.reduceat(diff, starts)[draws].sum(axis=1) / counts)
-                      for name, diff in differences.items()}, level)
-
-
-def resampled_certainty_equivalent(pnl: np.ndarray, gamma: float, resamples) -> tuple[float, np.ndarray]:
-    """``-1/gamma log mean exp(-gamma P&L)`` of all paths and of each resample of
-    :func:`resample_batches`: a log-sum-exp within each batch (shifted by the batch's own largest
-    exponent), then one across the resample's batches, so no exponent overflows and no batch far
-    below the worst path rounds to zero (a shift by the overall largest would give log 0)."""
-    starts, draws, counts = resamples
-    exponent = -gamma * pnl
-    peaks = np.maximum.reduceat(exponent, starts)
-    sizes = np.diff(np.append(starts, pnl.size))
-    batch_logs = peaks + np.log(np.add.reduceat(np.exp(exponent - np.repeat(peaks, sizes)), starts))
-    return certainty_equivalent(pnl, gamma), -(logsumexp(batch_logs[draws], axis=1) - np.log(counts)) / gamma
+    resamples = resample_batches(n, samples, seed, batches)
+    return _interval({name: (diff.mean(), resampled_mean(diff, resamples)) for name, diff in differences.items()},
+                     level)
 
 
 def resampled_objective(result: HedgeResult, resamples) -> tuple[float, np.ndarray]:
-    """A policy's objective on all paths and on each resample of :func:`resample_batches`: the mean
-    summed reward, or the certainty equivalent under the exponential objective."""
+    """A policy's objective on all paths and on each resample of :func:`resample_batches` (its
+    objective's own resampled score)."""
     objective = result.objective
-    if objective.exponential:
-        return resampled_certainty_equivalent(result.pnl, objective.risk_aversion, resamples)
-    starts, draws, counts = resamples
-    return float(result.reward.mean()), np.add.reduceat(result.reward, starts)[draws].sum(axis=1) / counts
+    return objective.form.resampled_score(objective, result.pnl, result.reward, resamples)
 
 
 def certainty_equivalent_bootstrap(pnl: dict[str, np.ndarray], reference: str, gamma: float, samples: int = 2000,
@@ -92,25 +76,24 @@ def certainty_equivalent_bootstrap(pnl: dict[str, np.ndarray], reference: str, g
     """Each policy's certainty equivalent ``-1/gamma log E[exp(-gamma P&L)]`` minus the reference's, and
     the percentile bootstrap interval of that difference: the resamples of :func:`paired_bootstrap`
     (the same for every policy), each policy's CE recomputed on each resample."""
+    objective = Objective(risk_aversion=gamma, kind="exponential")
     resamples = resample_batches(len(pnl[reference]), samples, seed, batches)
-    base, base_resampled = resampled_certainty_equivalent(pnl[reference], gamma, resamples)
-    values = {}
-    for name, x in pnl.items():
-        ce, ce_resampled = resampled_certainty_equivalent(x, gamma, resamples)
-        values[name] = (ce - base, ce_resampled - base_resampled)
-    return _interval(values, level)
+    return _interval(objective.form.versus(objective, pnl, {}, reference, resamples), level)
 
 
 def objective_versus(results: dict[str, HedgeResult], reference: str, samples: int = 2000, seed: int = 0,
                      batches: int = 2000, level: float = 0.95) -> dict[str, dict[str, float]]:
     """Each policy's objective minus the reference's on the same paths, with its paired bootstrap
-    interval: per-path reward differences (mean-variance) or certainty equivalents (exponential)."""
+    interval, as the objective pairs them (``versus``: per-path reward differences under
+    mean-variance, certainty equivalents recomputed on each resample under exponential utility)."""
     objective = results[reference].objective
-    if objective.exponential:
-        return certainty_equivalent_bootstrap({name: r.pnl for name, r in results.items()}, reference,
-                                              objective.risk_aversion, samples, seed, batches, level)
-    base = results[reference].reward
-    return paired_bootstrap({name: r.reward - base for name, r in results.items()}, samples, seed, batches, level)
+    resamples = resample_batches(results[reference].n_paths, samples, seed, batches)
+    pnl = {name: r.pnl for name, r in results.items()}
+    reward = {name: r.reward for name, r in results.items()}
+    return _interval(objective.form.versus(objective, pnl, reward, reference, resamples), level)
+
+
+_BLOCK_NUMBERS = 2_000_000
 
 
 def resampled_tails(pnl: np.ndarray, level: float, resamples, chunk: int = 256) -> tuple[np.ndarray, np.ndarray]:
@@ -132,6 +115,9 @@ def resampled_tails(pnl: np.ndarray, level: float, resamples, chunk: int = 256) 
     # of a resample's weight on them (a batch drawn Poisson(1) times carries n / groups paths).
     expected = (1.0 - level) * n
     read = min(n, int(expected + 8.0 * math.sqrt(expected * (1.0 + expected / groups))) + 64)
+    # Resamples a block, so a block's (resamples, paths read) arrays stay near 2 M numbers (16 MB) at any
+    # path count (256 resamples x 50,000 tail paths of a million held three such arrays of 100 MB).
+    chunk = max(1, min(chunk, _BLOCK_NUMBERS // read))
     for first in range(0, samples, chunk):
         rows = slice(first, first + chunk)
         while True:
@@ -322,7 +308,8 @@ def quotes(problem: HedgingProblem, evaluation: Evaluation, opposite: Evaluation
                                         marks.rate, marks.dividend_yield, leg.is_call)[0])
         for leg in problem.book.legs))
     # The mean-variance objective is a sum of step rewards, not a horizon amount: it is not discounted.
-    discount = math.exp(-problem.frictions.cash_rate * problem.horizon_years) if problem.objective.exponential else 1.0
+    discount = (math.exp(-problem.frictions.cash_rate * problem.horizon_years)
+                if problem.objective.certainty_equivalent else 1.0)
     out = {}
     for name, result in evaluation.results.items():
         other = opposite.results[name]

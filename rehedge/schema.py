@@ -33,6 +33,7 @@ from pydantic_core import PydanticCustomError
 from agents.grid_heston import DEFAULT_GRID as HESTON_GRID_DEFAULTS
 from agents.registry import REGRESSORS
 from hedge_env.model_pricing import HestonPricer, MertonPricer
+from hedge_env.objective import OBJECTIVE_FORMS, Objective
 
 # ---------------------------------------------------------------------------
 # Small validation helpers
@@ -491,8 +492,10 @@ class ObjectiveSpec(_Spec):
 
     @model_validator(mode="after")
     def _resolve_entropic(self) -> ObjectiveSpec:
-        if self.kind == "exponential" and not self.risk_aversion > 0:
-            raise _rule("must be > 0 with kind = 'exponential' (gamma of the utility)", "risk_aversion")
+        try:  # the kind's own check of its parameters (hedge_env.objective)
+            OBJECTIVE_FORMS[self.kind].check(Objective(risk_aversion=self.risk_aversion))
+        except ValueError:
+            raise _rule(f"must be > 0 with kind = {self.kind!r} (gamma of the utility)", "risk_aversion") from None
         if self.entropic_risk_aversion is None and self.risk_aversion > 0:
             self.entropic_risk_aversion = self.risk_aversion
         return self

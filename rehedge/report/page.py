@@ -110,11 +110,7 @@ def _scenario_html(scored: Scored) -> str:
                       f"impact {frictions.permanent_impact:g}; ADV {frictions.adv_shares:,.0f} shares; borrow fee "
                       f"{format_percent(frictions.borrow_fee)} a year; position limit "
                       f"{'none' if limit is None else f'{limit:,.0f} shares'}"),
-        ("objective", (f"certainty equivalent of the total P&L under exponential utility, -1/gamma log "
-                       f"E[exp(-gamma P&L)], gamma = {objective.risk_aversion:g} per currency unit"
-                       if objective.kind == "exponential" else
-                       f"mean over paths of the summed step rewards dW - {objective.risk_aversion:g} / 2 dW^2 "
-                       f"(risk aversion per currency unit)")
+        ("objective", run.problem.objective.form.describe(run.problem.objective)
                       + f"; VaR/CVaR levels {', '.join(format_percent(v) for v in objective.var_levels)}"),
         ("held-out paths", heldout_text(paths, config.data.heldout_paths, metrics.get("heldout_seed"),
                                         config.market.model == "historical")
@@ -269,22 +265,16 @@ def _summary_html(scored: Scored) -> str:
     note = ("Ranked by objective (higher is better), in the same order in every table. Every number is from "
             "this run's metrics.json, formatted; money in the config's currency, costs and P&L per path over "
             "the horizon, VaR and CVaR as positive losses. ")
-    exponential = scored.run.config.objective.kind == "exponential"
+    form = scored.run.problem.objective.form
     if has_versus:
-        difference = ("difference in certainty equivalent" if exponential else
-                      "mean per-path difference in summed reward")
-        note += (f"The difference from {reference_label} is the {difference}, with a "
+        note += (f"The difference from {reference_label} is the {form.difference_words}, with a "
                  f"paired bootstrap 95% interval ({scored.metrics.get('bootstrap_samples')} resamples of the paths); "
                  "'better' or 'worse' than it when the interval excludes zero. ")
     if "quote_bid" in records[0]:
-        note += (("Bid and ask: utility-indifference premiums under exponential utility" if exponential else
-                  "Bid and ask: mean-variance indifference premiums")
+        note += (f"Bid and ask: {form.quote_words}"
                  + " for the opposite and the configured book; spreads are each quote's distance from the mark, "
                  "in Black-Scholes implied-volatility points.")
-    if exponential:
-        note += ("CE paths: Kish's effective number of paths behind each certainty equivalent, "
-                 "(sum w)^2 / sum w^2 with w = exp(-gamma P&L); under half the paths, its interval is not to be "
-                 "trusted. ")
+    note += form.measure_note
     parts = [f'<h2>Summary</h2><p class="muted">{_e(note)}</p>']
     if caution := ce_caution(records):
         parts.append(f'<p class="caution">{_e(caution)}</p>')

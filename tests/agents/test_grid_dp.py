@@ -392,7 +392,7 @@ def test_get_params_clone_and_joblib_round_trip_act_identically(tmp_path):
     agent = GridDPAgent(problem, spot_points=41, holding_points=51, quadrature_nodes=8, name="dp_small")
     params = agent.get_params()
     assert params == dict(problem=problem, drift=0.0, volatility=0.2, spot_points=41, holding_points=51,
-                          quadrature_nodes=8, log_spot_width=8.0, holding_range=None, utility=None,
+                          quadrature_nodes=8, log_spot_width=8.0, holding_range=None,
                           name="dp_small")
     agent.fit()
     copy = clone(agent)

@@ -1,4 +1,4 @@
-"""The grid optimum under exponential utility (agents.grid_dp with utility="exponential").
+"""The grid optimum under exponential utility (agents.grid_dp on a problem whose objective kind is exponential).
 
 References, named beside each check:
 - Bellman's principle (identity): the certainty equivalent at the start is that of the policy it
@@ -36,7 +36,8 @@ def _certainty_equivalent(pnl: np.ndarray, gamma: float) -> tuple[float, float]:
 def test_the_exponential_grid_start_value_is_its_own_held_out_certainty_equivalent_and_beats_mean_variance():
     problem, market = default_problem()
     problem = replace(problem, frictions=Frictions(cost_rate=0.005), objective=Objective(risk_aversion=1.0))
-    exponential = GridDPAgent(problem, drift=market.drift, volatility=market.volatility, utility="exponential").fit()
+    exponential = GridDPAgent(replace(problem, objective=Objective(risk_aversion=1.0, kind="exponential")),
+                              drift=market.drift, volatility=market.volatility).fit()
     mean_variance = GridDPAgent(problem, drift=market.drift, volatility=market.volatility).fit()
     results = rollout_many(problem, {"exp": exponential, "mv": mean_variance}, market, 100_000, 99)
     held, error = _certainty_equivalent(results["exp"].pnl, 1.0)
@@ -51,8 +52,8 @@ def test_with_no_costs_the_certainty_equivalent_of_a_hedged_sold_call_shrinks_li
     values = []
     for steps, step_days in ((10, 1.0), (20, 0.5), (40, 0.25)):
         hedged = replace(problem, book=Book((OptionLeg("call", 100.0, 10, -1.0),)), frictions=Frictions(),
-                         objective=Objective(risk_aversion=1.0), schedule=Schedule(steps, step_days))
-        agent = GridDPAgent(hedged, drift=0.0, volatility=0.2, utility="exponential").fit()
+                         objective=Objective(risk_aversion=1.0, kind="exponential"), schedule=Schedule(steps, step_days))
+        agent = GridDPAgent(hedged, drift=0.0, volatility=0.2).fit()
         values.append(agent.value(np.array([[1.0, hedged.horizon_years, 0.0]]))[0])
     assert all(v < 0 for v in values)
     assert values[1] / values[0] == pytest.approx(0.5, abs=0.05)
@@ -60,10 +61,13 @@ def test_with_no_costs_the_certainty_equivalent_of_a_hedged_sold_call_shrinks_li
     assert abs(values[2]) < 0.02 * 1.32  # against a Black-Scholes premium of about 1.32
 
 
-def test_exponential_utility_needs_a_risk_aversion():
+def test_exponential_utility_needs_a_risk_aversion_and_the_grid_no_permanent_impact():
     problem, _ = default_problem()
-    with pytest.raises(ValueError, match="exponential utility needs objective.risk_aversion > 0"):
-        GridDPAgent(replace(problem, objective=Objective(0.0)), utility="exponential").fit()
+    with pytest.raises(ValueError, match="an exponential objective needs risk_aversion > 0"):
+        Objective(0.0, kind="exponential")
+    impact = replace(problem, objective=Objective(1.0, kind="exponential"), frictions=Frictions(permanent_impact=0.1))
+    with pytest.raises(ValueError, match="exponential utility needs no permanent impact"):
+        GridDPAgent(impact).fit()
 
 
 def _band(cost: float, step_days: float) -> tuple[float, float]:
@@ -73,9 +77,8 @@ def _band(cost: float, step_days: float) -> tuple[float, float]:
     problem, _ = default_problem()
     steps = int(round(10 / step_days))
     case = replace(problem, book=Book((OptionLeg("call", 100.0, 10, -1.0),)), frictions=Frictions(cost_rate=cost),
-                   objective=Objective(risk_aversion=1.0), schedule=Schedule(steps, step_days))
-    agent = GridDPAgent(case, drift=0.0, volatility=0.2, utility="exponential", spot_points=101,
-                        holding_points=401).fit()
+                   objective=Objective(risk_aversion=1.0, kind="exponential"), schedule=Schedule(steps, step_days))
+    agent = GridDPAgent(case, drift=0.0, volatility=0.2, spot_points=101, holding_points=401).fit()
     k = steps // 2
     half, spot = band_at_the_money(agent, k)
     return half, whalley_wilmott_half_width(cost, spot, case.years_to_horizon(k), 0.2, 1.0)
