@@ -21,9 +21,9 @@ import math
 import numpy as np
 from scipy.interpolate import CubicSpline
 from scipy.special import logsumexp
-from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
+from agents.grid_base import GridOptimum
 from agents.grid_numerics import (
     affine_pieces,
     best_targets,
@@ -48,8 +48,9 @@ _CHUNK_ELEMENTS = 1 << 18
 _WINDOW_TARGETS = (8, 16, 32, 64)
 
 
-class GridDPAgent(BaseEstimator):
-    """Grid dynamic-programming optimum of the per-step mean-variance objective under GBM.
+class GridDPAgent(GridOptimum):
+    """Grid dynamic-programming optimum under GBM of the problem's objective: the per-step
+    mean-variance objective, or exponential utility of the wealth at the horizon.
 
     Parameters
     ----------
@@ -127,8 +128,6 @@ class GridDPAgent(BaseEstimator):
     >>> target = agent.act([[1.0, problem.horizon_years, 0.0]])  # per share of notional
     """
 
-    label = "grid optimum"  # what reports call the kind
-
     def __init__(
         self,
         problem: HedgingProblem,
@@ -153,8 +152,8 @@ class GridDPAgent(BaseEstimator):
 
     # --- fitting --------------------------------------------------------------------------------
 
-    def fit(self, paths=None) -> GridDPAgent:
-        """Backward induction over the grid; ``paths`` is ignored (the agent is model-based).
+    def _prepare(self) -> None:
+        """The grids and arrays of a fit (:meth:`GridOptimum.fit` then inducts step by step back).
 
         How the step function is used: a step's P&L separates into a part that
         does not depend on the holding before the trade and a trade charge,
@@ -183,32 +182,31 @@ class GridDPAgent(BaseEstimator):
         steps = problem.schedule.steps
         # The problem's objective says what is solved: the per-step mean-variance E[sum_k r_k], or the
         # expected exponential utility of the wealth at the horizon (:meth:`_induct_exponential`).
-        exponential = problem.objective.certainty_equivalent
+        self.exponential_ = problem.objective.certainty_equivalent
         # Under exponential utility Q is kept as -log E[exp(-gamma W_T)]: level - charge x gamma_k, linear.
-        self.reward_coefficients_ = (1.0, 0.0) if exponential else reward_coefficients(problem)
+        self.reward_coefficients_ = (1.0, 0.0) if self.exponential_ else reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
         spots = np.exp(self.log_spots_)
         self.holdings_ = self._holding_grid(spots)
         shape = (steps, self.spot_points, self.holding_points)
         self.value_ = np.empty(shape)
         self.policy_ = np.empty(shape)
-        separable = not problem.frictions.permanent_impact
-        if separable:
+        self.separable_ = not problem.frictions.permanent_impact
+        if self.separable_:
             self.no_trade_value_ = np.empty(shape)
             self.cost_weight_ = np.empty(shape)
             self._check_separation(spots)
-        value_next = None
-        for k in reversed(range(steps)):
-            nodes, weights = self._quadrature(k, spots)
-            next_spots = spots[:, None] * self._growth(nodes)
-            if exponential:
-                self._induct_exponential(k, spots, next_spots, weights, value_next)
-            elif separable:
-                self._induct_separated(k, spots, next_spots, weights, value_next)
-            else:
-                self._induct_directly(k, spots, next_spots, weights, value_next)
-            value_next = self.value_[k]
-        return self
+
+    def _induct_step(self, k: int, value_next) -> None:
+        spots = np.exp(self.log_spots_)
+        nodes, weights = self._quadrature(k, spots)
+        next_spots = spots[:, None] * self._growth(nodes)
+        if self.exponential_:
+            self._induct_exponential(k, spots, next_spots, weights, value_next)
+        elif self.separable_:
+            self._induct_separated(k, spots, next_spots, weights, value_next)
+        else:
+            self._induct_directly(k, spots, next_spots, weights, value_next)
 
     def _validate_parameters(self) -> None:
         if not isinstance(self.problem, HedgingProblem):
@@ -448,12 +446,6 @@ class GridDPAgent(BaseEstimator):
         """Target holding per share of notional, ``Q_k`` evaluated at every row over every grid target."""
         return self._best(obs)[0] / self.problem.notional_shares
 
-    def value(self, obs) -> np.ndarray:
-        """``V_k`` at observation rows, currency: the optimal expected sum of rewards from their state
-        on; under exponential utility the certainty equivalent of the wealth at the horizon."""
-        objective = self.problem.objective
-        return objective.form.value_in_money(objective, self._best(obs)[1])
-
     def _decode(self, obs):
         check_is_fitted(self, "value_")
         obs = np.asarray(obs, dtype=float)
@@ -479,24 +471,13 @@ class GridDPAgent(BaseEstimator):
                     targets[chunk], values[chunk] = self._interpolate_tables(k, spot, held)
         return targets, values
 
-    def _q_table(self, k: int) -> tuple[np.ndarray, np.ndarray]:
+    def _make_q_table(self, k: int) -> tuple[np.ndarray, np.ndarray]:
         """Cubic spline in log spot of ``no_trade_value_[k]`` and ``cost_weight_[k]``: the knots, and
-        the coefficients as (interval, target, 2, power) so that a row's are read in one piece.
-
-        Kept once built (about 2 MB a time at the default grid; not pickled):
-        a rollout asks for every time once per chunk of paths.
-        """
-        cache = self.__dict__.setdefault("_q_tables", {})
-        if k not in cache:
-            stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
-            spline = CubicSpline(self.log_spots_, stacked, axis=0)
-            cache[k] = (spline.x, np.ascontiguousarray(spline.c.transpose(1, 2, 3, 0)))
-        return cache[k]
-
-    def __getstate__(self):
-        state = dict(super().__getstate__())
-        state.pop("_q_tables", None)  # a cache, rebuilt on use
-        return state
+        the coefficients as (interval, target, 2, power) so that a row's are read in one piece (about
+        2 MB a time at the default grid)."""
+        stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
+        spline = CubicSpline(self.log_spots_, stacked, axis=0)
+        return spline.x, np.ascontiguousarray(spline.c.transpose(1, 2, 3, 0))
 
     def _tabulated_targets(self, k: int, spot, held) -> np.ndarray:
         """The targets of :meth:`_best_exact`, in shares, at a fraction of its cost.

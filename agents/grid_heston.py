@@ -37,9 +37,9 @@ from numpy.polynomial.hermite_e import hermegauss
 from numpy.polynomial.laguerre import laggauss
 from scipy.interpolate import CubicSpline
 from scipy.special import logsumexp
-from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
+from agents.grid_base import GridOptimum
 from agents.grid_numerics import (
     affine_pieces,
     best_targets,
@@ -51,7 +51,7 @@ from agents.grid_numerics import (
     trade_charge,
 )
 from agents.policy import decode
-from hedge_env.market import QE_PSI_SWITCH
+from hedge_env.market import QE_PSI_SWITCH, HestonMarket
 from hedge_env.problem import HedgingProblem
 from hedge_env.step import HedgeState, hedge_step
 
@@ -63,15 +63,17 @@ DEFAULT_GRID = {"spot_points": 61, "variance_points": 61, "holding_points": 151,
 _CHUNK_ELEMENTS = 1 << 18
 
 
-class HestonGridDPAgent(BaseEstimator):
-    """Grid dynamic-programming optimum of the per-step mean-variance objective under Heston.
+class HestonGridDPAgent(GridOptimum):
+    """Grid dynamic-programming optimum under Heston of the problem's objective: the per-step
+    mean-variance objective, or exponential utility of the wealth at the horizon.
 
     Parameters
     ----------
     problem : HedgingProblem
         With Heston model marks whose variance is observed (``mark_state_column``).
-    drift, initial_variance, mean_reversion, long_run_variance, vol_of_vol, correlation : float
-        The Heston market the expectation is taken under (real-world drift).
+    market : hedge_env.market.HestonMarket
+        The Heston market the expectation is taken under (real-world drift): its parameters and
+        its QE scheme's constants (``qe_step``), the law the paths are drawn from.
     spot_points, variance_points, holding_points : int
         Points of the log-spot grid, of the variance grid (equally spaced in volatility from 0)
         and of the holding grid (also the candidate targets).
@@ -103,22 +105,14 @@ class HestonGridDPAgent(BaseEstimator):
     without financing).
     """
 
-    label = "grid optimum"  # what reports call the kind
-
-    def __init__(self, problem: HedgingProblem, drift: float = 0.0, initial_variance: float = 0.04,
-                 mean_reversion: float = 2.0, long_run_variance: float = 0.04, vol_of_vol: float = 0.5,
-                 correlation: float = -0.7, spot_points: int = DEFAULT_GRID["spot_points"],
+    def __init__(self, problem: HedgingProblem, market: HestonMarket | None = None,
+                 spot_points: int = DEFAULT_GRID["spot_points"],
                  variance_points: int = DEFAULT_GRID["variance_points"],
                  holding_points: int = DEFAULT_GRID["holding_points"],
                  variance_nodes: int = DEFAULT_GRID["variance_nodes"], spot_nodes: int = DEFAULT_GRID["spot_nodes"],
-                 log_spot_width: float = 8.0, variance_quantile: float = 0.999, name: str = "grid_dp"):
+                 log_spot_width: float = 8.0, variance_quantile: float = 0.999, name: str = "heston_grid_dp"):
         self.problem = problem
-        self.drift = drift
-        self.initial_variance = initial_variance
-        self.mean_reversion = mean_reversion
-        self.long_run_variance = long_run_variance
-        self.vol_of_vol = vol_of_vol
-        self.correlation = correlation
+        self.market = market
         self.spot_points = spot_points
         self.variance_points = variance_points
         self.holding_points = holding_points
@@ -132,10 +126,14 @@ class HestonGridDPAgent(BaseEstimator):
     def factor_names(self) -> tuple[str, ...]:
         return ("variance",)
 
+    def _market(self) -> HestonMarket:
+        """The market solved: the given one, or the default Heston market."""
+        return HestonMarket() if self.market is None else self.market
+
     # --- fitting --------------------------------------------------------------------------------
 
-    def fit(self, paths=None) -> HestonGridDPAgent:
-        """Backward induction over the grid; ``paths`` is ignored (the agent is model-based)."""
+    def _prepare(self) -> None:
+        """The grids and arrays of a fit (:meth:`GridOptimum.fit` then inducts step by step back)."""
         problem = self.problem
         if problem.mark_model is None or problem.mark_state_column is None:
             raise ValueError("the Heston grid optimum needs Heston model marks with the variance observed")
@@ -145,29 +143,28 @@ class HestonGridDPAgent(BaseEstimator):
                 self.variance_nodes, self.spot_nodes) < 2:
             raise ValueError("need spot_points, variance_points, holding_points >= 4 and quadrature nodes >= 2")
         steps = problem.schedule.steps
-        exponential = problem.objective.certainty_equivalent
         # Under exponential utility Q is kept as -log E[exp(-gamma W_T)]: level - charge x gamma_k, linear.
-        self.reward_coefficients_ = (1.0, 0.0) if exponential else reward_coefficients(problem)
+        self.exponential_ = problem.objective.certainty_equivalent
+        self.reward_coefficients_ = (1.0, 0.0) if self.exponential_ else reward_coefficients(problem)
         self.log_spots_ = self._log_spot_grid()
         self.variances_ = self._variance_grid()
-        spots = np.exp(self.log_spots_)
-        self.holdings_ = self._holding_grid(spots)
-        shape = (steps, spots.size, self.variances_.size, self.holdings_.size)
+        self.holdings_ = self._holding_grid(np.exp(self.log_spots_))
+        shape = (steps, self.spot_points, self.variances_.size, self.holdings_.size)
         self.value_, self.policy_ = np.empty(shape), np.empty(shape)
         self.no_trade_value_, self.cost_weight_ = np.empty(shape), np.empty(shape)
-        value_next = None
-        for k in reversed(range(steps)):
-            next_spots, next_variances, weights = self._transition(k, spots)
-            induct = self._induct_exponential if exponential else self._induct
-            induct(k, spots, next_spots, next_variances, weights, value_next)
-            value_next = self.value_[k]
-        return self
+
+    def _induct_step(self, k: int, value_next) -> None:
+        spots = np.exp(self.log_spots_)
+        next_spots, next_variances, weights = self._transition(k, spots)
+        induct = self._induct_exponential if self.exponential_ else self._induct
+        induct(k, spots, next_spots, next_variances, weights, value_next)
 
     def _log_spot_grid(self) -> np.ndarray:
         problem = self.problem
-        vol = math.sqrt(max(self.initial_variance, self.long_run_variance))
+        market = self._market()
+        vol = math.sqrt(max(market.initial_variance, market.long_run_variance))
         horizon = problem.horizon_years
-        centre = math.log(problem.reference_spot) + (self.drift - 0.5 * vol * vol) * horizon / 2
+        centre = math.log(problem.reference_spot) + (market.drift - 0.5 * vol * vol) * horizon / 2
         half_width = 0.5 * self.log_spot_width * vol * math.sqrt(horizon)
         return np.linspace(centre - half_width, centre + half_width, self.spot_points)
 
@@ -177,7 +174,8 @@ class HestonGridDPAgent(BaseEstimator):
         and long-run variances; equally spaced in volatility."""
         from scipy.stats import ncx2
 
-        kappa, theta, xi, v0 = self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.initial_variance
+        market = self._market()
+        kappa, theta, xi, v0 = market.mean_reversion, market.long_run_variance, market.vol_of_vol, market.initial_variance
         high = 2.0 * max(v0, theta)
         horizon = self.problem.horizon_years
         if kappa > 0 and xi > 0 and theta > 0:
@@ -201,14 +199,12 @@ class HestonGridDPAgent(BaseEstimator):
     def _transition(self, k: int, spots: np.ndarray):
         """Next spots and variances and their weights per (spot, variance) state: arrays of shape
         (spot, variance, variance node, spot node)."""
-        problem = self.problem
+        problem, market = self.problem, self._market()
         dt = problem.dt_years
-        kappa, theta, xi, rho = self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation
+        qe = market.qe_step(dt)
         v = self.variances_
-        decay = math.exp(-kappa * dt)
-        fraction = -math.expm1(-kappa * dt) / kappa if kappa > 0 else dt
-        mean = theta * (1.0 - decay) + decay * v
-        spread = 0.5 * theta * xi * xi * kappa * fraction * fraction + xi * xi * decay * fraction * v
+        mean = qe.mean_const + qe.mean_slope * v
+        spread = qe.spread_const + qe.spread_slope * v
         psi = spread / np.maximum(mean * mean, 1e-300)
         n = self.variance_nodes
         # Quadratic branch: v' = a (b + z)^2 at Gauss-Hermite z.
@@ -228,9 +224,7 @@ class HestonGridDPAgent(BaseEstimator):
         next_v = np.where(large, exponential, quadratic)                         # (variance, node)
         v_weights = np.where(large, exp_weights, np.broadcast_to(wz, (v.size, n)))
         # The spot given v and v': the scheme's K constants with gamma1 = gamma2 = 1/2.
-        rho_over_xi = rho / xi if xi > 0 else 0.0
-        k2 = 0.5 * dt * (kappa * rho_over_xi - 0.5) + rho_over_xi
-        k3 = 0.5 * dt * (1.0 - (rho * rho if xi > 0 else 0.0))
+        k2, k3 = qe.k2, qe.k3
         scale = np.sqrt(k3 * (v[:, None] + next_v))                                # (variance, node)
         centre = -0.5 * k3 * v[:, None] + k2 * next_v
         schedule, book = problem.schedule, problem.book
@@ -242,7 +236,7 @@ class HestonGridDPAgent(BaseEstimator):
             # martingale correction of the exact normal (the quadrature's own, below, differs from it
             # only by the variance quadrature's error).
             approximate = -np.log((v_weights * np.exp(centre + 0.5 * scale * scale)).sum(axis=1, keepdims=True))
-            base = log_spots[:, None, None] + (centre + approximate)[None] + self.drift * dt
+            base = log_spots[:, None, None] + (centre + approximate)[None] + market.drift * dt
             zs, ws = normal_quadrature(self.spot_nodes, np.exp(base).ravel(), strikes, 0.0,
                                        np.broadcast_to(np.maximum(scale, 1e-12)[None], base.shape).reshape(-1, 1))
             zs = zs.reshape(*base.shape, -1)
@@ -256,7 +250,7 @@ class HestonGridDPAgent(BaseEstimator):
         weights = v_weights[None, :, :, None] * ws
         # The martingale correction on the quadrature itself: E[S'/S] = exp(drift dt) exactly.
         shift = -np.log((weights * np.exp(move)).sum(axis=(2, 3), keepdims=True))
-        log_next = log_spots[:, None, None, None] + self.drift * dt + shift + move
+        log_next = log_spots[:, None, None, None] + market.drift * dt + shift + move
         shape = np.broadcast_shapes(log_next.shape, weights.shape)
         next_variances = np.broadcast_to(next_v[None, :, :, None], shape)
         return np.exp(np.broadcast_to(log_next, shape)), next_variances, np.broadcast_to(weights, shape)
@@ -366,13 +360,6 @@ class HestonGridDPAgent(BaseEstimator):
         variance and holding, over every grid target and "no trade"."""
         return self._best(obs)[0] / self.problem.notional_shares
 
-    def value(self, obs) -> np.ndarray:
-        """``V_k`` at observation rows, currency: the optimal expected sum of rewards from their state on;
-        under exponential utility the certainty equivalent of the wealth at the horizon."""
-        value = self._best(obs)[1]
-        objective = self.problem.objective
-        return objective.form.value_in_money(objective, value)
-
     def _best(self, obs):
         check_is_fitted(self, "value_")
         obs = np.asarray(obs, dtype=float)
@@ -407,18 +394,10 @@ class HestonGridDPAgent(BaseEstimator):
                 values[block] = np.where(stay, stay_q, q[pick, best])
         return targets, values
 
-    def _q_table(self, k: int) -> _SpotVarianceTable:
-        """``no_trade_value_[k]`` and ``cost_weight_[k]`` as one table in (log spot, variance); cached."""
-        cache = self.__dict__.setdefault("_q_tables", {})
-        if k not in cache:
-            stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
-            cache[k] = _SpotVarianceTable(self.log_spots_, self.variances_, stacked)
-        return cache[k]
-
-    def __getstate__(self):
-        state = dict(super().__getstate__())
-        state.pop("_q_tables", None)  # a cache, rebuilt on use
-        return state
+    def _make_q_table(self, k: int) -> _SpotVarianceTable:
+        """``no_trade_value_[k]`` and ``cost_weight_[k]`` as one table in (log spot, variance)."""
+        stacked = np.stack([self.no_trade_value_[k], self.cost_weight_[k]], axis=-1)
+        return _SpotVarianceTable(self.log_spots_, self.variances_, stacked)
 
 
 class _SpotVarianceTable:

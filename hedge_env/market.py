@@ -21,6 +21,8 @@ from dataclasses import dataclass, field, fields
 import numpy as np
 from scipy.special import ndtr
 
+from hedge_env.model_pricing import HestonPricer, MertonPricer
+
 BLOCK_PATHS = 4096
 
 # Andersen's switching level of psi = (variance of the next variance) / (its mean)^2 between the
@@ -79,6 +81,8 @@ class PathGenerator(ABC):
 
     factor_names: tuple[str, ...] = ()
     observed_factors: tuple[str, ...] = ()
+    # Whether the model prices options itself (``mark_pricer``): then its marks can be the model's.
+    has_model_marks = False
     # Paths the source can give (None: as many as asked, e.g. a simulated model).
     max_paths: int | None = None
 
@@ -181,6 +185,22 @@ class GBMMarket(SimulatedMarket):
 
 
 @dataclass(frozen=True)
+class QEStep:
+    """Constants of one step of Andersen's QE scheme: the next variance's conditional mean
+    ``mean_const + mean_slope v`` and variance ``spread_const + spread_slope v``, and the log spot's
+    K constants (gamma1 = gamma2 = 1/2; ``k4 = k3``)."""
+
+    mean_const: float
+    mean_slope: float
+    spread_const: float
+    spread_slope: float
+    k0: float
+    k1: float
+    k2: float
+    k3: float
+
+
+@dataclass(frozen=True)
 class HestonMarket(SimulatedMarket):
     """Heston stochastic volatility, real-world drift:
 
@@ -243,13 +263,37 @@ class HestonMarket(SimulatedMarket):
     variance_observed: bool = False
 
     factor_names = ("variance",)
+    has_model_marks = True
 
     @property
     def observed_factors(self) -> tuple[str, ...]:  # type: ignore[override]
         return ("variance",) if self.variance_observed else ()
 
-    def _simulate(self, rng: np.random.Generator, n_paths: int, n_steps: int, dt_years: float) -> MarketPaths:
+    def mark_pricer(self, rate: float, dividend_yield: float) -> HestonPricer:
+        """The model's own (risk-neutral) pricer for model marks."""
+        return HestonPricer(self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation,
+                            rate, dividend_yield)
+
+    def qe_step(self, dt_years: float) -> QEStep:
+        """The QE scheme's constants for a step of ``dt_years``: the one home of the formulas, read by
+        the path simulation and by the Heston grid optimum's quadrature (agents.grid_heston)."""
         kappa, theta, xi, rho = self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation
+        decay = math.exp(-kappa * dt_years)
+        # (1 - e^{-kappa dt}) / kappa, with its limit dt at kappa = 0
+        fraction = -math.expm1(-kappa * dt_years) / kappa if kappa > 0 else dt_years
+        # Andersen's K constants with gamma1 = gamma2 = 1/2 (central rule for the integrated variance).
+        rho_over_xi = rho / xi if xi > 0 else 0.0
+        return QEStep(
+            mean_const=theta * (1.0 - decay), mean_slope=decay,
+            spread_const=0.5 * theta * xi * xi * kappa * fraction * fraction, spread_slope=xi * xi * decay * fraction,
+            k0=-rho_over_xi * kappa * theta * dt_years,
+            k1=0.5 * dt_years * (kappa * rho_over_xi - 0.5) - rho_over_xi,
+            k2=0.5 * dt_years * (kappa * rho_over_xi - 0.5) + rho_over_xi,
+            k3=0.5 * dt_years * (1.0 - (rho * rho if xi > 0 else 0.0)),
+        )
+
+    def _simulate(self, rng: np.random.Generator, n_paths: int, n_steps: int, dt_years: float) -> MarketPaths:
+        xi = self.vol_of_vol
         # Time-major work arrays: each step reads and writes contiguous rows.
         shocks = rng.standard_normal((n_steps, 2, n_paths))
         variance = np.empty((n_steps + 1, n_paths))
@@ -257,18 +301,11 @@ class HestonMarket(SimulatedMarket):
         variance[0] = self.initial_variance
         log_spot[0] = math.log(self.spot)
 
-        decay = math.exp(-kappa * dt_years)
-        # (1 - e^{-kappa dt}) / kappa, with its limit dt at kappa = 0
-        fraction = -math.expm1(-kappa * dt_years) / kappa if kappa > 0 else dt_years
-        mean_const, mean_slope = theta * (1.0 - decay), decay               # m = mean_const + mean_slope v
-        spread_const = 0.5 * theta * xi * xi * kappa * fraction * fraction  # s^2 = spread_const + spread_slope v
-        spread_slope = xi * xi * decay * fraction
-        # Andersen's K constants with gamma1 = gamma2 = 1/2 (central rule for the integrated variance).
-        rho_over_xi = rho / xi if xi > 0 else 0.0
-        k0 = -rho_over_xi * kappa * theta * dt_years
-        k1 = 0.5 * dt_years * (kappa * rho_over_xi - 0.5) - rho_over_xi
-        k2 = 0.5 * dt_years * (kappa * rho_over_xi - 0.5) + rho_over_xi
-        k3 = k4 = 0.5 * dt_years * (1.0 - (rho * rho if xi > 0 else 0.0))
+        qe = self.qe_step(dt_years)
+        mean_const, mean_slope = qe.mean_const, qe.mean_slope        # m = mean_const + mean_slope v
+        spread_const, spread_slope = qe.spread_const, qe.spread_slope  # s^2 = spread_const + spread_slope v
+        k0, k1, k2, k3 = qe.k0, qe.k1, qe.k2, qe.k3
+        k4 = k3
         a_coef = k2 + 0.5 * k4  # E[exp(a_coef v')] is what the martingale correction divides out
         drift_step = self.drift * dt_years
 
@@ -398,10 +435,16 @@ class MertonMarket(SimulatedMarket):
     jump_mean: float = 0.0
     jump_std: float = 0.0
 
+    has_model_marks = True
+
     @property
     def jump_compensator(self) -> float:
         """k = E[J - 1], the mean relative size of a jump."""
         return math.expm1(self.jump_mean + 0.5 * self.jump_std**2)
+
+    def mark_pricer(self, rate: float, dividend_yield: float) -> MertonPricer:
+        """The model's own (risk-neutral) pricer for model marks."""
+        return MertonPricer(self.volatility, self.jump_intensity, self.jump_mean, self.jump_std, rate, dividend_yield)
 
     def _simulate(self, rng: np.random.Generator, n_paths: int, n_steps: int, dt_years: float) -> MarketPaths:
         shocks = rng.standard_normal((n_paths, n_steps))

@@ -43,7 +43,9 @@ def build_problem(config: Config) -> HedgingProblem:
         OptionLeg(o.kind, o.strike, o.expiry_days, o.quantity, o.multiplier) for o in config.book.options
     )
     limit = frictions.position_limit_shares
-    model = market.mark_pricer() if config.pricing.marks == "model" else None
+    model = None
+    if config.pricing.marks == "model":  # the market model's own pricer (hedge_env.market, has_model_marks)
+        model = build_market(config).mark_pricer(market.rate, market.dividend_yield)
     return HedgingProblem(
         book=Book(legs),
         marks=MarkParameters(
@@ -169,13 +171,10 @@ def build_agent(spec, problem: HedgingProblem, market: PathGenerator):
 
 
 def tuned_parameters(config: Config) -> dict[str, str]:
-    """Baseline name -> parameter name, for every baseline whose parameter is "tune"."""
-    wanted = {}
-    for spec in config.baselines:
-        for parameter in ("risk_aversion", "half_width"):
-            if getattr(spec, parameter, None) == "tune":
-                wanted[spec.name] = parameter
-    return wanted
+    """Baseline name -> parameter name, for every baseline with a field set to "tune" (the schema lets
+    only a tunable field take it, agents.tuning.search_space gives its search)."""
+    return {spec.name: parameter for spec in config.baselines
+            for parameter, value in spec if isinstance(value, str) and value == "tune"}
 
 
 def training_path_set(config: Config, market: PathGenerator, problem: HedgingProblem) -> PathSet:

@@ -32,7 +32,7 @@ from pydantic_core import PydanticCustomError
 
 from agents.grid_heston import DEFAULT_GRID as HESTON_GRID_DEFAULTS
 from agents.registry import REGRESSORS
-from hedge_env.model_pricing import HestonPricer, MertonPricer
+from hedge_env.market import MARKET_MODELS
 from hedge_env.objective import OBJECTIVE_FORMS, Objective
 
 # ---------------------------------------------------------------------------
@@ -239,11 +239,6 @@ class HestonMarket(_SimulatedMarketSpec):
         weight = -math.expm1(-decay) / decay if decay > 0 else 1.0
         return math.sqrt(self.long_run_variance + (self.initial_variance - self.long_run_variance) * weight)
 
-    def mark_pricer(self) -> HestonPricer:
-        """The model's own (risk-neutral) pricer for model marks."""
-        return HestonPricer(self.mean_reversion, self.long_run_variance, self.vol_of_vol, self.correlation,
-                            self.rate, self.dividend_yield)
-
     def describe(self) -> str:
         """One line for reports."""
         return (f"Heston (QE scheme): spot {self.spot:g}, drift {_pct(self.drift)}, initial variance "
@@ -267,11 +262,6 @@ class MertonMarket(_SimulatedMarketSpec):
         """Default mark volatility: the total volatility of log returns, diffusion and jumps,
         sqrt(volatility^2 + jump_intensity (jump_mean^2 + jump_std^2))."""
         return math.sqrt(self.volatility**2 + self.jump_intensity * (self.jump_mean**2 + self.jump_std**2))
-
-    def mark_pricer(self) -> MertonPricer:
-        """The model's own (risk-neutral) pricer for model marks."""
-        return MertonPricer(self.volatility, self.jump_intensity, self.jump_mean, self.jump_std, self.rate,
-                            self.dividend_yield)
 
     def describe(self) -> str:
         """One line for reports."""
@@ -740,9 +730,8 @@ class HestonGridDPAgentSpec(_NamedPolicy):
                             description="Gauss-Hermite nodes of the next spot given the variance.")
 
     def model_inputs(self, market) -> dict:
-        """Constructor arguments that the agent takes from the Heston market it solves."""
-        return {key: getattr(market, key) for key in ("drift", "initial_variance", "mean_reversion",
-                                                      "long_run_variance", "vol_of_vol", "correlation")}
+        """Constructor arguments that the agent takes from outside its own fields: the Heston market it solves."""
+        return {"market": market}
 
 
 AgentSpec = Annotated[
@@ -832,11 +821,13 @@ class Config(_Spec):
         # Cross-section defaults, so the validated config is fully resolved.
         if isinstance(self.market, HistoricalMarket):
             self._resolve_historical()
-        model_marks = self.market.model in ("heston", "merton")
+        # A market model declares whether it prices options itself (hedge_env.market, has_model_marks).
+        priced = [name for name, model in MARKET_MODELS.items() if model.has_model_marks]
+        model_marks = self.market.model in priced
         if self.pricing.marks is None:
             self.pricing.marks = "model" if model_marks else "black_scholes"
         if self.pricing.marks == "model" and not model_marks:
-            raise _rule(f"'model' needs a heston or merton market (the {self.market.model} market's marks are "
+            raise _rule(f"'model' needs a {' or '.join(priced)} market (the {self.market.model} market's marks are "
                         "Black-Scholes)", "pricing", "marks")
         if self.pricing.marks == "model" and isinstance(self.market, HestonMarket):
             for key in ("vol_of_vol", "mean_reversion", "long_run_variance"):

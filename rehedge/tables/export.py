@@ -143,6 +143,8 @@ def _json_safe(value):
         return [_json_safe(v) for v in value]
     if isinstance(value, dict):
         return {str(k): _json_safe(v) for k, v in value.items()}
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):  # a market the policy solves
+        return {f.name: _json_safe(getattr(value, f.name)) for f in dataclasses.fields(value)}
     return repr(value)
 
 

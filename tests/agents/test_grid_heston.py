@@ -44,9 +44,7 @@ def _solved(cost: float, drift: float):
     problem = HedgingProblem(Book((OptionLeg("call", 100.0, 10, -10.0, 100.0),)), MarkParameters(volatility=0.2),
                              Frictions(cost_rate=cost), objective=Objective(0.002), schedule=Schedule(10, 1.0),
                              mark_model=HestonPricer(KAPPA, THETA, XI, RHO), mark_state_column=3)
-    agent = HestonGridDPAgent(problem, drift=drift, initial_variance=0.04, mean_reversion=KAPPA,
-                              long_run_variance=THETA, vol_of_vol=XI, correlation=RHO, spot_points=61,
-                              variance_points=21, holding_points=101).fit()
+    agent = HestonGridDPAgent(problem, _market(drift), spot_points=61, variance_points=21, holding_points=101).fit()
     results = rollout_many(problem, {"grid": agent, "mv": MinimumVarianceDelta(problem)}, _market(drift), PATHS,
                            SEED)
     return problem, agent, results["grid"].reward, results["mv"].reward
@@ -97,9 +95,7 @@ def test_under_exponential_utility_the_heston_grid_start_value_is_its_own_held_o
     base, _, _, _ = _solved(0.002, 0.05)
     gamma = 0.002
     problem = replace(base, objective=Objective(gamma, kind="exponential"))
-    agent = HestonGridDPAgent(problem, drift=0.05, initial_variance=0.04, mean_reversion=KAPPA,
-                              long_run_variance=THETA, vol_of_vol=XI, correlation=RHO, spot_points=61,
-                              variance_points=21, holding_points=101).fit()
+    agent = HestonGridDPAgent(problem, _market(0.05), spot_points=61, variance_points=21, holding_points=101).fit()
     results = rollout_many(problem, {"grid": agent, "mv": MinimumVarianceDelta(problem)}, _market(0.05), PATHS, SEED)
     start = agent.value(np.array([[1.0, problem.horizon_years, 0.0, 0.04]]))[0]
     weights = np.exp(-gamma * results["grid"].pnl)
