@@ -90,12 +90,23 @@ def build_market(config: Config) -> PathGenerator:
     return construct(MARKET_MODELS[config.market.model], config.market)
 
 
+# Config fields that the application reads rather than the class it builds: the kind's name, what an agent
+# learns from (its exploration, whether it is blind to the factors, its regressor's parameters), the
+# market's rate and dividend yield (the marks').
+APPLICATION_FIELDS = frozenset({"kind", "model", "blind", "exploration", "regressor_params", "rate", "dividend_yield"})
+
+
 def construct(cls, spec, **given):
     """``cls(...)`` with ``given`` arguments, then every other parameter of ``cls`` that ``spec`` has as a
     field (a list becomes a tuple; None, and "tune" for a parameter still to be tuned, keep the class
-    default). Adding a kind is its class and its schema: the names match."""
+    default). Adding a kind is its class and its schema: the names match, and a schema field that names
+    no parameter (nor an ``APPLICATION_FIELDS`` one) is a TypeError, not silently dropped."""
+    parameters = inspect.signature(cls).parameters
+    stray = sorted(set(type(spec).model_fields) - set(parameters) - APPLICATION_FIELDS)
+    if stray:
+        raise TypeError(f"{type(spec).__name__} has fields {stray} that {cls.__name__} does not take")
     arguments = dict(given)
-    for name in inspect.signature(cls).parameters:
+    for name in parameters:
         value = getattr(spec, name, None)
         if name in arguments or value is None or (isinstance(value, str) and value == "tune"):
             continue

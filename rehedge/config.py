@@ -28,7 +28,8 @@ from pydantic import BaseModel, ValidationError
 from rehedge.budget import check_memory
 from rehedge.errors import ConfigError, one_line
 from rehedge.files import CONFIG_BYTES, read_regular
-from rehedge.schema import Config, _num, _show
+from rehedge.schema import Config
+from rehedge.schema.base import _num, _show
 
 _BARE_KEY_RE = re.compile(r"[A-Za-z0-9_-]+")
 

@@ -31,7 +31,7 @@ floating-point range (a model mild on each key, wild over a long horizon) ends t
 naming the market keys; an exponential objective whose risk aversion is beyond what the learned
 agents' fit can carry ends it naming `objective.risk_aversion` (agents/certainty.py).
 
-This page is generated from rehedge/schema.py (`python -m rehedge.config_ranges`); a test checks it.
+This page is generated from rehedge/schema/ (`python -m rehedge.config_ranges`); a test checks it.
 
 ## Why these bounds
 
@@ -41,7 +41,7 @@ This page is generated from rehedge/schema.py (`python -m rehedge.config_ranges`
 def _reasons() -> str:
     """The schema's named bounds with the comment that gives each its reason."""
     lines = []
-    for line in inspect.getsource(schema).splitlines():
+    for line in inspect.getsource(schema.base).splitlines():
         match = re.match(r"^([A-Z][A-Z_]+) = (.+?)(?:\s+#\s*(.*))?$", line)
         if match and re.search(r"_(RANGE|MAX|MIN)$", match.group(1)):
             name, value, reason = match.groups()

@@ -558,3 +558,33 @@ def test_the_config_ranges_page_is_what_the_schema_checks():
     page = (Path(__file__).resolve().parents[2] / "docs" / "config-ranges.md").read_text()
     assert page == ranges_markdown(), "regenerate: python -m rehedge.config_ranges > docs/config-ranges.md"
     assert "| any |" not in page  # every numeric key has a documented range
+
+
+def test_every_policy_and_market_field_is_a_parameter_of_its_class_or_an_application_field():
+    # rehedge.build.construct passes a spec's fields to its class by name: a field that matches no
+    # parameter would be dropped without a word, so it must be one the application reads itself.
+    import inspect
+    import typing
+
+    from agents.registry import AGENTS, BASELINES
+    from hedge_env.market import MARKET_MODELS
+    from rehedge import schema
+    from rehedge.build import APPLICATION_FIELDS, construct
+
+    checked = 0
+    for union, registry, key in ((schema.BaselineSpec, BASELINES, "kind"), (schema.AgentSpec, AGENTS, "kind"),
+                                 (schema.MarketSpec, MARKET_MODELS, "model")):
+        for spec in typing.get_args(typing.get_args(union)[0]):
+            kind = typing.get_args(spec.model_fields[key].annotation)[0]
+            if kind not in registry:  # a history is read, not constructed
+                continue
+            stray = set(spec.model_fields) - set(inspect.signature(registry[kind]).parameters) - APPLICATION_FIELDS
+            assert not stray, (spec.__name__, stray)
+            checked += 1
+    assert checked == len(BASELINES) + len(AGENTS) + len(MARKET_MODELS)
+
+    class Misspelt(schema.DeltaBaseline):
+        volatilty: float | None = None
+
+    with pytest.raises(TypeError, match="volatilty"):
+        construct(BASELINES["delta"], Misspelt(kind="delta", name="delta"))
