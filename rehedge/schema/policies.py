@@ -59,6 +59,12 @@ class LelandBaseline(_NamedPolicy):
     )
 
 
+# The hedge a band sits around (agents.baselines.BAND_CENTERS), one field type for every band.
+BandCenter = Annotated[Literal["delta", "model_delta", "minimum_variance_delta"], Field(
+    description="The hedge the band is centred on: the Black-Scholes 'delta', or (with model marks) "
+                "'model_delta' or 'minimum_variance_delta'.")]
+
+
 class WhalleyWilmottBaseline(_NamedPolicy):
     """No-trade band around delta with the Whalley-Wilmott asymptotic width."""
 
@@ -67,9 +73,7 @@ class WhalleyWilmottBaseline(_NamedPolicy):
     risk_aversion: Annotated[float | Literal["tune"], _tunable(strictly_positive=True, high=RISK_AVERSION_MAX)] = Field(
         "tune", description="Risk aversion in the band formula, per currency unit, or 'tune' to fit it."
     )
-    center: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
-        "delta", description="The hedge the band is centred on: the Black-Scholes 'delta', or (with model marks) "
-                             "'model_delta' or 'minimum_variance_delta'.")
+    center: BandCenter = "delta"
 
 
 class FixedBandBaseline(_NamedPolicy):
@@ -80,9 +84,7 @@ class FixedBandBaseline(_NamedPolicy):
     half_width: Annotated[float | Literal["tune"], _tunable(strictly_positive=False, high=HALF_WIDTH_MAX)] = Field(
         "tune", description="Band half-width in shares per share of book notional, or 'tune' to fit it."
     )
-    center: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
-        "delta", description="The hedge the band is centred on: the Black-Scholes 'delta', or (with model marks) "
-                             "'model_delta' or 'minimum_variance_delta'.")
+    center: BandCenter = "delta"
 
 
 class ModelDeltaBaseline(_NamedPolicy):
