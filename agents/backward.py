@@ -208,6 +208,17 @@ class BackwardQAgent(BaseEstimator):
     ``_predict(k, X)`` for an array of shape (..., n_basis).
     """
 
+    # What an agent kind solves, declared on its class and read by the config's rules
+    # (rehedge.schema.rules): the market models (None: any, learning from paths), whether it needs the
+    # model's marks with their state observed, and whether it handles permanent impact under an objective.
+    solves_markets: tuple[str, ...] | None = None
+    market_words = ""
+    needs_model_state = False
+
+    @classmethod
+    def models_permanent_impact(cls, objective_form) -> bool:
+        return True
+
     def __init__(self, problem: HedgingProblem, basis, band_widths, partial_moves, factor_names, drift, anchor,
                  name):
         # The parameters every backward agent has, stored unchanged (scikit-learn's convention); a

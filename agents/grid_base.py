@@ -19,6 +19,14 @@ class GridOptimum(BaseEstimator):
     problem's objective says."""
 
     label = "grid optimum"  # what reports call the kind
+    # What a grid solves, as agents.backward.BackwardQAgent declares it: each grid names its markets.
+    solves_markets: tuple[str, ...] | None = None
+    market_words = ""
+    needs_model_state = False
+
+    @classmethod
+    def models_permanent_impact(cls, objective_form) -> bool:
+        return True
 
     def fit(self, paths=None):
         """Backward induction over the grid; ``paths`` is ignored (the agent is model-based)."""

@@ -128,6 +128,15 @@ class GridDPAgent(GridOptimum):
     >>> target = agent.act([[1.0, problem.horizon_years, 0.0]])  # per share of notional
     """
 
+    solves_markets = ("gbm",)
+    market_words = "a one-factor GBM market"
+
+    @classmethod
+    def models_permanent_impact(cls, objective_form) -> bool:
+        """Permanent impact breaks the separation of the trade's cost; the mean-variance induction then
+        goes through hedge_step at every state, the exponential one does not."""
+        return not objective_form.certainty_equivalent
+
     def __init__(
         self,
         problem: HedgingProblem,

@@ -105,6 +105,14 @@ class HestonGridDPAgent(GridOptimum):
     without financing).
     """
 
+    solves_markets = ("heston",)
+    market_words = "a Heston market"
+    needs_model_state = True  # its state is the spot, the variance and the holding
+
+    @classmethod
+    def models_permanent_impact(cls, objective_form) -> bool:
+        return False
+
     def __init__(self, problem: HedgingProblem, market: HestonMarket | None = None,
                  spot_points: int = DEFAULT_GRID["spot_points"],
                  variance_points: int = DEFAULT_GRID["variance_points"],

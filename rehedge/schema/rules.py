@@ -4,6 +4,7 @@ the order of ``CROSS_SECTION_RULES`` (defaults first, so later rules see them), 
 
 from __future__ import annotations
 
+from agents.registry import AGENTS
 from hedge_env.market import MARKET_MODELS
 from hedge_env.objective import OBJECTIVE_FORMS
 from rehedge.schema.base import _num, _rule, _show
@@ -126,28 +127,26 @@ def check_permanent_impact(config) -> None:
 
 
 def check_agent_markets(config) -> None:
-    """What each agent kind can solve: the grids' markets, marks and impact, and the fitted-Q agent's
-    linear stage under a certainty-equivalent objective."""
-    certainty = OBJECTIVE_FORMS[config.objective.kind].certainty_equivalent
+    """What each agent kind solves, as its class declares it (``solves_markets``, ``needs_model_state``,
+    ``models_permanent_impact``), and the fitted-Q agent's linear stage under a certainty-equivalent
+    objective."""
+    form = OBJECTIVE_FORMS[config.objective.kind]
+    model = config.market.model
     for i, agent in enumerate(config.agents):
-        if agent.kind == "grid_dp" and config.market.model != "gbm":
-            raise _rule(f"grid_dp solves a one-factor GBM market only, got market.model = "
-                        f"{config.market.model!r}" + (" (heston_grid_dp solves Heston)" if
-                                                      config.market.model == "heston" else ""),
-                        "agents", i, "kind")
-        if agent.kind == "heston_grid_dp":
-            if config.market.model != "heston":
-                raise _rule(f"heston_grid_dp solves a Heston market only, got market.model = "
-                            f"{config.market.model!r}", "agents", i, "kind")
-            if config.pricing.marks != "model" or not config.market.variance_observed:
-                raise _rule("heston_grid_dp needs pricing.marks = 'model' and market.variance_observed = "
-                            "true (its state is the spot, the variance and the holding)", "agents", i, "kind")
-            if config.frictions.permanent_impact:
-                raise _rule("heston_grid_dp does not model permanent impact", "agents", i, "kind")
-        if agent.kind == "grid_dp" and certainty and config.frictions.permanent_impact:
-            raise _rule("grid_dp under objective.kind = 'exponential' does not model permanent impact",
-                        "agents", i, "kind")
-        if agent.kind == "fitted_q" and certainty and agent.linear_basis == "none":
+        kind, cls = agent.kind, AGENTS[agent.kind]
+        if cls.solves_markets is not None and model not in cls.solves_markets:
+            others = [f"{name} solves {other.market_words}" for name, other in AGENTS.items()
+                      if other.solves_markets and model in other.solves_markets]
+            raise _rule(f"{kind} solves {cls.market_words} only, got market.model = {model!r}"
+                        + (f" ({'; '.join(others)})" if others else ""), "agents", i, "kind")
+        if cls.needs_model_state and (config.pricing.marks != "model" or not config.market.variance_observed):
+            raise _rule(f"{kind} needs pricing.marks = 'model' and market.variance_observed = true (its state is "
+                        "the spot, the variance and the holding)", "agents", i, "kind")
+        if config.frictions.permanent_impact and not cls.models_permanent_impact(form):
+            under = "" if not any(cls.models_permanent_impact(f) for f in OBJECTIVE_FORMS.values()) else (
+                f" under objective.kind = {config.objective.kind!r}")
+            raise _rule(f"{kind}{under} does not model permanent impact", "agents", i, "kind")
+        if kind == "fitted_q" and form.certainty_equivalent and agent.linear_basis == "none":
             raise _rule("must not be 'none' with objective.kind = 'exponential' (the linear stage carries the "
                         "value's level across states)", "agents", i, "linear_basis")
 

@@ -479,7 +479,7 @@ def test_the_heston_grid_optimum_needs_a_heston_market_with_model_marks_and_the_
     with pytest.raises(ConfigError) as wrong_kind:
         parse_config(data)
     assert str(wrong_kind.value) == ("agents[0].kind: grid_dp solves a one-factor GBM market only, got "
-                                     "market.model = 'heston' (heston_grid_dp solves Heston)")
+                                     "market.model = 'heston' (heston_grid_dp solves a Heston market)")
     data["agents"] = [{"kind": "heston_grid_dp"}]
     data["market"]["variance_observed"] = False
     data["baselines"] = [{"kind": "delta"}]
