@@ -3,6 +3,7 @@ the numeric keys and the checks fields share."""
 
 from __future__ import annotations
 
+import inspect
 import math
 import re
 from typing import Annotated, Any
@@ -148,6 +149,12 @@ def _tunable(strictly_positive: bool, high: float):
 
 
 PolicyName = Annotated[str, AfterValidator(_check_name)]
+
+
+def default_of(cls, parameter: str):
+    """The default of ``cls``'s constructor parameter: a schema field that fills that parameter takes
+    its default from the class, so the two cannot drift apart."""
+    return inspect.signature(cls).parameters[parameter].default
 
 
 class _Spec(BaseModel):

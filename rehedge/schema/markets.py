@@ -9,7 +9,10 @@ from typing import Annotated, Any, Literal, Union
 
 from pydantic import AfterValidator, BeforeValidator, Field, ValidationInfo, field_validator, model_validator
 
-from rehedge.schema.base import RATE_RANGE, ROWS_MAX, SPOT_RANGE, VARIANCE_MAX, VOLATILITY_RANGE, _Spec, _check_vol_of_vol, _open_unit_or_none, _rule, _show
+from rehedge.schema.base import (
+    RATE_RANGE, ROWS_MAX, SPOT_RANGE, VARIANCE_MAX, VOLATILITY_RANGE, _Spec, _check_vol_of_vol,
+    _open_unit_or_none, _rule, _show,
+)
 
 
 # ---------------------------------------------------------------------------

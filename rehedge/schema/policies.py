@@ -9,8 +9,14 @@ from typing import Annotated, Any, Literal, Union
 from pydantic import AfterValidator, Field, model_validator
 
 from agents.grid_heston import DEFAULT_GRID as HESTON_GRID_DEFAULTS
+from agents.fitted_q import FittedQAgent
+from agents.grid_dp import GridDPAgent
+from agents.linear import LinearBasisAgent
 from agents.registry import REGRESSORS
-from rehedge.schema.base import GRID_POINTS_MAX, HALF_WIDTH_MAX, PATHS_MAX, PolicyName, RISK_AVERSION_MAX, VOLATILITY_RANGE, _Spec, _check_closed_unit, _rule, _tunable
+from rehedge.schema.base import (
+    GRID_POINTS_MAX, HALF_WIDTH_MAX, PATHS_MAX, PolicyName, RISK_AVERSION_MAX, VOLATILITY_RANGE,
+    _Spec, _check_closed_unit, _rule, _tunable, default_of,
+)
 
 
 # ---------------------------------------------------------------------------
@@ -159,7 +165,7 @@ class _LearnedAgent(_NamedPolicy):
     drift: float | None = Field(None, ge=-2, le=2, description="Annual drift for the control variate; default estimated "
                                                   "from the training paths.")
     anchor: Literal["delta", "model_delta", "minimum_variance_delta"] = Field(
-        "delta", description="The hedge the agent measures its targets from: the Black-Scholes delta (the "
+        default_of(LinearBasisAgent, "anchor"), description="The hedge the agent measures its targets from: the Black-Scholes delta (the "
                              "model's under Merton marks), or a hedge at the mark model's Greeks.")
 
 
@@ -174,9 +180,9 @@ class FittedQAgentSpec(_LearnedAgent):
                                              description="Keyword arguments of the regressor.")
     basis: BasisTerms | None = Field(None, description="Feature columns (agents.features); default the tree set.")
     linear_basis: BasisTerms | Literal["polynomial", "none"] = Field(
-        "polynomial", description="Terms of the linear stage fitted before the regressor, which then fits what "
+        default_of(FittedQAgent, "linear_basis"), description="Terms of the linear stage fitted before the regressor, which then fits what "
                                   "it leaves: the linear agent's default basis, a list of terms, or none.")
-    max_rows_per_step: int = Field(2_000_000, ge=1000, le=PATHS_MAX, description="Regression rows kept per decision time "
+    max_rows_per_step: int = Field(default_of(FittedQAgent, "max_rows_per_step"), ge=1000, le=PATHS_MAX, description="Regression rows kept per decision time "
                                    "(every r-th training state beyond it): bounds memory at any path count.")
 
     @model_validator(mode="after")
@@ -207,8 +213,8 @@ class LinearAgentSpec(_LearnedAgent):
     kind: Literal["linear"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
     basis: BasisTerms | None = Field(None, description="Basis terms (agents.features); default the polynomial set.")
-    ridge: float = Field(1e-6, ge=0, le=1e6, description="Ridge penalty relative to each column's sum of squares.")
-    smoothing: float = Field(0.0, ge=0, le=1e6, description="Shrinkage toward the next decision time's coefficients.")
+    ridge: float = Field(default_of(LinearBasisAgent, "ridge"), ge=0, le=1e6, description="Ridge penalty relative to each column's sum of squares.")
+    smoothing: float = Field(default_of(LinearBasisAgent, "smoothing"), ge=0, le=1e6, description="Shrinkage toward the next decision time's coefficients.")
 
 
 class GridDPAgentSpec(_NamedPolicy):
@@ -216,9 +222,9 @@ class GridDPAgentSpec(_NamedPolicy):
 
     kind: Literal["grid_dp"] = Field(description="Agent type.")
     name: PolicyName = Field(description="Policy name in reports; defaults to the kind.")
-    spot_points: int = Field(151, ge=11, le=GRID_POINTS_MAX, description="Log-spot grid points.")
-    holding_points: int = Field(201, ge=11, le=GRID_POINTS_MAX, description="Holding grid points (also the candidate targets).")
-    quadrature_nodes: int = Field(16, ge=4, le=128, description="Gauss-Hermite nodes of the next-spot expectation.")
+    spot_points: int = Field(default_of(GridDPAgent, "spot_points"), ge=11, le=GRID_POINTS_MAX, description="Log-spot grid points.")
+    holding_points: int = Field(default_of(GridDPAgent, "holding_points"), ge=11, le=GRID_POINTS_MAX, description="Holding grid points (also the candidate targets).")
+    quadrature_nodes: int = Field(default_of(GridDPAgent, "quadrature_nodes"), ge=4, le=128, description="Gauss-Hermite nodes of the next-spot expectation.")
 
     def model_inputs(self, market) -> dict:
         """Constructor arguments that the agent takes from the market it solves: drift and volatility."""

@@ -7,7 +7,11 @@ from typing import Annotated, Literal
 from pydantic import AfterValidator, BeforeValidator, Field, field_validator, model_validator
 
 from hedge_env.objective import OBJECTIVE_FORMS, Objective
-from rehedge.schema.base import EXPIRY_DAYS_MAX, MONEY_MAX, PATHS_MAX, QUANTITY_MAX, RISK_AVERSION_MAX, SEED_MAX, SHARES_MAX, SPOT_RANGE, STEPS_MAX, VOLATILITY_RANGE, _Spec, _check_closed_unit, _check_nonzero, _check_open_unit, _inf_means_no_limit, _rule, _show
+from rehedge.schema.base import (
+    EXPIRY_DAYS_MAX, MONEY_MAX, PATHS_MAX, QUANTITY_MAX, RISK_AVERSION_MAX, SEED_MAX, SHARES_MAX,
+    SPOT_RANGE, STEPS_MAX, VOLATILITY_RANGE, _Spec, _check_closed_unit, _check_nonzero,
+    _check_open_unit, _inf_means_no_limit, _rule, _show,
+)
 
 
 class OptionSpec(_Spec):

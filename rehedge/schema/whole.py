@@ -10,7 +10,9 @@ from rehedge.schema.base import SEED_MAX, TABLE_POINTS_MAX, PolicyName, _Spec
 from rehedge.schema.markets import MarketSpec
 from rehedge.schema.policies import AgentSpec, BaselineSpec, default_baselines
 from rehedge.schema.rules import CROSS_SECTION_RULES
-from rehedge.schema.sections import BookSpec, DataSpec, FrictionsSpec, ObjectiveSpec, PricingSpec, ScheduleSpec
+from rehedge.schema.sections import (
+    BookSpec, DataSpec, FrictionsSpec, ObjectiveSpec, PricingSpec, ScheduleSpec,
+)
 
 
 class ComputeSpec(_Spec):
