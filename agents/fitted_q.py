@@ -106,17 +106,9 @@ class FittedQAgent(BackwardQAgent):
     basis : tuple of str
         Columns given to the regressor (see agents.features); default ``TREE_BASIS``, or
         ``TREE_BASIS_STATE_ANCHOR`` when the anchor reads the market state (Heston).
-    band_widths, partial_moves : tuple of float
-        Candidate targets besides no trade and the hedge (per share of notional).
-    factor_names : tuple of str
-        Observable market factors appended to the observation, in order.
-    drift : float, optional
-        Annual drift of the underlying for the hedge-gain control variate; None
-        estimates it from the training paths.
-    anchor : str
-        The hedge the gap and the candidate targets are measured from:
-        ``delta`` (Black-Scholes at the mark volatility; the model's delta under
-        Merton marks), ``model_delta`` or ``minimum_variance_delta``.
+    band_widths, partial_moves, factor_names, drift, anchor
+        As in :class:`agents.linear.LinearBasisAgent` (the candidate band widths default to the
+        trees' own, ``TREE_BAND_WIDTHS``).
     linear_basis : tuple of str, "polynomial", "none" or None
         Terms of the first, linear stage; "polynomial": the linear agent's default
         basis (agents.features.polynomial_basis of the observed factors); "none" or None: none.

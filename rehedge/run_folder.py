@@ -23,13 +23,10 @@ import numpy as np
 import sklearn
 
 import hedge_env
-from hedge_env.market import PathGenerator
-from hedge_env.problem import HedgingProblem
 from rehedge.build import build_baseline, build_markets, build_problem, describe_markets
 from rehedge.config import config_hash, parse_config
 from rehedge.errors import RunFolderError
-from rehedge.schema import Config
-from rehedge.training import Training
+from rehedge.training import Scenario, Training
 
 
 def _timestamp() -> str:
@@ -172,18 +169,13 @@ def _history_facts(training: Training) -> dict:
     return {"history": {"csv": history.source, "csv_sha256": history.sha256, **markets}}
 
 
-@dataclass
-class Run:
-    """A run folder read back: config, problem, market, policies (baselines rebuilt with their tuned values)."""
+@dataclass(kw_only=True)
+class Run(Scenario):
+    """A run folder read back: its folder and manifest, and the scenario (config, problem, markets,
+    policies: baselines rebuilt with their tuned values)."""
 
     path: Path
-    config: Config
     manifest: dict
-    problem: HedgingProblem
-    market: PathGenerator
-    agents: dict[str, object]
-    baselines: dict[str, object]
-    heldout_market: PathGenerator | None = None
 
 
 def load_run(path: str | Path, partial_ok: bool = False) -> Run:
@@ -214,4 +206,5 @@ def load_run(path: str | Path, partial_ok: bool = False) -> Run:
             policy = replace(policy, **{parameter: tuned[parameter]})
         baselines[spec.name] = policy
     agents = {spec.name: joblib.load(path / "agents" / f"{spec.name}.joblib") for spec in config.agents}
-    return Run(path, config, manifest, problem, market, agents, baselines, heldout_market)
+    return Run(path=path, config=config, manifest=manifest, problem=problem, market=market, agents=agents,
+               baselines=baselines, heldout_market=heldout_market)

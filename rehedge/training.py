@@ -43,21 +43,16 @@ def exploration_of(spec) -> Exploration:
                        center=spec.anchor)
 
 
-@dataclass
-class Training:
-    """Everything a training run produced."""
+@dataclass(kw_only=True)
+class Scenario:
+    """A config's problem, its markets and its policies (fitted agents, baselines with their tuned
+    values): what a training run made and what a run folder reads back (rehedge.run_folder.Run)."""
 
     config: Config
     problem: HedgingProblem
     market: PathGenerator
     agents: dict[str, object]
     baselines: dict[str, object]
-    tuning: dict
-    timings: dict[str, float] = field(default_factory=dict)
-    sizes: dict[str, int] = field(default_factory=dict)
-    log: list[str] = field(default_factory=list)
-    # Per grid optimum: its value at the start beside that of a grid with half the points per axis.
-    grid_convergence: dict[str, dict] = field(default_factory=dict)
     # The held-out source: the training one for a simulated model, a history's later windows otherwise.
     heldout_market: PathGenerator | None = None
 
@@ -70,6 +65,18 @@ class Training:
         kinds = {spec.name: spec.kind for spec in self.config.baselines}
         kinds.update({spec.name: spec.kind for spec in self.config.agents})
         return kinds
+
+
+@dataclass(kw_only=True)
+class Training(Scenario):
+    """Everything a training run produced."""
+
+    tuning: dict = field(default_factory=dict)
+    timings: dict[str, float] = field(default_factory=dict)
+    sizes: dict[str, int] = field(default_factory=dict)
+    log: list[str] = field(default_factory=list)
+    # Per grid optimum: its value at the start beside that of a grid with half the points per axis.
+    grid_convergence: dict[str, dict] = field(default_factory=dict)
 
     def note(self, line: str) -> None:
         self.log.append(f"{datetime.now(timezone.utc).isoformat(timespec='seconds')} {line}")
@@ -86,7 +93,8 @@ def _train(config: Config, start: ProgressStart) -> Training:
     problem = build_problem(config)
     market, heldout_market = build_markets(config)
     agents = {spec.name: build_agent(spec, problem, market) for spec in config.agents}
-    outcome = Training(config, problem, market, {}, {}, {}, heldout_market=heldout_market)
+    outcome = Training(config=config, problem=problem, market=market, agents={}, baselines={},
+                       heldout_market=heldout_market)
     data = config.data
     # Drawn a chunk at a time whenever needed, never held whole: memory stays bounded at any path count.
     paths = training_path_set(config, market, problem)
