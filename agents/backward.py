@@ -53,6 +53,7 @@ from sklearn.utils.validation import check_is_fitted
 from agents.baselines import check_center
 from agents.dataset import Transitions, replayed_impact, replayed_next_spots
 from agents.features import StateFeatures, basis_columns, check_terms, hedge_move, state_features
+from agents.policy import Solves
 from hedge_env.market import MARK_VOLATILITY_FACTOR
 from hedge_env.problem import HedgingProblem
 
@@ -200,24 +201,13 @@ def return_moment_sums(chunk: Transitions, problem: HedgingProblem, factor_names
                          float((x * x).sum()), float((x * square).sum()))
 
 
-class BackwardQAgent(BaseEstimator):
+class BackwardQAgent(Solves, BaseEstimator):
     """Base of the batch agents; subclasses say how one decision time's regression is fitted.
 
     Subclasses implement ``_start_step(k)``, ``_add(k, X, y)`` (rows of the
     design and targets, chunk by chunk), ``_finish_step(k)`` and
     ``_predict(k, X)`` for an array of shape (..., n_basis).
     """
-
-    # What an agent kind solves, declared on its class and read by the config's rules
-    # (rehedge.schema.rules): the market models (None: any, learning from paths), whether it needs the
-    # model's marks with their state observed, and whether it handles permanent impact under an objective.
-    solves_markets: tuple[str, ...] | None = None
-    market_words = ""
-    needs_model_state = False
-
-    @classmethod
-    def models_permanent_impact(cls, objective_form) -> bool:
-        return True
 
     def __init__(self, problem: HedgingProblem, basis, band_widths, partial_moves, factor_names, drift, anchor,
                  name):

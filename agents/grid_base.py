@@ -12,21 +12,15 @@ from __future__ import annotations
 import numpy as np
 from sklearn.base import BaseEstimator
 
+from agents.policy import Solves
 
-class GridOptimum(BaseEstimator):
+
+class GridOptimum(Solves, BaseEstimator):
     """Base of the grid optima (see the module's text). Both objective kinds are solved: the
     per-step mean-variance objective, or exponential utility of the wealth at the horizon, as the
     problem's objective says."""
 
     label = "grid optimum"  # what reports call the kind
-    # What a grid solves, as agents.backward.BackwardQAgent declares it: each grid names its markets.
-    solves_markets: tuple[str, ...] | None = None
-    market_words = ""
-    needs_model_state = False
-
-    @classmethod
-    def models_permanent_impact(cls, objective_form) -> bool:
-        return True
 
     def fit(self, paths=None):
         """Backward induction over the grid; ``paths`` is ignored (the agent is model-based)."""

@@ -65,6 +65,21 @@ def decode(problem: HedgingProblem, obs: np.ndarray) -> DecodedObservation:
                               volatility)
 
 
+class Solves:
+    """What an agent kind solves, declared on its class and read by the config's rules
+    (rehedge.schema.rules): the market models (None: any, for an agent that learns from paths) and
+    their words, whether it needs the model's marks with their state observed, and whether it models
+    permanent impact under an objective kind. The defaults: anything."""
+
+    solves_markets: tuple[str, ...] | None = None
+    market_words = ""
+    needs_model_state = False
+
+    @classmethod
+    def models_permanent_impact(cls, objective_form) -> bool:
+        return True
+
+
 @dataclass(frozen=True)
 class Mirrored:
     """A policy for the opposite book: ``act(obs) = -policy.act(obs with the holding negated)``.
