@@ -85,9 +85,9 @@ class MeanVariance:
         return value
 
     def known_value(self, objective: Objective, paid, gap_risk, growth: float):
-        """The known part of a step's value for the batch learners (agents.backward.known_part), in
-        place on ``paid``'s and ``gap_risk``'s arrays: ``-(paid + kappa/2 paid^2 + gap_risk)``, the gap
-        risk already scaled by :meth:`gap_aversion`."""
+        """The known part of a step's value for the batch learners (agents.backward.known_part):
+        ``-(paid + kappa/2 paid^2 + gap_risk)``, the gap risk already scaled by :meth:`gap_aversion`
+        (a kind may work in place on ``gap_risk``'s array)."""
         known = paid * paid
         known *= 0.5 * objective.risk_aversion
         known += paid
