@@ -101,6 +101,7 @@ class ModelDelta:
     problem: HedgingProblem
     name: str = "model_delta"
     label = "model delta"
+    reads_model_greeks = True  # needs the model's marks (and their state observed)
 
     def __post_init__(self) -> None:
         _needs_model_hedge(self.problem, "model_delta")
@@ -133,6 +134,7 @@ class MinimumVarianceDelta:
     problem: HedgingProblem
     name: str = "minimum_variance_delta"
     label = "minimum-variance delta"
+    reads_model_greeks = True
 
     def __post_init__(self) -> None:
         _needs_model_hedge(self.problem, "minimum_variance_delta")
@@ -263,6 +265,12 @@ class LelandDelta:
         return -book_delta / problem.notional_shares
 
 
+def _risk_aversion_scale(problem: HedgingProblem) -> float:
+    """The reward's kappa, or risk-neutral one per notional value: the centre of a band's risk-aversion search."""
+    kappa = problem.objective.risk_aversion
+    return kappa if kappa > 0 else 1.0 / (problem.notional_shares * problem.reference_spot)
+
+
 @dataclass(frozen=True)
 class WhalleyWilmottBand:
     """Asymptotic optimal no-trade band around ``center`` (see :func:`band_center`), of the width
@@ -273,6 +281,8 @@ class WhalleyWilmottBand:
     center: str = "delta"
     name: str = "whalley_wilmott"
     label = "Whalley-Wilmott band"
+    # Tuned around the reward's kappa (or, risk-neutral, one per notional value), 4 decades each way.
+    search_spaces = {"risk_aversion": lambda problem: (_risk_aversion_scale(problem) * np.logspace(-2, 4, 13), True)}
 
     def __post_init__(self) -> None:
         check_center(self.problem, self.center)
@@ -308,6 +318,7 @@ class FixedBand:
     center: str = "delta"
     name: str = "fixed_band"
     label = "fixed band"
+    search_spaces = {"half_width": lambda problem: (np.linspace(0.0, 0.4, 17), False)}  # per share of notional
 
     def __post_init__(self) -> None:
         check_center(self.problem, self.center)

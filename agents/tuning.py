@@ -31,32 +31,29 @@ class TuningResult:
     trials: tuple[tuple[float, float], ...]
 
 
-def search_space(problem: HedgingProblem, parameter: str) -> tuple[np.ndarray, bool]:
-    """Coarse grid of a parameter and whether the search runs in log space."""
-    if parameter == "risk_aversion":
-        # Around the reward's kappa (or, risk-neutral, one per notional value), 4 decades each way.
-        kappa = problem.objective.risk_aversion
-        scale = kappa if kappa > 0 else 1.0 / (problem.notional_shares * problem.reference_spot)
-        return scale * np.logspace(-2, 4, 13), True
-    if parameter == "half_width":
-        return np.linspace(0.0, 0.4, 17), False
-    raise ValueError(f"no search space for parameter {parameter!r}")
+def search_space(problem: HedgingProblem, policy, parameter: str) -> tuple[np.ndarray, bool]:
+    """Coarse grid of a policy's tunable parameter and whether the search runs in log space: the
+    policy's class declares it (``search_spaces``, parameter -> function of the problem)."""
+    spaces = getattr(type(policy), "search_spaces", {})
+    if parameter not in spaces:
+        raise ValueError(f"{type(policy).__name__} has no search space for parameter {parameter!r}")
+    return spaces[parameter](problem)
 
 
 # Evaluations of the bounded search after the grid, at most.
 REFINE_TRIALS = 12
 
 
-def trial_count(problem: HedgingProblem, parameter: str) -> int:
+def trial_count(problem: HedgingProblem, policy, parameter: str) -> int:
     """The most trials :func:`tune_parameter` makes for ``parameter``: its grid, then the refinement."""
-    return len(search_space(problem, parameter)[0]) + REFINE_TRIALS
+    return len(search_space(problem, policy, parameter)[0]) + REFINE_TRIALS
 
 
 def tune_parameter(problem: HedgingProblem, policy, parameter: str, paths: MarketPaths | PathSet,
                    chunk_paths: int = 8192, progress=None) -> TuningResult:
     """The value of ``policy.parameter`` that maximises the objective on ``paths``; ``progress(1)`` is
     called after each trial (at most :func:`trial_count` of them)."""
-    grid, log_space = search_space(problem, parameter)
+    grid, log_space = search_space(problem, policy, parameter)
     trials: dict[float, float] = {}
 
     def objective(value: float) -> float:

@@ -183,7 +183,7 @@ def build_agent(spec, problem: HedgingProblem, market: PathGenerator):
 
 def tuned_parameters(config: Config) -> dict[str, str]:
     """Baseline name -> parameter name, for every baseline with a field set to "tune" (the schema lets
-    only a tunable field take it, agents.tuning.search_space gives its search)."""
+    only a tunable field take it; the policy's class declares its search, ``search_spaces``)."""
     return {spec.name: parameter for spec in config.baselines
             for parameter, value in spec if isinstance(value, str) and value == "tune"}
 
@@ -209,7 +209,7 @@ def prepare_baselines(config: Config, problem: HedgingProblem, market: PathGener
     wanted = tuned_parameters(config)
     if wanted:
         train = training_path_set(config, market, problem) if train is None else train
-        total = sum(trial_count(problem, parameter) for parameter in wanted.values())
+        total = sum(trial_count(problem, policies[name], parameter) for name, parameter in wanted.items())
         advance = start("tuning baselines on training paths (trials)", total) if start else None
         for name, parameter in wanted.items():
             result = tune_parameter(problem, policies[name], parameter, train, config.data.chunk_paths, advance)

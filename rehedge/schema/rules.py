@@ -4,7 +4,7 @@ the order of ``CROSS_SECTION_RULES`` (defaults first, so later rules see them), 
 
 from __future__ import annotations
 
-from agents.registry import AGENTS
+from agents.registry import AGENTS, BASELINES
 from hedge_env.market import MARKET_MODELS
 from hedge_env.objective import OBJECTIVE_FORMS
 from rehedge.schema.base import _num, _rule, _show
@@ -63,7 +63,7 @@ def _check_model_hedge(config, hedge: str, i: int, key: str, section: str = "bas
 def check_model_hedges(config) -> None:
     """Baselines and agents at the model's Greeks (a model hedge, a band centre, an agent's anchor)."""
     for i, baseline in enumerate(config.baselines):
-        if baseline.kind in ("model_delta", "minimum_variance_delta"):
+        if getattr(BASELINES[baseline.kind], "reads_model_greeks", False):  # declared on the class
             _check_model_hedge(config, baseline.kind, i, "kind")
         if getattr(baseline, "center", "delta") != "delta":
             _check_model_hedge(config, baseline.center, i, "center")
